@@ -1,0 +1,47 @@
+import os
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+from PIL import Image
+
+torch.set_num_threads(min(2, os.cpu_count() or 1))
+ROOT = Path(__file__).resolve().parent.parent
+TESTS = Path(__file__).resolve().parent
+
+
+@pytest.fixture(scope="session")
+def smooth_corpus(tmp_path_factory):
+    """24 smooth random colour images of assorted sizes, written as PNG and JPEG."""
+    d = tmp_path_factory.mktemp("smooth")
+    rng = np.random.default_rng(7)
+    for i in range(24):
+        h, w = int(rng.integers(60, 110)), int(rng.integers(60, 110))
+        base = rng.random((h // 8 + 2, w // 8 + 2, 3))
+        img = Image.fromarray((base * 255).astype(np.uint8)).resize((w, h), Image.BICUBIC)
+        img.save(d / (f"img{i:02d}.png" if i % 2 else f"img{i:02d}.jpg"), quality=95)
+    return d
+
+
+@pytest.fixture(scope="session")
+def r18_weights(tmp_path_factory):
+    """A seeded torchvision resnet18 state dict, saved like a user's checkpoint."""
+    import torchvision
+
+    torch.manual_seed(0)
+    m = torchvision.models.resnet18()
+    p = tmp_path_factory.mktemp("weights") / "r18.pth"
+    torch.save(m.state_dict(), p)
+    return p
+
+
+def run_cli(*args, check=True, **kw):
+    import subprocess
+
+    r = subprocess.run([sys.executable, "-m", "unitlens", *map(str, args)], capture_output=True, text=True,
+                       cwd=ROOT, **kw)
+    if check and r.returncode != 0:
+        raise AssertionError(f"unitlens {' '.join(map(str, args))} failed ({r.returncode}):\n{r.stderr}")
+    return r

@@ -1,0 +1,39 @@
+"""Small networks for the tests, loadable as user code (tests/nets.py:function)."""
+import torch
+from torch import nn
+
+
+def digits_net() -> nn.Module:
+    """A fully convolutional digit classifier: 'logits' is a (B, 10, 1, 1) feature map."""
+    return nn.Sequential(
+        nn.Conv2d(3, 16, 3, padding=1), nn.ReLU(),
+        nn.Conv2d(16, 32, 3, padding=1, stride=2), nn.ReLU(),
+        nn.Conv2d(32, 32, 3, padding=1, stride=2), nn.ReLU(),
+        nn.Conv2d(32, 10, 1),
+        nn.AdaptiveAvgPool2d(1),
+        nn.Flatten(),
+    )
+
+
+class RedDetector(nn.Module):
+    """Fires where the image is red: a hand-set 1x1 colour filter, ReLU, then 5x5 box filters
+    that widen its receptive field. Weights are set here, so no training is needed."""
+
+    def __init__(self):
+        super().__init__()
+        self.colour = nn.Conv2d(3, 1, 1)
+        self.spread = nn.Sequential(nn.AvgPool2d(5, stride=2, padding=2), nn.AvgPool2d(5, stride=2, padding=2))
+        with torch.no_grad():
+            # inputs are normalised with ImageNet statistics; undo the std so the filter sees R - (G+B)/2
+            mean, std = torch.tensor([0.485, 0.456, 0.406]), torch.tensor([0.229, 0.224, 0.225])
+            c = torch.tensor([1.0, -0.5, -0.5])
+            self.colour.weight.copy_((c * std).view(1, 3, 1, 1))
+            self.colour.bias.fill_(float((c * mean).sum()))
+        self.relu = nn.ReLU()
+
+    def forward(self, x):
+        return self.spread(self.relu(self.colour(x)))
+
+
+def red_detector() -> nn.Module:
+    return RedDetector()

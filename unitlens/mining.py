@@ -1,0 +1,376 @@
+"""Pass 1: one sweep over the corpus keeps, per unit, the top-K and bottom-K images and statistics.
+
+Memory is O(units x K) plus one batch, whatever the corpus size. Ranking is by (score, corpus
+order), so the kept lists are the same for any batch size, worker count, shard split or resume.
+"""
+from __future__ import annotations
+
+import math
+import sys
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from ._progress import Progress
+from .errors import UnitlensError
+from .store import Run, read_json, read_npz, write_json, write_npz
+from .units import LayerUnits
+
+PAD = 2**62  # image index of an empty slot; larger than any real index so real images win ties
+
+# Histogram of per-image maxima on a fixed asinh scale, so histograms from any batch or process
+# merge by adding counts: bin j covers x with floor(asinh(x / HIST_SCALE) * HIST_STEPS) == j - HIST_HALF.
+HIST_SCALE = 1e-2
+HIST_STEPS = 16
+HIST_HALF = 240  # covers |x| up to about HIST_SCALE * sinh(15) = 1.6e4; beyond goes to the end bins
+HIST_BINS = 2 * HIST_HALF
+
+
+def hist_edges() -> np.ndarray:
+    """Left edges of the histogram bins (HIST_BINS + 1 values; the outer ones are open-ended)."""
+    j = np.arange(HIST_BINS + 1) - HIST_HALF
+    return HIST_SCALE * np.sinh(j / HIST_STEPS)
+
+
+@dataclass(frozen=True)
+class MineConfig:
+    top_k: int = 16
+    batch_size: int = 32
+    workers: int | None = None  # decoding processes; None: chosen from the core count
+    checkpoint_seconds: float = 5.0
+    keep_values: bool = True  # per-image maxima and means on disk (for compare and facets)
+    thumb: int = 96  # exemplar crop size in the sprite sheets
+
+
+def class_selectivity(class_means: np.ndarray, eps: float = 1e-7) -> np.ndarray:
+    """Class selectivity index per unit, Morcos et al. 2018: (mu_max - mu_-max) / (mu_max + mu_-max).
+
+    class_means: (L, U) mean activation of each unit per class, L >= 2. mu_-max is the mean over
+    the other classes. The small eps in the denominator follows Leavitt & Morcos 2021.
+    """
+    L = class_means.shape[0]
+    if L < 2:
+        return np.full(class_means.shape[1], np.nan)
+    top = class_means.max(0)
+    rest = (class_means.sum(0) - top) / (L - 1)
+    return (top - rest) / (top + rest + eps)
+
+
+class LayerTally:
+    """Streaming top/bottom-K and statistics for the chosen units of one layer."""
+
+    def __init__(self, units: tuple[int, ...], channels: int, width: int, k: int, n_classes: int):
+        U = len(units)
+        self.units = torch.tensor(units, dtype=torch.long)
+        self.all_units = list(units) == list(range(channels))
+        self.width, self.k = width, k
+        self.top_val = torch.full((U, k), -math.inf)
+        self.top_img = torch.full((U, k), PAD, dtype=torch.long)
+        self.top_pos = torch.zeros((U, k), dtype=torch.long)
+        self.bot_val = torch.full((U, k), math.inf)
+        self.bot_img = torch.full((U, k), PAD, dtype=torch.long)
+        self.bot_pos = torch.zeros((U, k), dtype=torch.long)
+        self.count = torch.zeros((), dtype=torch.long)
+        self.sum_max = torch.zeros(U, dtype=torch.float64)
+        self.sumsq_max = torch.zeros(U, dtype=torch.float64)
+        self.sum_mean = torch.zeros(U, dtype=torch.float64)
+        self.fires = torch.zeros(U, dtype=torch.long)
+        self.low = torch.full((U,), math.inf)  # smallest value at any position
+        self.high = torch.full((U,), -math.inf)
+        self.hist = torch.zeros((U, HIST_BINS), dtype=torch.long)
+        self.class_sum = torch.zeros((max(n_classes, 1), U), dtype=torch.float64)
+        self.class_count = torch.zeros(max(n_classes, 1), dtype=torch.long)
+
+    STATE = ("top_val", "top_img", "top_pos", "bot_val", "bot_img", "bot_pos", "count", "sum_max",
+             "sumsq_max", "sum_mean", "fires", "low", "high", "hist", "class_sum", "class_count")
+
+    def state(self) -> dict[str, np.ndarray]:
+        return {k: getattr(self, k).numpy() for k in self.STATE}
+
+    def load(self, st: dict[str, np.ndarray]) -> None:
+        for k in self.STATE:
+            setattr(self, k, torch.from_numpy(np.array(st[k])))
+
+    def update(self, fmap: torch.Tensor, ids: torch.Tensor, classes: torch.Tensor | None):
+        """fmap (B, C, H, W); ids (B,) corpus indices; classes (B,) class ids or -1."""
+        f = fmap if self.all_units else fmap.index_select(1, self.units)
+        flat = f.flatten(2).float()  # (B, U, H*W)
+        mx, amx = flat.max(2)  # (B, U)
+        mn, amn = flat.min(2)
+        mean = flat.mean(2)
+        mx = torch.nan_to_num(mx, nan=-math.inf)
+        mn = torch.nan_to_num(mn, nan=math.inf)
+        ids_u = ids.view(1, -1).expand(mx.shape[1], -1)  # (U, B)
+        self.top_val, self.top_img, self.top_pos = _merge(
+            self.top_val, self.top_img, self.top_pos, mx.T, ids_u, amx.T, self.k, largest=True)
+        self.bot_val, self.bot_img, self.bot_pos = _merge(
+            self.bot_val, self.bot_img, self.bot_pos, mn.T, ids_u, amn.T, self.k, largest=False)
+        m64 = mx.double()
+        self.count += mx.shape[0]
+        self.sum_max += m64.sum(0)
+        self.sumsq_max += (m64 * m64).sum(0)
+        self.sum_mean += mean.double().sum(0)
+        self.fires += (mx > 0).sum(0)
+        self.low = torch.minimum(self.low, mn.min(0).values)
+        self.high = torch.maximum(self.high, mx.max(0).values)
+        b = torch.floor(torch.asinh(mx / HIST_SCALE) * HIST_STEPS).long() + HIST_HALF
+        b = b.clamp_(0, HIST_BINS - 1)  # (B, U)
+        offs = torch.arange(mx.shape[1]).view(1, -1) * HIST_BINS
+        self.hist.view(-1).index_add_(0, (b + offs).view(-1), torch.ones(b.numel(), dtype=torch.long))
+        if classes is not None:
+            ok = classes >= 0
+            if ok.any():
+                self.class_sum.index_add_(0, classes[ok], mean[ok].double())
+                self.class_count.index_add_(0, classes[ok], torch.ones(int(ok.sum()), dtype=torch.long))
+        return mx, mean
+
+    def merge(self, other: "LayerTally") -> None:
+        """Fold another tally over a disjoint set of images into this one (exact)."""
+        self.top_val, self.top_img, self.top_pos = _merge(
+            self.top_val, self.top_img, self.top_pos, other.top_val, other.top_img, other.top_pos,
+            self.k, largest=True)
+        self.bot_val, self.bot_img, self.bot_pos = _merge(
+            self.bot_val, self.bot_img, self.bot_pos, other.bot_val, other.bot_img, other.bot_pos,
+            self.k, largest=False)
+        for k in ("count", "sum_max", "sumsq_max", "sum_mean", "fires", "hist", "class_sum", "class_count"):
+            setattr(self, k, getattr(self, k) + getattr(other, k))
+        self.low = torch.minimum(self.low, other.low)
+        self.high = torch.maximum(self.high, other.high)
+
+
+def _merge(val, img, pos, new_val, new_img, new_pos, k, largest):
+    """Keep the k best of both lists, ordered by score then corpus order. All (U, *)."""
+    v = torch.cat([val, new_val], 1)
+    i = torch.cat([img, new_img], 1)
+    p = torch.cat([pos, new_pos], 1)
+    o = torch.argsort(i, dim=1, stable=True)  # corpus order first ...
+    v, i, p = v.gather(1, o), i.gather(1, o), p.gather(1, o)
+    o = torch.argsort(v, dim=1, descending=largest, stable=True)[:, :k]  # ... then score, stable
+    return v.gather(1, o), i.gather(1, o), p.gather(1, o)
+
+
+def colour_moments(images: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, int]:
+    """Sums for the RGB mean and covariance of uint8 images (B,3,H,W): (sum (3,), sum xx^T (3,3), n)."""
+    x = images.permute(1, 0, 2, 3).reshape(3, -1).float() / 255.0  # (3, pixels)
+    return x.double().sum(1), (x @ x.T).double(), x.shape[1]
+
+
+def _settings(model, corpus, layers, cfg) -> dict:
+    return {
+        "model": model.describe(),
+        "corpus_fingerprint": corpus.fingerprint,
+        "layers": {lu.layer: list(lu.units) for lu in layers},
+        "top_k": cfg.top_k,
+        "keep_values": cfg.keep_values,
+        "thumb": cfg.thumb,
+    }
+
+
+def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config: MineConfig = MineConfig(),
+         *, progress: bool = False, force: bool = False, _stop_after: int | None = None) -> Run:
+    """Mine exemplars for `layers` over `corpus` into the run folder `out`; resumes if interrupted.
+
+    Returns the Run. Re-running a finished mining pass with the same settings does nothing.
+    """
+    from .corpus import batches
+
+    run = Run(out)
+    settings = _settings(model, corpus, layers, config)
+    mdir = run.path / "mine"
+    old = read_json(run.manifest_path)
+    if old and old.get("mine") and not force:
+        prev = old["mine"].get("settings")
+        if prev != settings:
+            raise UnitlensError(
+                f"{run.path} already holds a mining pass with other settings ({_diff(prev, settings)}). "
+                "Use another --out folder, or --force to start that folder over."
+            )
+        if old["mine"].get("done"):
+            return run
+    if force and mdir.exists():
+        import shutil
+
+        shutil.rmtree(mdir)
+    prev_corpus = read_json(run.path / "corpus.json")
+    if prev_corpus and prev_corpus.get("fingerprint") != corpus.fingerprint and not force:
+        change = corpus.describe_change(prev_corpus.get("files", []), prev_corpus.get("fingerprint", ""))
+        raise UnitlensError(f"The corpus changed since this run started ({change}). Use --force to start over.")
+
+    run.path.mkdir(parents=True, exist_ok=True)
+    run.save_corpus(corpus)
+    manifest = old if old and not force else {}
+    manifest.update(model=model.describe(), corpus=_corpus_summary(corpus, []))
+    manifest["mine"] = {"settings": settings, "done": False,
+                        "layers": {lu.layer: {"units": len(lu.units), "done": False} for lu in layers}}
+    run.save_manifest(manifest)
+
+    N = len(corpus)
+    n_classes = len(corpus.classes)
+    class_of = None
+    if corpus.labels is not None:
+        lookup = {c: i for i, c in enumerate(corpus.classes)}
+        class_of = torch.tensor([lookup.get(l, -1) if l is not None else -1 for l in corpus.labels])
+    infos = {lu.layer: model.layer(lu.layer) for lu in layers}
+    tallies = {lu.layer: LayerTally(lu.units, infos[lu.layer].channels, infos[lu.layer].width,
+                                    config.top_k, n_classes) for lu in layers}
+    colour = [torch.zeros(3, dtype=torch.float64), torch.zeros(3, 3, dtype=torch.float64), 0]
+    skipped: list[tuple[str, str]] = []
+    start = 0
+    state_path, meta_path = mdir / "state.npz", mdir / "state.json"
+    meta = read_json(meta_path)
+    if meta and state_path.is_file():
+        st = read_npz(state_path)
+        for name, t in tallies.items():
+            t.load({k: st[f"{name}/{k}"] for k in LayerTally.STATE})
+        colour = [torch.from_numpy(st["colour_sum"]), torch.from_numpy(st["colour_outer"]), int(meta["colour_n"])]
+        skipped = [tuple(s) for s in meta["skipped"]]
+        start = int(meta["next"])
+
+    values = {}
+    if config.keep_values:
+        for lu in layers:
+            d = run.layer_dir(lu.layer)
+            d.mkdir(parents=True, exist_ok=True)
+            values[lu.layer] = tuple(_open_values(d / f"{kind}.npy", (N, len(lu.units)), fresh=start == 0)
+                                     for kind in ("values", "means"))
+
+    def checkpoint(next_index: int) -> None:
+        for vm in values.values():
+            for a in vm:
+                a.flush()
+        arrays = {f"{name}/{k}": v for name, t in tallies.items() for k, v in t.state().items()}
+        arrays.update(colour_sum=colour[0].numpy(), colour_outer=colour[1].numpy())
+        write_npz(state_path, **arrays)
+        write_json(meta_path, {"next": next_index, "skipped": skipped, "colour_n": colour[2]})
+
+    extractor = model.extractor([lu.layer for lu in layers])
+    bar = Progress(N, start, "mining", "img") if progress else None
+    last_save = time.monotonic()
+    next_index = start
+    interrupted = False
+    try:
+        for batch in batches(corpus, model.preprocess.size, start=start, batch_size=config.batch_size,
+                             workers=config.workers):
+            for i, reason in batch.failures:
+                skipped.append((corpus.files[i], reason))
+                print(f"Skipped {corpus.files[i]}: {reason}", file=sys.stderr)
+            if len(batch.indices):
+                ids = batch.indices
+                s, o, n = colour_moments(batch.images)
+                colour[0] += s; colour[1] += o; colour[2] += n
+                with torch.inference_mode():
+                    feats = extractor(model.normalize(batch.images))
+                    cls = class_of[ids] if class_of is not None else None
+                    for name, t in tallies.items():
+                        mx, mean = t.update(feats[name], ids, cls)
+                        if name in values:
+                            rows = ids.numpy()
+                            values[name][0][rows] = _f16(mx)
+                            values[name][1][rows] = _f16(mean)
+            done = [int(batch.indices.max()) + 1] if len(batch.indices) else []
+            done += [i + 1 for i, _ in batch.failures]
+            next_index = max([next_index] + done)
+            if bar:
+                bar.advance(next_index)
+            if time.monotonic() - last_save > config.checkpoint_seconds:
+                checkpoint(next_index)
+                last_save = time.monotonic()
+            if _stop_after is not None and next_index >= _stop_after:
+                checkpoint(next_index)
+                return run
+    except KeyboardInterrupt:
+        interrupted = True
+    finally:
+        if bar:
+            bar.close()
+    if interrupted:
+        checkpoint(next_index)
+        raise UnitlensError(
+            f"Interrupted after {next_index} of {N} images; state saved. Run the same command to resume."
+        )
+    checkpoint(next_index)
+    _finish(run, model, corpus, layers, tallies, colour, skipped, config, progress)
+    return run
+
+
+def _f16(t: torch.Tensor) -> np.ndarray:
+    return t.clamp(-65504, 65504).numpy().astype(np.float16)
+
+
+def _open_values(path: Path, shape, fresh: bool):
+    if not fresh and path.is_file():
+        a = np.load(path, mmap_mode="r+")
+        if a.shape == shape:
+            return a
+    return np.lib.format.open_memmap(path, mode="w+", dtype=np.float16, shape=shape)
+
+
+def _diff(prev: dict | None, new: dict) -> str:
+    if not prev:
+        return "unknown settings"
+    keys = [k for k in new if prev.get(k) != new[k]]
+    return "differs in " + ", ".join(keys)
+
+
+def _corpus_summary(corpus, skipped) -> dict:
+    return {
+        "source": str(corpus.root),
+        "count": len(corpus),
+        "fingerprint": corpus.fingerprint,
+        "classes": list(corpus.classes),
+        "labelled": corpus.labels is not None,
+        "ignored": list(corpus.ignored),
+        "skipped": [{"file": f, "reason": r} for f, r in skipped],
+    }
+
+
+def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progress) -> None:
+    from .crops import cut_exemplars
+
+    n = max(colour[2], 1)
+    mu = colour[0] / n
+    cov = colour[1] / n - torch.outer(mu, mu)
+    for lu in layers:
+        t = tallies[lu.layer]
+        info = model.layer(lu.layer)
+        write_npz(run.layer_dir(lu.layer) / "index.npz", **_index_arrays(t, info, lu))
+    cut_exemplars(run, model, corpus, layers, config.thumb, progress=progress)
+    m = run.manifest()
+    m["corpus"] = _corpus_summary(corpus, skipped)
+    m["mine"]["done"] = True
+    for lu in layers:
+        m["mine"]["layers"][lu.layer]["done"] = True
+    m["mine"]["colour"] = {"mean": mu.tolist(), "cov": cov.tolist(), "pixels": colour[2],
+                           "source": "measured on this run's corpus (network inputs, RGB in [0, 1])"}
+    m["mine"]["config"] = asdict(config)
+    run.save_manifest(m)
+    (run.path / "mine" / "state.npz").unlink(missing_ok=True)
+    (run.path / "mine" / "state.json").unlink(missing_ok=True)
+
+
+def _index_arrays(t: LayerTally, info, lu: LayerUnits) -> dict[str, np.ndarray]:
+    n = max(int(t.count), 1)
+    mean_max = (t.sum_max / n).numpy()
+    var = (t.sumsq_max / n).numpy() - mean_max**2
+    class_mean = (t.class_sum / t.class_count.clamp(min=1).view(-1, 1).double()).numpy()
+    seen = t.class_count.numpy() > 0
+    csi = class_selectivity(class_mean[seen]) if seen.sum() >= 2 else np.full(len(lu.units), np.nan)
+    W = info.width
+    return {
+        "units": np.array(lu.units, dtype=np.int64),
+        "count": np.array(int(t.count)),
+        "top_score": t.top_val.numpy(), "top_image": t.top_img.numpy(),
+        "top_y": (t.top_pos // W).numpy(), "top_x": (t.top_pos % W).numpy(),
+        "bottom_score": t.bot_val.numpy(), "bottom_image": t.bot_img.numpy(),
+        "bottom_y": (t.bot_pos // W).numpy(), "bottom_x": (t.bot_pos % W).numpy(),
+        "mean_max": mean_max, "std_max": np.sqrt(np.maximum(var, 0)),
+        "mean_mean": (t.sum_mean / n).numpy(),
+        "fire_rate": t.fires.numpy() / n,
+        "low": t.low.numpy(), "high": t.high.numpy(),
+        "hist": t.hist.numpy().astype(np.int64), "hist_edges": hist_edges(),
+        "class_mean": class_mean, "class_count": t.class_count.numpy(), "csi": csi,
+        "shape": np.array([info.channels, info.height, info.width]),
+    }

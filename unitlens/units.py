@@ -1,0 +1,77 @@
+"""Turning user text such as ``layer3:0-63,100`` into checked unit selections."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from .errors import UnitlensError
+
+
+@dataclass(frozen=True)
+class LayerUnits:
+    """The channels of one layer to study."""
+
+    layer: str
+    units: tuple[int, ...]
+
+
+def parse_ranges(text: str, limit: int, what: str = "Channel", layer: str = "") -> tuple[int, ...]:
+    """'0-3,7' -> (0, 1, 2, 3, 7), each checked against range(limit). Order kept, duplicates dropped."""
+    out: list[int] = []
+    for part in (p.strip() for p in text.split(",")):
+        if not part:
+            continue
+        lo, sep, hi = part.partition("-")
+        try:
+            a = int(lo)
+            b = int(hi) if sep else a
+        except ValueError:
+            raise UnitlensError(
+                f"'{part}' is not a channel or range (expected e.g. 5 or 0-63). To give several "
+                "layers with their own channels, repeat --layers, e.g. --layers layer3:0-9 --layers layer4."
+            ) from None
+        if a > b:
+            raise UnitlensError(f"Range '{part}' runs backwards; write {b}-{a}.")
+        for c in (a, b):
+            if not 0 <= c < limit:
+                where = f" for {layer}" if layer else ""
+                raise UnitlensError(f"{what} {c} is out of range{where} (0-{limit - 1}).")
+        out.extend(range(a, b + 1))
+    if not out:
+        raise UnitlensError(f"No channels given in '{text}'.")
+    return tuple(dict.fromkeys(out))
+
+
+def parse_layers(model, layers: list[str], units: str | None = None) -> tuple[LayerUnits, ...]:
+    """Resolve --layers (repeatable; 'a,b' or 'a:0-9') and --units against the model.
+
+    Every name is checked before any image is decoded, so a typo fails in the first second.
+    """
+    items: list[tuple[str, str | None]] = []
+    for text in layers:
+        text = text.strip()
+        if ":" in text:
+            name, _, spec = text.partition(":")
+            items.append((name.strip(), spec))
+        else:
+            items.extend((n.strip(), None) for n in text.split(",") if n.strip())
+    if not items:
+        raise UnitlensError("No layers given. Run `unitlens layers MODEL` to list them.")
+    out: dict[str, LayerUnits] = {}
+    for name, spec in items:
+        info = model.layer(name)
+        spec = spec if spec is not None else units
+        chosen = parse_ranges(spec, info.channels, layer=name) if spec else tuple(range(info.channels))
+        out[name] = LayerUnits(name, chosen)
+    order = list(model.layers())
+    return tuple(sorted(out.values(), key=lambda lu: order.index(lu.layer)))
+
+
+def parse_unit(text: str) -> tuple[str, int]:
+    """'layer3:37' -> ('layer3', 37)."""
+    name, sep, ch = text.rpartition(":")
+    if not sep or not name:
+        raise UnitlensError(f"Expected LAYER:CHANNEL (e.g. layer3:37), got '{text}'.")
+    try:
+        return name, int(ch)
+    except ValueError:
+        raise UnitlensError(f"Channel must be a number in '{text}'.") from None
