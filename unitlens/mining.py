@@ -262,7 +262,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                 s, o, n = colour_moments(batch.images)
                 colour[0] += s; colour[1] += o; colour[2] += n
                 with torch.inference_mode():
-                    feats = extractor(model.normalize(batch.images))
+                    feats = _forward(extractor, model.normalize(batch.images))
                     cls = class_of[ids] if class_of is not None else None
                     for name, t in tallies.items():
                         mx, mean = t.update(feats[name], ids, cls)
@@ -294,6 +294,15 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     checkpoint(next_index)
     _finish(run, model, corpus, layers, tallies, colour, skipped, config, progress)
     return run
+
+
+def _forward(extractor, x: torch.Tensor) -> dict[str, torch.Tensor]:
+    """Run the truncated model. A batch of one is padded to two: the CPU convolution library takes
+    another code path for a single image whose results differ in the last bits, and mining must
+    give the same scores whatever the batch size (a final partial batch is often one image)."""
+    if x.shape[0] != 1:
+        return extractor(x)
+    return {k: v[:1] for k, v in extractor(torch.cat([x, x])).items()}
 
 
 def _f16(t: torch.Tensor) -> np.ndarray:

@@ -1,0 +1,196 @@
+"""Mining: streaming top-K against brute force, determinism, resume, statistics."""
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+import torch
+
+from conftest import ROOT, TESTS, run_cli
+from unitlens import MineConfig, load_model, mine, open_corpus, parse_layers, unit_summary
+from unitlens.mining import HIST_BINS, PAD, LayerTally, _merge, class_selectivity, hist_edges
+from unitlens.store import Run
+
+
+def _brute_force(model, corpus, layer, units):
+    """Independent oracle: the WHOLE network with a plain forward hook, every value kept, sorted at the end."""
+    from unitlens.corpus import batches
+
+    seen = []
+    h = model.module.get_submodule(layer).register_forward_hook(lambda m, i, o: seen.append(o[:, units]))
+    ids = []
+    with torch.no_grad():
+        for b in batches(corpus, model.preprocess.size, batch_size=5, workers=0):
+            model.module(model.normalize(b.images))
+            ids.append(b.indices)
+    h.remove()
+    f = torch.cat(seen).flatten(2)  # (N, U, HW)
+    return torch.cat(ids), f.max(2), f.min(2), f
+
+
+def test_top_k_equals_brute_force(tmp_path, smooth_corpus, r18_weights):
+    model = load_model("torchvision:resnet18", str(r18_weights), size=64)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer2:0-7", "layer3:3,9,100"])
+    run = mine(model, corpus, layers, tmp_path / "run", MineConfig(top_k=5, batch_size=4, workers=0))
+    for lu in layers:
+        idx = run.index(lu.layer)
+        ids, (mx, amx), (mn, amn), f = _brute_force(model, corpus, lu.layer, list(lu.units))
+        W = model.layer(lu.layer).width
+        for u in range(len(lu.units)):
+            # sort by score, ties by corpus order (np.lexsort: last key is primary)
+            order = np.lexsort((ids.numpy(), -mx[:, u].numpy()))[:5]
+            assert idx["top_image"][u].tolist() == ids[order].tolist()
+            np.testing.assert_allclose(idx["top_score"][u], mx[order, u].numpy(), rtol=0, atol=1e-5)
+            assert (idx["top_y"][u] * W + idx["top_x"][u]).tolist() == amx[order, u].tolist()
+            order = np.lexsort((ids.numpy(), mn[:, u].numpy()))[:5]
+            assert idx["bottom_image"][u].tolist() == ids[order].tolist()
+            # statistics against numpy on the same per-image maxima
+            m = mx[:, u].double().numpy()
+            np.testing.assert_allclose(idx["mean_max"][u], m.mean(), rtol=1e-6)
+            np.testing.assert_allclose(idx["std_max"][u], m.std(), rtol=1e-4, atol=1e-7)
+            np.testing.assert_allclose(idx["mean_mean"][u], f[:, u].double().mean(1).mean().item(), rtol=1e-5)
+            assert idx["fire_rate"][u] == pytest.approx((m > 0).mean())
+            assert idx["hist"][u].sum() == len(corpus)
+        # per-image values on disk match the brute force
+        vals = np.load(run.layer_dir(lu.layer) / "values.npy")
+        np.testing.assert_allclose(vals[ids.numpy()], mx.numpy(), rtol=2e-3, atol=2e-3)
+
+
+def test_same_result_for_any_batch_size_and_worker_count(tmp_path, smooth_corpus, r18_weights):
+    model = load_model("torchvision:resnet18", str(r18_weights), size=64)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer3:0-31"])
+    results = []
+    for i, (bs, workers) in enumerate([(1, 0), (7, 0), (32, 2)]):
+        run = mine(model, corpus, layers, tmp_path / f"r{i}", MineConfig(top_k=6, batch_size=bs, workers=workers))
+        results.append(run.index("layer3"))
+    for other in results[1:]:
+        for key in ("top_image", "top_y", "top_x", "bottom_image", "bottom_y", "bottom_x", "hist"):
+            np.testing.assert_array_equal(results[0][key], other[key], err_msg=key)
+        np.testing.assert_allclose(results[0]["top_score"], other["top_score"], atol=1e-6)
+
+
+def test_merge_breaks_ties_by_corpus_order_like_lexsort():
+    # worked check against numpy's lexsort over the full list (numpy as the reference library)
+    rng = np.random.default_rng(1)
+    scores = rng.integers(0, 4, size=(3, 40)).astype(np.float32)  # many ties
+    k = 7
+    val = torch.full((3, k), -np.inf)
+    img = torch.full((3, k), PAD, dtype=torch.long)
+    pos = torch.zeros((3, k), dtype=torch.long)
+    for lo in range(0, 40, 6):  # arbitrary batch boundaries
+        ids = torch.arange(lo, min(lo + 6, 40)).view(1, -1).expand(3, -1)
+        val, img, pos = _merge(val, img, pos, torch.from_numpy(scores[:, lo:lo + 6]), ids, ids, k, True)
+    for u in range(3):
+        expect = np.lexsort((np.arange(40), -scores[u]))[:k]
+        assert img[u].tolist() == expect.tolist()
+
+
+def test_tallies_merge_exactly_across_disjoint_shards():
+    torch.manual_seed(0)
+    f = torch.randn(30, 4, 3, 3)
+    ids = torch.arange(30)
+    cls = ids % 3
+    whole = LayerTally((0, 1, 2, 3), 4, 3, 5, 3)
+    whole.update(f, ids, cls)
+    a, b = LayerTally((0, 1, 2, 3), 4, 3, 5, 3), LayerTally((0, 1, 2, 3), 4, 3, 5, 3)
+    a.update(f[::2], ids[::2], cls[::2])
+    b.update(f[1::2], ids[1::2], cls[1::2])
+    b.merge(a)
+    for k in LayerTally.STATE:
+        np.testing.assert_allclose(getattr(whole, k).numpy(), getattr(b, k).numpy(), err_msg=k)
+
+
+def test_histogram_bins_agree_with_numpy():
+    x = torch.tensor([[-3.0], [-0.001], [0.0], [0.02], [0.5], [7.0], [7.0], [1e6]])
+    t = LayerTally((0,), 1, 1, 2, 0)
+    t.update(x.view(-1, 1, 1, 1), torch.arange(len(x)), None)
+    edges = hist_edges()
+    expect = np.histogram(np.clip(x.numpy().ravel(), edges[0], edges[-1] - 1e-9), bins=edges)[0]
+    np.testing.assert_array_equal(t.hist[0].numpy(), expect)
+    assert t.hist.shape[1] == HIST_BINS
+
+
+def test_class_selectivity_worked_example():
+    # Morcos et al. 2018: CSI = (mu_max - mu_-max) / (mu_max + mu_-max). By hand: class means
+    # (4, 2, 0) -> mu_max = 4, mu_-max = (2 + 0) / 2 = 1, CSI = 3 / 5 = 0.6; equal means -> 0;
+    # one class only -> 1.
+    means = np.array([[4.0, 1.0, 5.0], [2.0, 1.0, 0.0], [0.0, 1.0, 0.0]])
+    np.testing.assert_allclose(class_selectivity(means), [0.6, 0.0, 1.0], atol=1e-6)
+
+
+def test_rerun_is_a_no_op_and_other_settings_are_refused(tmp_path, smooth_corpus, r18_weights):
+    from unitlens import UnitlensError
+
+    model = load_model("torchvision:resnet18", str(r18_weights), size=64)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer1:0-3"])
+    run = mine(model, corpus, layers, tmp_path / "r", MineConfig(top_k=3, workers=0))
+    stamp = (run.layer_dir("layer1") / "index.npz").stat().st_mtime_ns
+    mine(model, corpus, layers, tmp_path / "r", MineConfig(top_k=3, workers=0))
+    assert (run.layer_dir("layer1") / "index.npz").stat().st_mtime_ns == stamp
+    with pytest.raises(UnitlensError, match="other settings"):
+        mine(model, corpus, layers, tmp_path / "r", MineConfig(top_k=4, workers=0))
+
+
+def _mine_cmd(corpus, weights, out, *extra):
+    return [sys.executable, "-m", "unitlens", "mine", "torchvision:resnet18", "--weights", str(weights),
+            "--size", "96", "--corpus", str(corpus), "--layers", "layer2,layer3", "--top", "4",
+            "--batch-size", "2", "--workers", "0", "--out", str(out), *extra]
+
+
+def test_resume_after_sigkill_matches_uninterrupted(tmp_path, r18_weights):
+    from PIL import Image
+
+    corpus = tmp_path / "c"
+    corpus.mkdir()
+    rng = np.random.default_rng(3)
+    for i in range(80):
+        Image.fromarray(rng.integers(0, 255, (96, 96, 3), dtype=np.uint8)).save(corpus / f"{i:03d}.png")
+    run_cli(*_mine_cmd(corpus, r18_weights, tmp_path / "whole")[3:])
+    out = tmp_path / "killed"
+    p = subprocess.Popen(_mine_cmd(corpus, r18_weights, out, "--checkpoint-every", "0.2"), cwd=ROOT,
+                         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    state = out / "mine" / "state.json"
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline:
+        if state.is_file() and json.loads(state.read_text())["next"] >= 10:
+            break
+        time.sleep(0.05)
+    os.kill(p.pid, signal.SIGKILL)
+    p.wait()
+    done_before = json.loads(state.read_text())["next"]
+    assert 0 < done_before < 80, "the kill should land part-way"
+    run_cli(*_mine_cmd(corpus, r18_weights, out)[3:])
+    for layer in ("layer2", "layer3"):
+        a, b = Run(tmp_path / "whole").index(layer), Run(out).index(layer)
+        for key in a:
+            if a[key].dtype.kind in "iub":
+                np.testing.assert_array_equal(a[key], b[key], err_msg=key)
+            else:
+                np.testing.assert_allclose(a[key], b[key], atol=1e-6, equal_nan=True, err_msg=key)
+        np.testing.assert_array_equal(np.load(Run(tmp_path / "whole").layer_dir(layer) / "values.npy"),
+                                      np.load(Run(out).layer_dir(layer) / "values.npy"))
+
+
+def test_show_json_lists_exemplars_with_source_paths_and_boxes(tmp_path, smooth_corpus, r18_weights):
+    out = tmp_path / "r"
+    run_cli("mine", "torchvision:resnet18", "--weights", r18_weights, "--size", "64", "--corpus", smooth_corpus,
+            "--layers", "layer3", "--units", "0-3", "--top", "3", "--workers", "0", "--out", out)
+    r = run_cli("show", out, "layer3:2", "--json")
+    s = json.loads(r.stdout)
+    assert len(s["exemplars"]) == 3
+    for e in s["exemplars"]:
+        assert os.path.isfile(e["image"])
+        x0, y0, x1, y1 = e["box"]
+        assert 0 <= x0 < x1 and 0 <= y0 < y1
+    assert s["exemplars"][0]["score"] >= s["exemplars"][-1]["score"]
+    text = run_cli("show", out, "layer3:2").stdout
+    assert "top exemplars" in text
+    bad = run_cli("show", out, "layer3:9", check=False)
+    assert bad.returncode == 1 and "was not mined" in bad.stderr
