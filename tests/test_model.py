@@ -1,0 +1,197 @@
+"""Model specs, safe loading, preprocessing, the layer table and the truncated forward."""
+import json
+import warnings
+from urllib.error import URLError
+
+import pytest
+import torch
+import torchvision
+from torch import nn
+
+from conftest import TESTS, run_cli
+from unitlens import MineConfig, UnitlensError, load_model, mine, open_corpus, parse_layers, unit_summary
+from unitlens.units import parse_ranges
+
+NETS = f"{TESTS / 'nets.py'}"
+
+
+def test_state_dict_file_loads_with_preprocessing_defaults(r18_weights):
+    m = load_model("torchvision:resnet18", str(r18_weights))
+    ref = torchvision.models.resnet18()
+    ref.load_state_dict(torch.load(r18_weights, weights_only=True))
+    assert torch.equal(m.module.conv1.weight, ref.conv1.weight)
+    assert m.preprocess.size == 224 and m.preprocess.mean == (0.485, 0.456, 0.406)
+    assert m.weights["kind"] == "file" and len(m.weights["sha256"]) == 64
+    m = load_model("torchvision:inception_v3")
+    assert m.preprocess.size == 299  # torchvision's metadata for Inception v3
+
+
+def test_overrides_are_recorded(r18_weights):
+    m = load_model("torchvision:resnet18", str(r18_weights), size=128, mean=(0.5, 0.5, 0.5))
+    assert m.preprocess.size == 128 and m.preprocess.mean == (0.5, 0.5, 0.5)
+    assert "overridden: size, mean" in m.describe()["preprocess"]["source"]
+
+
+def test_checkpoint_wrappers_and_fine_tuned_heads(tmp_path):
+    torch.manual_seed(1)
+    net = torchvision.models.resnet18(num_classes=7)
+    # a training checkpoint saved from DataParallel, as people do
+    torch.save({"epoch": 3, "state_dict": {f"module.{k}": v for k, v in net.state_dict().items()}},
+               tmp_path / "ckpt.pth")
+    m = load_model("torchvision:resnet18", str(tmp_path / "ckpt.pth"))
+    assert m.module.fc.out_features == 7 and m.arch_options["num_classes"] == 7
+    assert torch.equal(m.module.layer1[0].conv1.weight, net.layer1[0].conv1.weight)
+
+
+def test_inception_without_auxiliary_head_loads(tmp_path):
+    net = torchvision.models.inception_v3(weights=None, aux_logits=False, init_weights=False)
+    torch.save(net.state_dict(), tmp_path / "inc.pth")
+    m = load_model("torchvision:inception_v3", str(tmp_path / "inc.pth"))
+    assert m.module.AuxLogits is None
+
+
+def test_key_mismatch_names_the_keys(tmp_path):
+    sd = torchvision.models.resnet18().state_dict()
+    sd.pop("layer1.0.conv1.weight")
+    sd["extra.weight"] = torch.zeros(1)
+    torch.save(sd, tmp_path / "bad.pth")
+    with pytest.raises(UnitlensError, match=r"missing \(first: layer1.0.conv1.weight\).*unexpected \(first: extra.weight\)"):
+        load_model("torchvision:resnet18", str(tmp_path / "bad.pth"))
+
+
+def test_pickled_module_needs_opt_in(tmp_path, capsys):
+    torch.save(nn.Sequential(nn.Conv2d(3, 4, 3)), tmp_path / "whole.pt")
+    with pytest.raises(UnitlensError, match="--allow-pickle"):
+        load_model(str(tmp_path / "whole.pt"))
+    with pytest.raises(UnitlensError, match="pickled object"):
+        load_model("torchvision:resnet18", str(tmp_path / "whole.pt"))
+    m = load_model(str(tmp_path / "whole.pt"), allow_pickle=True)
+    assert "Warning" in capsys.readouterr().err
+    assert list(m.layers()) == ["0"]
+
+
+def test_torchscript_sequential_works_and_compiled_forward_is_refused(tmp_path):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        seq = torch.jit.script(nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.Conv2d(4, 5, 3, stride=2)))
+        torch.jit.save(seq, str(tmp_path / "seq.pt"))
+        torch.jit.save(torch.jit.script(torchvision.models.resnet18().eval()), str(tmp_path / "r18.pt"))
+    m = load_model(str(tmp_path / "seq.pt"), size=32)
+    assert [(l.name, l.channels, l.height) for l in m.layers().values()] == [("0", 4, 32), ("1", 4, 32), ("2", 5, 15)]
+    x = torch.randn(2, 3, 32, 32)
+    out = m.extractor(["1"])(x)
+    assert torch.allclose(out["1"], seq[1](seq[0](x)))
+    m = load_model(str(tmp_path / "r18.pt"))
+    with pytest.raises(UnitlensError, match="compiled forward"):
+        m.layers()
+
+
+def test_torchvision_weights_name_uses_cache_and_explains_offline(tmp_path, monkeypatch, r18_weights):
+    # A cached download is used without any network (torch hub cache layout).
+    import shutil
+
+    from torchvision.models import ResNet18_Weights
+
+    w = ResNet18_Weights.IMAGENET1K_V1
+    cache = tmp_path / "hub" / "checkpoints"
+    cache.mkdir(parents=True)
+    shutil.copy(r18_weights, cache / w.url.rsplit("/", 1)[1])
+    monkeypatch.setenv("TORCH_HOME", str(tmp_path))
+    m = load_model("torchvision:resnet18", "IMAGENET1K_V1")
+    assert m.weights["name"] == str(w) and m.preprocess.source.startswith("torchvision metadata")
+    # Offline with nothing cached: a clear error saying how to pass a local file.
+    monkeypatch.setenv("TORCH_HOME", str(tmp_path / "empty"))
+
+    def offline(*a, **k):
+        raise URLError("network is unreachable")
+
+    monkeypatch.setattr(torch.hub, "load_state_dict_from_url", offline)
+    with pytest.raises(UnitlensError, match=r"Offline\? Fetch https://.*--weights /path/to/resnet18-"):
+        load_model("torchvision:resnet18", "DEFAULT")
+    with pytest.raises(UnitlensError, match="Valid names: IMAGENET1K_V1, DEFAULT"):
+        load_model("torchvision:resnet18", "IMAGENET_V9")
+
+
+@pytest.mark.parametrize("spec,message", [
+    ("resnet50", "Did you mean torchvision:resnet50"),
+    ("torchvision:resnet5O", "Closest: resnet50"),
+    (f"{NETS}:digit_net", "Closest: digits_net"),
+    ("nowhere.py:f", "not found"),
+])
+def test_bad_specs_say_what_to_do(spec, message):
+    with pytest.raises(UnitlensError, match=message):
+        load_model(spec)
+
+
+def test_layer_and_unit_selection_errors():
+    m = load_model("torchvision:resnet18", size=64)
+    with pytest.raises(UnitlensError, match=r"Unknown layer 'layer5'.*Closest: layer4"):
+        parse_layers(m, ["layer5"])
+    with pytest.raises(UnitlensError, match=r"Channel 700 is out of range for layer4 \(0-511\)"):
+        parse_layers(m, ["layer4:0-700"])
+    sel = parse_layers(m, ["layer3,layer1", "layer2:5,1-2"], units="0-3")
+    assert [(s.layer, s.units) for s in sel] == [("layer1", (0, 1, 2, 3)), ("layer2", (5, 1, 2)), ("layer3", (0, 1, 2, 3))]
+    for text, expect in [("3", (3,)), ("0-2,2,9", (0, 1, 2, 9)), (" 4 , 1 ", (4, 1))]:
+        assert parse_ranges(text, 10) == expect
+    for bad in ["a", "5-2", "", "3-"]:
+        with pytest.raises(UnitlensError):
+            parse_ranges(bad, 10)
+
+
+# Practitioners' usual architectures, random weights: layer table, fx/hook agreement, a few-image mine.
+ARCHS = [
+    ("vgg16", "features.29", 224),
+    ("resnet50", "layer3", 224),
+    ("inception_v3", "Mixed_6e", 299),
+    ("googlenet", "inception4c", 224),
+    ("mobilenet_v3_large", "features.12", 224),
+    ("convnext_tiny", "features.5", 224),
+]
+
+
+@pytest.mark.parametrize("arch,layer,size", ARCHS)
+def test_architectures_end_to_end(arch, layer, size, tmp_path, smooth_corpus):
+    r = run_cli("layers", f"torchvision:{arch}", "--json")
+    rows = {row["name"]: row for row in json.loads(r.stdout)}
+    assert layer in rows and rows[layer]["rf_size"] > 1 and rows[layer]["rf_stride"] >= 1
+    m = load_model(f"torchvision:{arch}")
+    assert m.preprocess.size == size
+    ext = m.extractor([layer])
+    assert ext.strategy == "fx"
+    x = torch.randn(1, 3, size, size)
+    seen = {}
+    h = m.module.get_submodule(layer).register_forward_hook(lambda mod, i, o: seen.setdefault("o", o))
+    with torch.no_grad():
+        m.module(x)
+        got = ext(x)[layer]
+    h.remove()
+    torch.testing.assert_close(got, seen["o"])  # the pruned graph computes the same feature map
+    listing = tmp_path / "three.txt"
+    listing.write_text("".join(f"{p}\n" for p in sorted(smooth_corpus.iterdir())[:3]))
+    few = open_corpus(listing)
+    run = mine(m, few, parse_layers(m, [f"{layer}:0-3"]), tmp_path / arch, MineConfig(top_k=2, workers=0))
+    s = unit_summary(run, layer, 1)
+    assert len(s["exemplars"]) == 2 and all(e["box"][2] > e["box"][0] for e in s["exemplars"])
+
+
+def test_user_code_model_and_hook_fallback(tmp_path):
+    code = tmp_path / "mynet.py"
+    code.write_text(
+        "import torch\nfrom torch import nn\n"
+        "class Branchy(nn.Module):\n"
+        "    def __init__(self):\n        super().__init__()\n"
+        "        self.a = nn.Conv2d(3, 4, 3, padding=1)\n        self.b = nn.Conv2d(4, 4, 3, padding=1)\n"
+        "    def forward(self, x):\n"
+        "        y = self.a(x)\n"
+        "        if y.sum() > -1e9:  # data-dependent control flow: does not trace\n"
+        "            y = self.b(y)\n"
+        "        return y\n"
+        "def build():\n    return Branchy()\n"
+    )
+    m = load_model(f"{code}:build", size=32)
+    ext = m.extractor(["a"])
+    assert ext.strategy == "hooks"
+    x = torch.randn(2, 3, 32, 32)
+    assert torch.allclose(ext(x)["a"], m.module.a(x))
+    r = run_cli("layers", f"{code}:build", "--size", "32")
+    assert "a " in r.stdout and "4x32x32" in r.stdout
