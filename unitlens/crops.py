@@ -28,15 +28,6 @@ def input_box(field, y: int, x: int, size: int) -> tuple[float, float, float, fl
     return (float(max(x0, 0)), float(max(y0, 0)), float(min(x1, size)), float(min(y1, size)))
 
 
-def original_size(path: Path) -> tuple[int, int]:
-    """(width, height) as displayed: EXIF orientations 5-8 swap the stored axes."""
-    with Image.open(path) as im:
-        w, h = im.size
-        if im.getexif().get(0x0112, 1) in (5, 6, 7, 8):
-            w, h = h, w
-    return w, h
-
-
 def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
     x0, y0, x1, y1 = box
     crop = img.crop((x0, y0, max(x1, x0 + 1), max(y1, y0 + 1)))
@@ -50,21 +41,21 @@ def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
 
 def _image_cells(path: Path, entries, field, size: int, thumb: int):
     """Decode one image once and cut every cell it is needed for. entries: [(row, col, y, x)]."""
-    from .corpus import ImageProblem, decode, placement
+    from .corpus import ImageProblem, decode_original, placement
 
+    boxes_in = [input_box(field, y, x, size) for (_r, _c, y, x) in entries]
+    smallest = min(max(1.0, min(b[2] - b[0], b[3] - b[1])) for b in boxes_in)
+    # Decode only as large as the smallest crop needs to fill a thumbnail: an input-pixel box of
+    # side b shows (short side / size) * b original pixels, so thumb * size / b pixels on the short side do.
+    need = int(np.ceil(thumb * size / smallest))
     try:
-        W, H = original_size(path)
-        place = placement(W, H, size)
-        boxes = [place.to_original(input_box(field, y, x, size)) for (_r, _c, y, x) in entries]
-        smallest = min(max(1, min(b[2] - b[0], b[3] - b[1])) for b in boxes)
-        # decode only as large as the smallest crop needs to fill a thumbnail
-        need = max(1, int(np.ceil(min(W, H) * thumb / smallest)))
-        img = decode(path, size=min(need, min(W, H)))
-        r = img.width / W
-        cells = [_cell(img, tuple(v * r for v in b), thumb) for b in boxes]
-        return boxes, cells, None
-    except (ImageProblem, OSError) as e:
-        return None, None, str(e) or e.__class__.__name__
+        img, (W, H), (rx, ry) = decode_original(path, size=need)
+    except ImageProblem as e:
+        return None, None, e.reason
+    place = placement(W, H, size)
+    boxes = [place.to_original(b) for b in boxes_in]
+    cells = [_cell(img, (b[0] * rx, b[1] * ry, b[2] * rx, b[3] * ry), thumb) for b in boxes]
+    return boxes, cells, None
 
 
 def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False) -> None:
@@ -77,6 +68,9 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
         d = run.layer_dir(lu.layer)
         idx = read_npz(d / "index.npz")
         field = model.layer(lu.layer).field
+        if field is None:
+            print(f"Warning: no receptive field known for {lu.layer}; its crops show the whole input.",
+                  file=sys.stderr)
         U, K = idx["top_image"].shape
         negative = bool((idx["low"] < 0).any())
         kinds = [("top", 0)] + ([("bottom", K)] if negative else [])

@@ -181,6 +181,12 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     settings = _settings(model, corpus, layers, config)
     mdir = run.path / "mine"
     old = read_json(run.manifest_path)
+    prev_corpus = read_json(run.path / "corpus.json")
+    if prev_corpus and prev_corpus.get("fingerprint") != corpus.fingerprint and not force:
+        change = corpus.describe_change(prev_corpus.get("files", []), prev_corpus.get("fingerprint", ""),
+                                        prev_corpus.get("stamps"))
+        raise UnitlensError(f"The corpus changed since this run started ({change}). Use --force to start over.")
+
     if old and old.get("mine") and not force:
         prev = old["mine"].get("settings")
         if prev != settings:
@@ -194,11 +200,6 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
         import shutil
 
         shutil.rmtree(mdir)
-    prev_corpus = read_json(run.path / "corpus.json")
-    if prev_corpus and prev_corpus.get("fingerprint") != corpus.fingerprint and not force:
-        change = corpus.describe_change(prev_corpus.get("files", []), prev_corpus.get("fingerprint", ""))
-        raise UnitlensError(f"The corpus changed since this run started ({change}). Use --force to start over.")
-
     run.path.mkdir(parents=True, exist_ok=True)
     run.save_corpus(corpus)
     manifest = old if old and not force else {}

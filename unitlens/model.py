@@ -382,7 +382,9 @@ def _layer_table(model: LoadedModel) -> dict[str, LayerInfo]:
     size = model.preprocess.size
     shapes = observe_shapes(model, size)  # {name: ((C,H,W), is_block)} in execution order
     try:
-        fields = receptive_fields(_observable(model), (size, size))
+        # Squeeze-excitation gates are global, but where a unit fires is decided locally: treat
+        # them like normalisation statistics, or every crop after the first gate is the whole image.
+        fields = receptive_fields(_observable(model), (size, size), global_context=False)
     except UnitlensError as e:
         warnings.warn(f"receptive fields unavailable: {e}")
         fields = {}
