@@ -1,0 +1,106 @@
+"""`unitlens run`: budget planning, and resume after SIGKILL in each stage."""
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+
+from conftest import ROOT, run_cli
+from unitlens import UnitlensError
+from unitlens.units import LayerUnits
+from unitlens.workflow import MIN_STEPS, parse_budget, plan
+
+
+@pytest.mark.parametrize("text,seconds", [("8h", 28800), ("90m", 5400), ("2h30m", 9000), ("45s", 45),
+                                          ("3600", 3600), ("1.5h", 5400), ("1d", 86400)])
+def test_budget_text(text, seconds):
+    assert parse_budget(text) == seconds
+
+
+@pytest.mark.parametrize("bad", ["", "8x", "h", "8h junk", "-1h"])
+def test_bad_budget_text(bad):
+    with pytest.raises(UnitlensError, match="budget"):
+        parse_budget(bad)
+
+
+CALIB = {"mine_s_per_image": 0.01, "synth_s_per_step": {"a": 0.5, "b": 1.0}, "batch": 16, "size": 128}
+LAYERS = (LayerUnits("a", tuple(range(64))), LayerUnits("b", tuple(range(32))))
+
+
+def test_plan_worked_examples():
+    # Worked by hand: mining 1000 images = 1000 * 0.01 * 1.15 = 11.5 s. Synthesis at 256 steps:
+    # a: 4 batches * 256 * 0.5 = 512 s; b: 2 batches * 256 * 1.0 = 512 s; total 1035.5 s.
+    p = plan(2000, 1000, LAYERS, 256, 128, CALIB)
+    assert (p.steps, p.size) == (256, 128) and p.estimate_s == pytest.approx(1035.5)
+    assert "everything requested fits" in p.reasons
+    # Half the budget: steps halve to 128 (a 256 + b 256 + 11.5 = 523.5 s).
+    p = plan(600, 1000, LAYERS, 256, 128, CALIB)
+    assert p.steps == 128 and p.size == 128 and p.estimate_s == pytest.approx(523.5)
+    # Very tight: steps hit their floor, then the size shrinks (to 96 px: cost x 0.5625), then
+    # the units: 80 - 11.5 = 68.5 s fit one batch per layer (a 18 s + b 36 s), not two of a.
+    p = plan(80, 1000, LAYERS, 256, 128, CALIB)
+    assert p.steps == MIN_STEPS and p.size == 96 and p.estimate_s <= 80
+    assert [len(lu.units) <= 16 for lu in p.layers] == [True, True] and all(lu.units for lu in p.layers)
+    assert p.layers[0].units[:3] == (0, 4, 8) or len(p.layers[0].units) < 16  # evenly spread
+    with pytest.raises(UnitlensError, match="Even one unit per layer"):
+        plan(60, 1000, LAYERS, 256, 128, CALIB)
+    with pytest.raises(UnitlensError, match="Mining 1000 images alone"):
+        plan(5, 1000, LAYERS, 256, 128, CALIB)
+
+
+def _corpus(d, n=24):
+    from PIL import Image
+
+    d.mkdir()
+    rng = np.random.default_rng(5)
+    for i in range(n):
+        Image.fromarray(rng.integers(0, 255, (40, 48, 3), dtype=np.uint8)).save(d / f"{i:02d}.png")
+    return d
+
+
+def _cmd(corpus, out, weights):
+    return [sys.executable, "-m", "unitlens", "run", "torchvision:resnet18", "--weights", str(weights),
+            "--size", "32", "--corpus", str(corpus), "--layers", "layer1:0-5", "--layers", "layer2:0-3",
+            "--steps", "24", "--top", "3", "--workers", "0", "--batch-size", "4", "--out", str(out)]
+
+
+def _atlas_data(out):
+    d = out / "atlas" / "data"
+    return {p.name: p.read_text() for p in sorted(d.glob("*.js"))}
+
+
+def _kill_when(cmd, ready, timeout=240):
+    p = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline and p.poll() is None and not ready():
+        time.sleep(0.02)
+    if p.poll() is None:
+        os.kill(p.pid, signal.SIGKILL)
+    p.wait()
+
+
+def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
+    corpus = _corpus(tmp_path / "c")
+    whole = tmp_path / "whole"
+    r = subprocess.run(_cmd(corpus, whole, r18_weights), cwd=ROOT, capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    assert (whole / "atlas" / "index.html").is_file()
+    expect = _atlas_data(whole)
+    assert expect
+
+    def mining_started(out):
+        return lambda: (out / "mine" / "state.json").is_file()
+
+    def synth_started(out):
+        return lambda: any((out / "synth").rglob("*.png")) if (out / "synth").is_dir() else False
+
+    for name, ready in (("mining", mining_started), ("synthesis", synth_started)):
+        out = tmp_path / name
+        _kill_when(_cmd(corpus, out, r18_weights), ready(out))
+        r = subprocess.run(_cmd(corpus, out, r18_weights), cwd=ROOT, capture_output=True, text=True)
+        assert r.returncode == 0, r.stderr
+        assert _atlas_data(out) == expect, f"killed during {name}"

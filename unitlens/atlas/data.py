@@ -1,0 +1,292 @@
+"""What the atlas shows about one layer, as plain JSON-ready columns (numbers and names only).
+
+Two payloads per layer, so a large layer page becomes usable before its details are parsed:
+  cards    everything a unit card needs: ids, key numbers, a re-binned histogram, the first
+           synthesised image. Crops need no data: their place in the sprite sheet follows from
+           the unit's position in the layer list and the exemplar's rank (see crops.py).
+  details  what the unit view adds: every exemplar's file, score and box, class means, the
+           evidence stored beside each synthesised image and its (thinned) optimisation trace.
+Reads the run folder only (mine/<layer>/index.npz, corpus.json, synth/<layer>/units.json and
+the traces); never touches the model.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..store import Run, read_json, read_npz
+
+HIST_BINS = 24  # linear bins of the re-binned histogram (cards and unit view)
+TRACE_POINTS = 96  # at most this many points of an optimisation trace reach the page
+
+
+def _f(x, digits: int = 4):
+    """A float rounded to `digits` significant digits; None for NaN/inf (JSON has neither)."""
+    x = float(x)
+    if not math.isfinite(x):
+        return None
+    return float(f"{x:.{digits}g}")
+
+
+def _fs(a, digits: int = 4) -> list:
+    return [_f(v, digits) for v in np.asarray(a).ravel()]
+
+
+def rebin(counts: np.ndarray, edges: np.ndarray, low: float, high: float, bins: int = HIST_BINS):
+    """Spread a histogram on arbitrary bins onto `bins` equal bins between the data's ends.
+
+    counts (J,), edges (J + 1,). The outer source bins may be open-ended (huge edges); every
+    source bin is first clipped to [low, high], the range the values are known to lie in. Mass
+    is spread uniformly within a source bin. Returns (lo, hi, new_counts): the linear range
+    runs from the first to the last occupied source bin, clipped to [low, high]. All mass in
+    one point gives a single bin with lo == hi. No occupied bin gives (None, None, []).
+    """
+    counts = np.asarray(counts, dtype=np.float64)
+    nz = np.nonzero(counts)[0]
+    if not len(nz):
+        return None, None, []
+    low, high = float(low), float(high)
+    if not (math.isfinite(low) and math.isfinite(high)) or high < low:
+        low, high = float(edges[nz[0]]), float(edges[nz[-1] + 1])
+    a = np.clip(edges[:-1], low, high)[nz]  # clipped source intervals [a, b] of occupied bins
+    b = np.clip(edges[1:], low, high)[nz]
+    c = counts[nz]
+    lo, hi = float(a.min()), float(b.max())
+    if hi <= lo:
+        return lo, lo, [float(c.sum())]
+    t = np.linspace(lo, hi, bins + 1)  # target edges
+    out = np.zeros(bins)
+    width = b - a
+    point = width <= (hi - lo) * 1e-12  # a source bin squeezed to a point by the clipping
+    if point.any():
+        j = np.clip(np.searchsorted(t, a[point], side="right") - 1, 0, bins - 1)
+        np.add.at(out, j, c[point])
+    w = ~point
+    if w.any():
+        # overlap of each source interval with each target bin: (S, bins)
+        ov = np.clip(np.minimum(b[w, None], t[None, 1:]) - np.maximum(a[w, None], t[None, :-1]), 0, None)
+        out += (ov / width[w, None] * c[w, None]).sum(0)
+    return lo, hi, out.tolist()
+
+
+@dataclass
+class LayerData:
+    """The two payloads of one layer page, and the image files the page refers to."""
+
+    name: str
+    cards: dict
+    details: dict
+    sheets: list[Path] = field(default_factory=list)  # sprite sheets to place in the atlas
+    images: list[Path] = field(default_factory=list)  # synthesised PNGs to place in the atlas
+
+    @property
+    def units(self) -> int:
+        return len(self.cards["units"])
+
+
+def _synth_records(run: Run, layer: str) -> tuple[Path, dict[int, dict]]:
+    """{channel: record} of units.json (see synth/results.py), {} when the layer has none."""
+    d = run.layer_dir(layer, "synth")
+    table = read_json(d / "units.json") or {}
+    out = {}
+    for key, rec in (table.get("units") or {}).items():
+        files = [Path(str(im.get("file", ""))).name for im in rec.get("images", [])]
+        if files and all(f and (d / f).is_file() for f in files):
+            out[int(key)] = rec
+    return d, out
+
+
+def _thin(trace: np.ndarray) -> dict:
+    """One trace (T,) with NaN after an early stop -> at most TRACE_POINTS (step, value) pairs."""
+    ok = np.nonzero(np.isfinite(trace))[0]
+    if not len(ok):
+        return {"step": [], "value": []}
+    last = int(ok[-1])
+    stride = max(1, math.ceil((last + 1) / TRACE_POINTS))
+    steps = list(range(0, last + 1, stride))
+    if steps[-1] != last:
+        steps.append(last)
+    return {"step": [s + 1 for s in steps], "value": _fs(trace[steps])}
+
+
+def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
+    """Card part, detail part and image files of one synthesised unit (names within the layer's image folder)."""
+    images, files = [], []
+    for im in rec.get("images", []):
+        name = Path(str(im["file"])).name
+        files.append(d / name)
+        rob = im.get("robustness") or None
+        images.append({
+            "src": name,
+            "activation": _f(im.get("activation", math.nan)),
+            "max_activation": _f(im.get("max_activation", math.nan)),
+            "ratio": _f(im["vs_best_exemplar"]) if im.get("vs_best_exemplar") is not None else None,
+            "rank": im.get("rank"), "channels": im.get("channels"), "steps": im.get("steps"),
+            "objective": _f(im.get("objective", math.nan)),
+            "robustness": None if not rob else {
+                "n": rob.get("n"), "mean": _f(rob.get("mean", math.nan)), "std": _f(rob.get("std", math.nan)),
+                "relative": _f(rob["relative"]) if rob.get("relative") is not None else None},
+        })
+    traces = []
+    tname = Path(str(rec.get("trace", ""))).name
+    if tname and (d / tname).is_file():
+        with np.load(d / tname, allow_pickle=False) as z:  # read the one array needed, not the whole file
+            tr = z["trace"] if "trace" in z.files else None
+        if tr is not None:
+            traces = [_thin(row) for row in np.atleast_2d(tr)]
+    ratios = [im["ratio"] for im in images if im["ratio"] is not None]
+    card = {"src": files[0].name if files else None, "count": len(images),
+            "ratio": max(ratios) if ratios else None}
+    best = rec.get("best_exemplar")
+    detail = {"images": images, "trace": traces, "best_exemplar": _f(best) if best is not None else None}
+    return card, detail, files
+
+
+def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
+    """Both payloads of `layer`; None when the layer has neither an index nor synthesised units.
+
+    `img_dir` is the folder (relative to the atlas) where the page will find this layer's images.
+    """
+    ipath = run.layer_dir(layer) / "index.npz"
+    idx = read_npz(ipath) if ipath.is_file() else None
+    sdir, synth = _synth_records(run, layer)
+    if idx is None and not synth:
+        return None
+    mined = [int(u) for u in idx["units"]] if idx is not None else []
+    units = mined + sorted(set(synth) - set(mined))
+    U = len(units)
+    pos = {u: i for i, u in enumerate(mined)}  # place in the mining list = row in the sprite sheets
+    cards: dict = {"layer": layer, "units": units, "mined": len(mined) > 0,
+                   "synthesised": sum(u in synth for u in units)}
+    details: dict = {"layer": layer}
+    sheets: list[Path] = []
+    if idx is not None:
+        c, hist = _mined_cards(idx, units, pos)
+        cards.update(c)
+        details.update(hist)
+        details.update(_mined_details(run, idx, units, pos))
+        sheets, cards["sheets"] = _sheets(run, layer, idx, len(mined), img_dir)
+    images: list[Path] = []
+    scard, sdet = [None] * U, [None] * U
+    for i, u in enumerate(units):
+        if u in synth:
+            scard[i], sdet[i], files = _synth_payload(sdir, synth[u])
+            images += files
+    cards["img_dir"] = img_dir
+    cards["synth_src"] = [c["src"] if c else None for c in scard]
+    cards["synth_n"] = [c["count"] if c else 0 for c in scard]
+    cards["ratio"] = [c["ratio"] if c else None for c in scard]
+    details["synth"] = sdet
+    return LayerData(layer, cards, details, sheets, images)
+
+
+def _pick(a: np.ndarray, units, pos, fill=None) -> list:
+    """Per-unit values in `units` order; units that were not mined get `fill`."""
+    return [_f(a[pos[u]]) if u in pos else fill for u in units]
+
+
+SPARK = "0123456789ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz-_"  # 64 bar heights, one character each
+
+
+def spark(counts) -> str:
+    """A histogram as a short string for a card: each bin's height relative to the tallest,
+    0..63, one character per bin; an occupied bin is never drawn empty."""
+    c = np.asarray(counts, dtype=np.float64)
+    if not len(c) or c.max() <= 0:
+        return ""
+    lv = np.where(c > 0, np.maximum(1, np.round(c / c.max() * 63)), 0).astype(int)
+    return "".join(SPARK[v] for v in lv)
+
+
+def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict, dict]:
+    """(card columns, histogram columns for the details) of the mined units."""
+    K = int(idx["top_image"].shape[1])
+    shape = [int(v) for v in idx["shape"]] if "shape" in idx else None
+    hist_lo, hist_hi, hist, sparks, spark_mean = [], [], [], [], []
+    for u in units:
+        if u not in pos or "hist" not in idx:
+            hist_lo.append(None); hist_hi.append(None); hist.append([]); sparks.append(""); spark_mean.append(None)
+            continue
+        p = pos[u]
+        lo, hi, c = rebin(idx["hist"][p], idx["hist_edges"], idx["low"][p], idx["high"][p])
+        hist_lo.append(_f(lo) if lo is not None else None)
+        hist_hi.append(_f(hi) if hi is not None else None)
+        hist.append([round(v, 2) for v in c])
+        sparks.append(spark(c))
+        mm = float(idx["mean_max"][p])
+        spark_mean.append(round((mm - lo) / (hi - lo), 3) if lo is not None and hi > lo and math.isfinite(mm) else None)
+    csi = idx.get("csi")
+    top_ok = idx["top_score"]
+    cards = {
+        "shape": shape, "images": int(idx["count"]), "k": K,
+        "negative": "bottom_box" in idx,  # the sheets hold bottom crops only when the layer goes negative
+        "peak": _pick(idx["high"], units, pos),
+        "fire": _pick(idx["fire_rate"], units, pos),
+        "csi": _pick(csi, units, pos) if csi is not None else [None] * len(units),
+        # number of filled exemplar slots per unit (a tiny corpus may have fewer than K images)
+        "filled": [int(np.isfinite(top_ok[pos[u]]).sum()) if u in pos else 0 for u in units],
+        "spark": sparks, "spark_mean": spark_mean,
+        "pos": [pos.get(u) for u in units],
+    }
+    details = {
+        "mean_max": _pick(idx["mean_max"], units, pos), "std_max": _pick(idx["std_max"], units, pos),
+        "mean_mean": _pick(idx["mean_mean"], units, pos), "low": _pick(idx["low"], units, pos),
+        "hist_lo": hist_lo, "hist_hi": hist_hi, "hist": hist,
+    }
+    return cards, details
+
+
+def _mined_details(run: Run, idx: dict, units: list[int], pos: dict[int, int]) -> dict:
+    corpus = read_json(run.path / "corpus.json") or {}
+    files = corpus.get("files") or []
+    labels = corpus.get("labels")
+    N = len(files)
+    kinds = ["top"] + (["bottom"] if "bottom_box" in idx else [])
+    # the files referenced by any exemplar, each sent once
+    used = np.unique(np.concatenate([idx[f"{k}_image"].ravel() for k in kinds]))
+    used = used[used < N]
+    local = {int(i): j for j, i in enumerate(used)}
+    out: dict = {"files": [str(files[i]) for i in used],
+                 "labels": [labels[i] for i in used] if labels is not None else None}
+    for kind in kinds:
+        img, score = idx[f"{kind}_image"], idx[f"{kind}_score"]
+        box = idx.get(f"{kind}_box")
+        lists = []
+        for u in units:
+            if u not in pos:
+                lists.append(None)
+                continue
+            p = pos[u]
+            row = []
+            for r in range(img.shape[1]):
+                i = int(img[p, r])
+                if i >= N:
+                    continue  # an empty slot
+                b = [int(v) for v in box[p, r]] if box is not None else None
+                row.append([local[i], _f(score[p, r], 5), r, b if b and b[0] >= 0 else None])
+            lists.append(row)
+        out[kind] = lists  # per unit: [file, score, rank (= sheet column offset), box or None]
+    classes = list((read_json(run.manifest_path) or {}).get("corpus", {}).get("classes") or [])
+    cm = idx.get("class_mean")
+    if classes and cm is not None and cm.shape[0] == len(classes):
+        out["classes"] = classes
+        out["class_count"] = [int(v) for v in idx["class_count"]]
+        out["class_mean"] = [_fs(cm[:, pos[u]]) if u in pos else None for u in units]
+    return out
+
+
+def _sheets(run: Run, layer: str, idx: dict, n_mined: int, img_dir: str) -> tuple[list[Path], dict | None]:
+    from ..crops import SHEET_ROWS, sheet_cell
+
+    if "thumb" not in idx:  # crops not cut (yet)
+        return [], None
+    rows = int(idx["sheet_rows"]) if "sheet_rows" in idx else SHEET_ROWS
+    d = run.layer_dir(layer)
+    names = [sheet_cell(p, 0)[0] for p in range(0, n_mined, rows)]  # sheet s holds positions s*rows ...
+    present = [n if (d / n).is_file() else None for n in names]
+    info = {"dir": img_dir, "rows": rows, "cols": int(idx["sheet_cols"]), "thumb": int(idx["thumb"]),
+            "units": n_mined, "names": present}
+    return [d / n for n in present if n], info

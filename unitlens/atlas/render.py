@@ -1,0 +1,226 @@
+"""Write RUN/atlas/: a static folder that opens from file:// and never touches the network.
+
+  index.html                 the run summary (plain HTML, works without scripts)
+  layer-<layer>.html         one page per layer: unit cards, and the unit view at #unit-<channel>
+  atlas.css, atlas.js, plots.js   shared by every page (plots.js: our inline-SVG plot renderer)
+  data/<layer>.cards.js      what the cards need; data/<layer>.units.js what the unit view adds
+  img/<layer>/               the sprite sheets and synthesised PNGs, hard-linked (or copied)
+
+Data travels as scripts that assign a global, because browsers refuse fetch() of local files.
+A layer is redrawn only when what it is drawn from changed, so calling render_atlas after each
+finished layer of a long run costs little.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+from importlib import resources
+from pathlib import Path
+
+from ..errors import UnitlensError, closest
+from ..store import Run, _atomic, now, read_json, safe_name, write_json
+from .data import layer_data
+from .html import index_page, js_data, layer_page
+
+STATIC = ("atlas.css", "atlas.js", "plots.js")
+STATE = ".render.json"  # what each layer page was drawn from
+
+
+def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = None) -> Path:
+    """Draw (or bring up to date) the atlas of a run folder; returns the path of its index.html.
+
+    `layers`: redraw only these (the index and navigation always list every layer).
+
+    >>> render_atlas("runs/demo")                     # doctest: +SKIP
+    PosixPath('runs/demo/atlas/index.html')
+    """
+    run = run if isinstance(run, Run) else Run(run)
+    m = run.manifest()
+    known = _known_layers(m)
+    if layers is not None:
+        for name in layers:
+            if name not in known:
+                near = closest(name, known)
+                hint = f" Closest: {', '.join(near)}." if near else ""
+                raise UnitlensError(f"Layer '{name}' is neither mined nor synthesised in {run.path}.{hint} "
+                                    f"Known: {', '.join(known) or 'none'}.")
+    out = run.path / "atlas"
+    out.mkdir(parents=True, exist_ok=True)
+    version = _renderer_version()
+    for name in STATIC:
+        _write_if_changed(out / name, resources.files(__package__).joinpath("static", name).read_bytes())
+
+    state = read_json(out / STATE) or {}
+    if state.get("renderer") != version:
+        state = {"renderer": version, "layers": {}}
+    pages = state["layers"]
+    # the layers asked for, and any the atlas does not show yet (a new renderer redraws them all)
+    todo = known if layers is None else list(dict.fromkeys([*layers, *(n for n in known if n not in pages)]))
+    run_name = run.path.resolve().name
+    drew = False
+    for name in todo:
+        key = _layer_key(run, name, m)
+        old = pages.get(name)
+        if old and old.get("key") == key and (old.get("href") is None or (out / old["cards"]).is_file()):
+            continue
+        pages[name] = _draw_layer(run, out, name) | {"key": key}
+        drew = True
+        write_json(out / STATE, state)  # a later call knows this layer is done even if this one dies
+    for name in [n for n in pages if n not in known]:  # layers the run no longer has
+        _remove_layer(out, name, pages.pop(name))
+    keep = {Path(p[k]).name for p in pages.values() if p.get("href") for k in ("cards", "details")}
+    for f in (out / "data").glob("*") if (out / "data").is_dir() else ():
+        if f.name not in keep:  # left by an older renderer or a removed layer
+            f.unlink()
+
+    # every page lists every layer, so the shells are rewritten (only where that changes them)
+    nav = [(n, pages[n]["href"], pages[n]["units"]) for n in known if n in pages and pages[n].get("href")]
+    for name, href, _ in nav:
+        p = pages[name]
+        _write_if_changed(out / href, layer_page(run_name, name, p["facts"], p["cards"], p["details"], nav).encode())
+    rows = [_layer_row(n, m, pages.get(n)) for n in known]
+    index = out / "index.html"
+    drawn = state.get("drawn", "")
+    if drew or not index.is_file() or index.read_text() != index_page(m, rows, drawn, f"unitlens {version}", run_name):
+        state["drawn"] = drawn = now()  # the date on the index is that of the atlas's last change
+    _write_if_changed(index, index_page(m, rows, drawn, f"unitlens {version}", run_name).encode())
+    _write_if_changed(out / STATE, json.dumps(state, indent=1).encode())
+    return out / "index.html"
+
+
+def _known_layers(m: dict) -> list[str]:
+    """Every layer the run knows of: mined ones in manifest order, then layers only synthesised."""
+    names = list((m.get("mine") or {}).get("layers", {}))
+    names += [n for n in (m.get("synth") or {}).get("layers", {}) if n not in names]
+    return names
+
+
+def _renderer_version() -> str:
+    """Package version + a hash of the renderer's own files: a new renderer redraws every page."""
+    from .. import __version__
+
+    h = hashlib.sha256()
+    root = resources.files(__package__)
+    for rel in ("render.py", "data.py", "html.py", "templates/page.html", *(f"static/{s}" for s in STATIC)):
+        h.update(root.joinpath(rel).read_bytes())
+    return f"{__version__}+{h.hexdigest()[:10]}"
+
+
+def _stat(p: Path):
+    try:
+        s = p.stat()
+        return [p.name, s.st_size, s.st_mtime_ns]
+    except FileNotFoundError:
+        return None
+
+
+def _layer_key(run: Run, name: str, m: dict) -> str:
+    mdir, sdir = run.layer_dir(name), run.layer_dir(name, "synth")
+    parts = [_stat(mdir / "index.npz"), _stat(run.path / "corpus.json"), _stat(sdir / "units.json"),
+             [_stat(p) for p in sorted(mdir.glob("sheet-*.jpg"))],
+             (m.get("corpus") or {}).get("classes")]
+    return hashlib.sha256(json.dumps(parts).encode()).hexdigest()
+
+
+def _draw_layer(run: Run, out: Path, name: str) -> dict:
+    """Images and data of one layer; returns what its page shell and the index need."""
+    safe = safe_name(name)
+    img_rel = f"img/{safe}"
+    data = layer_data(run, name, img_rel)
+    if data is None:
+        _remove_layer(out, name, {"href": f"layer-{safe}.html"})
+        return {"href": None, "units": 0}
+    wanted = {p.name: p for p in data.sheets + data.images}
+    _place_all(wanted, out / img_rel)
+    cards_js, units_js = f"data/{safe}.cards.js", f"data/{safe}.units.js"
+    # the details go first: a page whose cards are new must never find old details
+    _write_if_changed(out / units_js, js_data("UNITLENS_UNITS", data.details).encode())
+    _write_if_changed(out / cards_js, js_data("UNITLENS_CARDS", data.cards).encode())
+    c = data.cards
+    facts = [f"{data.units} unit{'s' if data.units != 1 else ''}"]
+    if c.get("shape"):
+        facts.append("feature map " + " × ".join(map(str, c["shape"])))
+    if c.get("mined"):
+        facts.append(f"{c['k']} exemplars per unit from {c['images']:,} images")
+    else:
+        facts.append("not mined yet: no exemplars or statistics")
+    facts.append(f"{c['synthesised']} synthesised" if c["synthesised"] else "no synthesised images yet")
+    return {"href": f"layer-{safe}.html", "facts": facts, "cards": cards_js, "details": units_js, "units": data.units, "mined": sum(p is not None for p in c.get("pos", [])),
+            "synthesised": c["synthesised"], "shape": c.get("shape"), "k": c.get("k")}
+
+
+def _layer_row(name: str, m: dict, page: dict | None) -> dict:
+    ml = (m.get("mine") or {}).get("layers", {}).get(name)
+    sl = (m.get("synth") or {}).get("layers", {}).get(name)
+    status = []
+    if ml:
+        status.append("mined" if ml.get("done") else "mining in progress")
+    if sl:
+        status.append("synthesised" if sl.get("complete") else f"synthesis: {sl.get('done', 0)} of {sl.get('units', '?')}")
+    page = page or {}
+    return {"name": name, "href": page.get("href"), "shape": page.get("shape"), "mined": page.get("mined"),
+            "k": page.get("k"), "synthesised": page.get("synthesised", 0),
+            "synth_total": sl.get("units") if sl else None, "status": ", ".join(status)}
+
+
+def _remove_layer(out: Path, name: str, page: dict) -> None:
+    safe = safe_name(name)
+    for rel in (page.get("href"), f"data/{safe}.cards.js", f"data/{safe}.units.js"):
+        if rel:
+            (out / rel).unlink(missing_ok=True)
+    shutil.rmtree(out / "img" / safe, ignore_errors=True)
+
+
+# -- files -----------------------------------------------------------------------------------
+
+def _readable_mode() -> int:
+    """Mode of a new file under the user's umask (temporary files are created private)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+READABLE = _readable_mode()  # an atlas is made to be shared or served: its files are readable like any new file
+
+
+def _write_if_changed(path: Path, data: bytes) -> None:
+    try:
+        if path.read_bytes() == data:
+            return
+    except FileNotFoundError:
+        pass
+    _atomic(path, lambda f: f.write(data))
+    os.chmod(path, READABLE)
+
+
+def _place_all(wanted: dict[str, Path], d: Path) -> None:
+    """Make folder `d` hold exactly `wanted` ({name: source}): hard links where possible, else copies."""
+    d.mkdir(parents=True, exist_ok=True)
+    for p in d.iterdir():
+        if p.name not in wanted:
+            p.unlink()
+    for name, src in wanted.items():
+        _place(src, d / name)
+
+
+def _place(src: Path, dst: Path) -> None:
+    s = src.stat()
+    try:
+        t = dst.stat()
+        if (t.st_ino == s.st_ino and t.st_dev == s.st_dev) or (t.st_size == s.st_size and t.st_mtime_ns == s.st_mtime_ns):
+            return  # the same file, or an unchanged copy
+    except FileNotFoundError:
+        pass
+    tmp = dst.with_name(f".{dst.name}.tmp")
+    tmp.unlink(missing_ok=True)
+    readable = (s.st_mode & 0o444) & READABLE == READABLE & 0o444
+    try:
+        if not readable:  # a private file of the run: copy it, rather than change the run's own file
+            raise OSError
+        os.link(src, tmp)
+    except OSError:  # another file system, links not allowed, or private: copy (keeps the time stamp)
+        shutil.copy2(src, tmp)
+        os.chmod(tmp, READABLE)
+    os.replace(tmp, dst)

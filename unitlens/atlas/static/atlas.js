@@ -1,0 +1,432 @@
+/* unitlens layer page: a virtual grid of unit cards (only the cards near the viewport exist in
+   the document, so a layer of thousands of units opens at once), sorting and filtering, and the
+   unit view at #unit-<channel> with keyboard stepping.
+   Data: data/<layer>.cards.js (window.UNITLENS_CARDS) at once, data/<layer>.units.js
+   (window.UNITLENS_UNITS) when a unit is first opened. Every string from the data goes in
+   through textContent; nothing is parsed as markup. */
+(function () {
+  "use strict";
+  const C = window.UNITLENS_CARDS, P = window.ULPlot;
+  const N = C.units.length;
+  const grid = document.getElementById("grid"), view = document.getElementById("unit");
+  const toolbar = document.querySelector(".toolbar"), head = document.querySelector(".pagehead");
+  const sortSel = document.getElementById("sort"), dirBtn = document.getElementById("dir");
+  const filterIn = document.getElementById("filter"), countOut = document.getElementById("count");
+  const byUnit = new Map(C.units.map((u, i) => [u, i]));
+  const fmt = P.fmt;
+  const HERO = 104, SMALL = 50, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
+  const SPARK = "0123456789ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz-_";
+
+  function el(tag, cls, text) {
+    const e = document.createElement(tag);
+    if (cls) e.className = cls;
+    if (text !== undefined && text !== null) e.textContent = String(text);
+    return e;
+  }
+  function add(parent, tag, cls, text) { return parent.appendChild(el(tag, cls, text)); }
+  const pct = x => (x === null || x === undefined) ? "–" : (100 * x).toFixed(x < 0.1 && x > 0 ? 1 : 0) + "%";
+  const imgSrc = name => C.img_dir + "/" + name;
+
+  /* ---- crops from the sprite sheets (background-position; a sheet loads when a crop is drawn) */
+  const S = C.sheets;
+  function crop(i, col, size) {
+    const e = el("span", "crop");
+    e.style.width = e.style.height = size + "px";
+    const p = C.pos ? C.pos[i] : null;
+    const name = (S && p !== null && p !== undefined) ? S.names[Math.floor(p / S.rows)] : null;
+    if (!name) { e.classList.add("nocrop"); return e; }
+    const sheet = Math.floor(p / S.rows), row = p % S.rows;
+    const rowsHere = Math.min(S.rows, S.units - sheet * S.rows), k = size / S.thumb;
+    e.style.backgroundImage = 'url("' + S.dir + "/" + name + '")';
+    e.style.backgroundSize = (S.cols * S.thumb * k) + "px " + (rowsHere * S.thumb * k) + "px";
+    e.style.backgroundPosition = (-col * size) + "px " + (-row * size) + "px";
+    return e;
+  }
+  function synthImg(name, size, alt) {
+    const im = el("img", "synthimg");
+    im.loading = "lazy"; im.decoding = "async"; im.width = size; im.height = size; im.alt = alt;
+    im.src = imgSrc(name);
+    return im;
+  }
+
+  /* ---- one card (built on first sight, kept for reuse) */
+  const built = new Array(N);
+  function card(i) {
+    if (built[i]) return built[i];
+    const u = C.units[i], src = C.synth_src[i], filled = C.filled ? C.filled[i] : 0;
+    const a = el("a", "card");
+    a.href = "#unit-" + u;
+    a.dataset.unit = String(u);
+    a.setAttribute("aria-label", "unit " + u);
+    const top = add(a, "div", "card-head");
+    add(top, "span", "uid", u);
+    if (C.mined && C.peak[i] !== null) add(top, "span", "peak n-peak", "peak " + fmt(C.peak[i]));
+    const imgs = add(a, "div", "card-imgs");
+    let first = 0;
+    if (src) {
+      const f = add(imgs, "span", "hero synth");
+      f.appendChild(synthImg(src, HERO, "synthesised image for unit " + u));
+      add(f, "span", "badge", "synth");
+    } else if (filled > 0) {
+      add(imgs, "span", "hero").appendChild(crop(i, 0, HERO));
+      first = 1;
+    } else add(imgs, "span", "hero empty", "no images yet");
+    const quad = add(imgs, "span", "quad");
+    for (let r = first; r < first + 4; r++) quad.appendChild(r < filled ? crop(i, r, SMALL) : el("span", "crop nocrop"));
+    const sp = C.spark ? C.spark[i] : "";
+    if (sp) {
+      const counts = Array.from(sp, ch => SPARK.indexOf(ch));
+      a.appendChild(P.histogram({ counts: counts, lo: 0, hi: 1, width: 214, height: 26, spark: true,
+        marks: [{ x: C.spark_mean[i], cls: "mean" }], title: "distribution of the per-image maximum (dashed: mean)" }));
+    } else add(a, "div", "spark-empty", C.mined ? "" : "not mined");
+    const nums = add(a, "div", "card-nums");
+    if (C.mined) {
+      add(nums, "span", "n-fire", "fires " + pct(C.fire[i]));
+      if (C.csi[i] !== null) add(nums, "span", "n-csi", "sel " + fmt(C.csi[i], 2));
+    }
+    if (C.ratio[i] !== null) add(nums, "span", "n-ratio", "synth ×" + fmt(C.ratio[i], 2));
+    built[i] = a;
+    return a;
+  }
+
+  /* ---- order, filter, and the virtual grid */
+  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio };
+  const state = { sort: "id", desc: false, filter: null };
+  let order = [], cols = 1, cardW = CARD_MIN_W, mounted = new Set(), firstFrame = false;
+
+  function parseFilter(text) {
+    const t = text.trim();
+    if (!t) return null;
+    const ranges = [];
+    for (const p of t.split(/[\s,]+/).filter(Boolean)) {
+      const m = /^(\d+)(?:-(\d+))?$/.exec(p);
+      if (!m) return undefined;
+      const a = +m[1], b = m[2] === undefined ? a : +m[2];
+      ranges.push([Math.min(a, b), Math.max(a, b)]);
+    }
+    return u => ranges.some(r => u >= r[0] && u <= r[1]);
+  }
+
+  function computeOrder() {
+    const key = KEYS[state.sort] || C.units, sign = state.desc ? -1 : 1, idx = [];
+    for (let i = 0; i < N; i++) if (!state.filter || state.filter(C.units[i])) idx.push(i);
+    idx.sort((a, b) => {
+      const x = key[a], y = key[b];
+      const xn = x === null || x === undefined, yn = y === null || y === undefined;
+      if (xn || yn) return xn && yn ? C.units[a] - C.units[b] : xn ? 1 : -1;  // missing values last
+      return (x - y) * sign || C.units[a] - C.units[b];
+    });
+    return idx;
+  }
+
+  function measure() {
+    const w = grid.clientWidth || CARD_MIN_W;
+    cols = Math.max(1, Math.floor((w + GAP) / (CARD_MIN_W + GAP)));
+    cardW = (w - GAP * (cols - 1)) / cols;
+    const rows = Math.ceil(order.length / cols);
+    grid.style.height = Math.max(0, rows * (CARD_H + GAP) - GAP) + "px";
+  }
+
+  /* mount the cards of the rows in (or `extra` rows near) the viewport, unmount the rest */
+  function paint(extra) {
+    if (grid.hidden) return;
+    const more = extra === undefined ? BUFFER : extra;
+    const top = grid.getBoundingClientRect().top, rowH = CARD_H + GAP;
+    const r0 = Math.max(0, Math.floor(-top / rowH) - more);
+    const r1 = Math.floor((window.innerHeight - top) / rowH) + more;
+    const want = new Set();
+    for (let k = r0 * cols; k < Math.min(order.length, (r1 + 1) * cols); k++) want.add(order[k]);
+    mounted.forEach(i => { if (!want.has(i)) { built[i].remove(); } });
+    const frag = document.createDocumentFragment();
+    for (let k = r0 * cols; k < Math.min(order.length, (r1 + 1) * cols); k++) {
+      const i = order[k], a = card(i);
+      a.style.left = ((k % cols) * (cardW + GAP)) + "px";
+      a.style.top = (Math.floor(k / cols) * rowH) + "px";
+      a.style.width = cardW + "px";
+      if (!mounted.has(i) || a.parentNode !== grid) frag.appendChild(a);
+    }
+    grid.appendChild(frag);
+    mounted = want;
+  }
+  let queued = false;
+  function schedule() { if (!queued) { queued = true; requestAnimationFrame(() => { queued = false; paint(); }); } }
+
+  function layout() {
+    order = computeOrder();
+    grid.dataset.sort = state.sort;
+    countOut.textContent = order.length === N ? N + " units" : order.length + " of " + N + " units";
+    measure();
+    paint(firstFrame ? 0 : BUFFER);
+  }
+
+  function setSort(key, desc) {
+    state.sort = key; state.desc = desc;
+    sortSel.value = key;
+    dirBtn.setAttribute("aria-pressed", String(desc));
+    dirBtn.textContent = desc ? "↓ high first" : "↑ low first";
+    layout();
+  }
+  sortSel.addEventListener("change", () => setSort(sortSel.value, sortSel.value !== "id"));
+  dirBtn.addEventListener("click", () => setSort(state.sort, !state.desc));
+  filterIn.addEventListener("input", () => {
+    const f = parseFilter(filterIn.value);
+    filterIn.setAttribute("aria-invalid", String(f === undefined));
+    if (f === undefined) return;
+    state.filter = f;
+    layout();
+  });
+  // orders without data stay listed but disabled, so the control says what is missing
+  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio]].forEach(([k, v]) => {
+    const opt = sortSel.querySelector('option[value="' + k + '"]');
+    if (!v || !v.some(x => x !== null && x !== undefined)) { opt.disabled = true; opt.textContent += " (none)"; }
+  });
+  window.addEventListener("scroll", schedule, { passive: true });
+  window.addEventListener("resize", () => { measure(); schedule(); });
+
+  /* ---- the unit view */
+  let details = window.UNITLENS_UNITS || null, waiting = [], loading = false, savedScroll = 0, current = null, last = null;
+
+  function withDetails(cb) {
+    if (details) return cb(details);
+    waiting.push(cb);
+    if (loading) return;
+    loading = true;
+    const s = document.createElement("script");
+    s.src = document.body.dataset.details;
+    s.onload = () => { details = window.UNITLENS_UNITS; waiting.splice(0).forEach(f => f(details)); };
+    s.onerror = () => { loading = false; waiting.splice(0).forEach(f => f(null)); };
+    document.body.appendChild(s);
+  }
+
+  function section(parent, title, cls) {
+    const s = add(parent, "section", "uv-sec " + (cls || ""));
+    add(s, "h2", "", title);
+    return s;
+  }
+  function facts(parent, rows, cls) {
+    const dl = add(parent, "dl", "facts " + (cls || ""));
+    rows.forEach(([k, v, w]) => { if (v === null || v === undefined) return; add(dl, "dt", "", k); add(dl, "dd", "num " + (w || ""), v); });
+    return dl;
+  }
+
+  function neighbour(i, step) {
+    // step through the cards as ordered now; a unit outside the filter steps by id
+    const list = order.indexOf(i) >= 0 ? order : C.units.map((u, k) => k);
+    const j = list.indexOf(i) + step;
+    return j >= 0 && j < list.length ? list[j] : null;
+  }
+  function go(i) { if (i !== null) location.replace("#unit-" + C.units[i]); }
+
+  function openUnit(u) {
+    const i = byUnit.get(u);
+    if (view.hidden) savedScroll = window.scrollY;
+    grid.hidden = true; toolbar.hidden = true; head.classList.add("compact");
+    view.hidden = false;
+    view.replaceChildren();
+    view.dataset.unit = String(u);
+    delete view.dataset.complete;
+    if (i === undefined) {
+      add(view, "p", "missing", "Unit " + u + " is not in this layer. ");
+      add(view, "a", "", "Back to all units").href = "#";
+      return;
+    }
+    current = last = i;
+    document.title = "unit " + u + " · " + C.layer;
+    const bar = add(view, "div", "uv-bar");
+    add(bar, "a", "uv-back", "all units").href = "#";
+    const t = add(bar, "h2", "uv-title");
+    add(t, "span", "uv-unit", "unit " + u);
+    add(t, "span", "uv-layer", C.layer);
+    const steps = add(bar, "span", "uv-steps");
+    const prev = neighbour(i, -1), next = neighbour(i, 1);
+    [["‹ previous", prev, "previous unit (← or k)"], ["next ›", next, "next unit (→ or j)"]].forEach(([label, to, title]) => {
+      const b = add(steps, "button", "uv-step", label);
+      b.type = "button"; b.disabled = to === null; b.title = title;
+      b.addEventListener("click", () => go(to));
+    });
+    const k = order.indexOf(i);
+    add(bar, "span", "uv-where", k >= 0 ? (k + 1) + " of " + order.length + ", by " + sortSel.selectedOptions[0].textContent.replace(" (none)", "") : "");
+
+    const body = add(view, "div", "uv-body");
+    const left = add(body, "div", "uv-col uv-left"), right = add(body, "div", "uv-col uv-right");
+    const prof = section(left, "At a glance", "uv-profile");
+    const heroes = add(prof, "div", "uv-heroes");
+    const hs = Math.max(96, Math.min(176, Math.floor((view.clientWidth - 100) / 2)));  // two side by side, even on a phone
+    if (C.synth_src[i]) {
+      const f = add(heroes, "figure", "synth");
+      f.appendChild(synthImg(C.synth_src[i], hs, "synthesised image for unit " + u));
+      add(f, "figcaption", "", C.synth_n[i] > 1 ? "synthesised (1 of " + C.synth_n[i] + ")" : "synthesised");
+    }
+    if (C.mined && C.filled[i] > 0) {
+      const f = add(heroes, "figure", "natural");
+      f.appendChild(crop(i, 0, hs));
+      add(f, "figcaption", "", "strongest natural crop");
+    }
+    if (!C.mined) add(prof, "p", "note", "This layer has not been mined yet: no exemplars or statistics.");
+    const secs = [];
+    const want = (cond, parent, title, cls) => { const s = cond ? section(parent, title, cls) : null; if (s) { secs.push(s); add(s, "p", "loading", "loading…"); } return s; };
+    const dist = want(C.mined, left, "Per-image maximum over the corpus", "uv-dist");
+    const exSec = want(C.mined, right, "Images that drive it most", "uv-ex");
+    const negSec = want(C.mined && C.negative, right, "Images that push it lowest (spatial minimum)", "uv-neg");
+    const labSec = want(C.mined, right, "By label", "uv-labels");
+    const synSec = want(!!C.synth_src[i], right, "Synthesised images: how they were made, how far to trust them", "uv-synth");
+    add(view, "p", "uv-caution", "Exemplars and synthesised images are evidence about this unit, not proof of what it means. " +
+      "Keys: ← → (or k j) previous / next unit, Esc back to all units.");
+    view.focus({ preventScroll: true });
+    window.scrollTo(0, 0);
+
+    withDetails(D => {
+      if (current !== i || view.hidden) return;
+      secs.forEach(s => s.querySelectorAll(".loading").forEach(n => n.remove()));
+      if (!D) { add(right, "p", "missing", "The details of this layer (" + document.body.dataset.details + ") could not be read."); return; }
+      const sd = D.synth ? D.synth[i] : null;
+      if (C.mined) profile(prof, i, D);
+      if (dist) histogram(dist, i, D, sd);
+      if (exSec) exemplars(exSec, i, D, D.top, 0);
+      if (negSec) exemplars(negSec, i, D, D.bottom, C.k);
+      if (labSec) labels(labSec, i, D);
+      if (synSec) synthesis(synSec, i, sd);
+      view.dataset.complete = "1";
+    });
+  }
+
+  function profile(sec, i, D) {
+    facts(sec, [
+      ["images seen", C.images.toLocaleString()],
+      ["peak (largest per-image max)", fmt(C.peak[i], 4)],
+      ["per-image max, mean ± std", fmt(D.mean_max[i]) + " ± " + fmt(D.std_max[i])],
+      ["mean activation", fmt(D.mean_mean[i])],
+      ["fires (max > 0) on", pct(C.fire[i])],
+      ["lowest value anywhere", fmt(D.low[i])],
+      ["class selectivity", C.csi[i] === null ? null : fmt(C.csi[i], 3)],
+      ["synthesised / natural", C.ratio[i] !== null ? "×" + fmt(C.ratio[i], 3) : null],
+    ]);
+  }
+
+  function histogram(sec, i, D, sd) {
+    if (!D.hist[i] || !D.hist[i].length) { add(sec, "p", "note", "no histogram in the index"); return; }
+    const marks = [{ x: D.mean_max[i], label: "mean", cls: "mean" }];
+    if (sd && sd.images.length) {
+      const best = Math.max(...sd.images.map(im => im.max_activation === null ? -Infinity : im.max_activation));
+      if (isFinite(best)) marks.push({ x: best, label: "synth " + fmt(best), cls: "synth" });
+    }
+    const box = add(sec, "div", "plotbox");
+    box.dataset.plot = "histogram";
+    box.appendChild(P.histogram({ counts: D.hist[i], lo: D.hist_lo[i], hi: D.hist_hi[i], width: 380, height: 170, marks: marks,
+      xlabel: "largest activation in the image", ylabel: "images", title: "histogram of the per-image maximum of unit " + C.units[i] }));
+    add(sec, "p", "note", D.hist[i].length + " equal bins from " + fmt(D.hist_lo[i]) + " to " + fmt(D.hist_hi[i]) +
+      ", re-binned from the run's fixed asinh bins (counts spread evenly within a source bin)." +
+      (marks.length > 1 ? " Blue: the synthesised image's spatial maximum." : ""));
+  }
+
+  function exemplars(sec, i, D, lists, col0) {
+    const list = lists ? lists[i] : null;
+    if (!list || !list.length) { add(sec, "p", "note", "none"); return; }
+    const g = add(sec, "div", "ex-grid");
+    const size = 96;  // crops of any thumbnail size show at one readable size
+    list.forEach(([f, score, rank, box]) => {
+      const fig = add(g, "figure", "ex");
+      fig.dataset.rank = String(rank + 1);
+      fig.appendChild(crop(i, col0 + rank, size));
+      const cap = add(fig, "figcaption");
+      const line = add(cap, "span", "ex-line");
+      add(line, "span", "ex-rank", "#" + (rank + 1));
+      add(line, "span", "ex-score", fmt(score, 4));
+      const file = add(cap, "span", "ex-file", D.files[f]);
+      file.title = D.files[f] + (box ? "\ncrop box x " + box[0] + "–" + box[2] + ", y " + box[1] + "–" + box[3] + " (original pixels)" : "\nno crop could be cut");
+      if (D.labels && D.labels[f] !== null) add(cap, "span", "ex-label", D.labels[f]);
+    });
+  }
+
+  function labels(sec, i, D) {
+    if (!D.classes || !D.class_mean || !D.class_mean[i]) { add(sec, "p", "note", "The corpus has no labels."); return; }
+    const means = D.class_mean[i];
+    let best = 0;
+    means.forEach((v, k) => { if (v !== null && (means[best] === null || v > means[best])) best = k; });
+    add(sec, "p", "note", "Mean activation per class (spatial mean over each image). Class selectivity " +
+      (C.csi[i] === null ? "–" : fmt(C.csi[i], 3)) + ": 0 when every class drives the unit alike, 1 when only one does" +
+      (means.some(v => v !== null && v < 0) ? "; the index assumes non-negative activations, so with negative class means here read it with care." : "."));
+    const box = add(sec, "div", "plotbox");
+    box.dataset.plot = "classes";
+    box.appendChild(P.hbars({ labels: D.classes, values: means, highlight: best, width: 400, title: "class means of unit " + C.units[i] }));
+    const tally = new Map();
+    (D.top[i] || []).forEach(([f]) => { const l = D.labels ? D.labels[f] : null; if (l !== null) tally.set(l, (tally.get(l) || 0) + 1); });
+    if (tally.size) {
+      const p = add(sec, "p", "tally");
+      add(p, "span", "", "Labels of the top " + D.top[i].length + " exemplars: ");
+      [...tally.entries()].sort((a, b) => b[1] - a[1]).forEach(([l, c]) => {
+        const chip = add(p, "span", "chip");
+        add(chip, "span", "", l);
+        add(chip, "b", "", c);
+      });
+    }
+  }
+
+  function synthesis(sec, i, rec) {
+    if (!rec) { add(sec, "p", "note", "none yet"); return; }
+    const g = add(sec, "div", "syn-grid");
+    rec.images.forEach((im, m) => {
+      const fig = add(g, "figure", "syn");
+      fig.appendChild(synthImg(im.src, 128, "synthesised image " + (m + 1) + " for unit " + C.units[i]));
+      const rows = [];
+      if (im.ratio !== null) rows.push(["vs best natural", "×" + fmt(im.ratio, 3), im.ratio < 1 ? "warn" : ""]);
+      rows.push(["spatial max", fmt(im.max_activation, 4)]);
+      rows.push(["objective on saved image", fmt(im.activation, 4)]);
+      if (im.rank) rows.push(["rank among " + (im.channels || "?") + " channels", String(im.rank), im.rank > 1 ? "warn" : ""]);
+      if (im.robustness) {
+        const r = im.robustness;
+        rows.push(["under " + r.n + " random transforms", fmt(r.mean) + " ± " + fmt(r.std) + (r.relative !== null ? " (" + pct(r.relative) + ")" : ""),
+          r.relative !== null && r.relative < 0.5 ? "warn" : ""]);
+      }
+      rows.push(["steps", String(im.steps)]);
+      facts(add(fig, "figcaption"), rows, "small");
+    });
+    const notes = [];
+    if (rec.images.some(im => im.rank > 1)) notes.push("a rank above 1 means other channels of the layer respond more strongly to that image");
+    if (rec.images.some(im => im.robustness && im.robustness.relative !== null && im.robustness.relative < 0.5)) notes.push("an image that loses most of its effect under small transforms works only as it stands");
+    if (rec.images.some(im => im.ratio !== null && im.ratio < 1)) notes.push("below ×1 the image excites the unit less than the best natural exemplar");
+    if (notes.length) add(sec, "p", "note warn", "Mind: " + notes.join("; ") + ".");
+    if (rec.trace && rec.trace.some(t => t.step.length)) {
+      const box = add(sec, "div", "plotbox");
+      box.dataset.plot = "trace";
+      box.appendChild(P.lines({ series: rec.trace.map((t, m) => ({ x: t.step, y: t.value, name: "image " + (m + 1) })),
+        width: 400, height: 170, xlabel: "optimisation step", ylabel: "objective (under that step's transform)", title: "objective per step" }));
+    }
+  }
+
+  function closeUnit() {
+    if (view.hidden) return;
+    view.hidden = true; view.replaceChildren(); current = null;
+    grid.hidden = false; toolbar.hidden = false; head.classList.remove("compact");
+    document.title = document.title.replace(/^unit .* · /, "");
+    measure();
+    window.scrollTo(0, savedScroll);
+    paint();
+    if (last !== null && built[last] && built[last].isConnected) built[last].focus({ preventScroll: true });
+  }
+
+  function route() {
+    const m = /^#unit-(-?\d+)$/.exec(location.hash);
+    if (m) openUnit(+m[1]); else closeUnit();
+  }
+  window.addEventListener("hashchange", route);
+
+  document.addEventListener("keydown", e => {
+    const t = e.target, typing = t && (t.tagName === "INPUT" || t.tagName === "SELECT" || t.tagName === "TEXTAREA");
+    if (e.altKey || e.ctrlKey || e.metaKey) return;
+    if (typing) { if (e.key === "Escape") t.blur(); return; }
+    if (!view.hidden) {
+      if (current !== null && (e.key === "ArrowRight" || e.key === "j")) { e.preventDefault(); go(neighbour(current, 1)); }
+      else if (current !== null && (e.key === "ArrowLeft" || e.key === "k")) { e.preventDefault(); go(neighbour(current, -1)); }
+      else if (e.key === "Escape") { e.preventDefault(); location.hash = ""; }
+    } else if (e.key === "/") { e.preventDefault(); filterIn.focus(); }
+  });
+
+  // the first frame draws only what is on screen; the rows around it follow right after
+  firstFrame = true;
+  setSort("id", false);
+  firstFrame = false;
+  setTimeout(() => paint(), 0);
+  route();
+  document.documentElement.dataset.ready = performance.now().toFixed(1);
+})();
