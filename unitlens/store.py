@@ -23,6 +23,8 @@ import numpy as np
 from .errors import UnitlensError
 
 FORMAT = 1
+_UMASK = os.umask(0)
+os.umask(_UMASK)
 
 
 def _atomic(path: Path, write) -> None:
@@ -33,6 +35,7 @@ def _atomic(path: Path, write) -> None:
             write(f)
             f.flush()
             os.fsync(f.fileno())
+        os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes private files; a run folder is shared like any
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
