@@ -98,7 +98,10 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
     def synth_started(out):
         return lambda: any((out / "synth").rglob("*.png")) if (out / "synth").is_dir() else False
 
-    for name, ready in (("mining", mining_started), ("synthesis", synth_started)):
+    def atlas_started(out):
+        return lambda: (out / "atlas" / "data").is_dir()
+
+    for name, ready in (("mining", mining_started), ("synthesis", synth_started), ("atlas", atlas_started)):
         out = tmp_path / name
         _kill_when(_cmd(corpus, out, r18_weights), ready(out))
         r = subprocess.run(_cmd(corpus, out, r18_weights), cwd=ROOT, capture_output=True, text=True)
