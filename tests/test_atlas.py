@@ -300,13 +300,13 @@ def test_cli_prints_the_index(tiny):
 
 
 def atlas_files(units: int, per_unit: int = 1, synthesised: bool = True) -> int:
-    """Files of a one-layer atlas: 7 pages, styles, scripts and data + sprite sheets + synthesised PNGs."""
-    return 7 + math.ceil(units / SHEET_ROWS) + (units * per_unit if synthesised else 0)
+    """Files of a one-layer atlas: 8 pages, styles, scripts, icon and data + sprite sheets + synthesised PNGs."""
+    return 8 + math.ceil(units / SHEET_ROWS) + (units * per_unit if synthesised else 0)
 
 
 def test_file_count_of_a_resnet50_layer4_atlas(big):
     files = [p for p in big.atlas.rglob("*") if p.is_file() and not p.name.startswith(".")]
-    assert len(files) == atlas_files(2048) == 2119  # 16 exemplars per unit change the sheets' width, not their number
+    assert len(files) == atlas_files(2048) == 2120  # 16 exemplars per unit change the sheets' width, not their number
     print(f"\nResNet-50 layer4 atlas: {len(files)} files (+ one state file); drawn in {big.seconds:.1f} s")
 
 

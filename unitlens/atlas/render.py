@@ -24,7 +24,7 @@ from ..store import Run, _atomic, now, read_json, safe_name, write_json
 from .data import layer_data
 from .html import index_page, js_data, layer_page
 
-STATIC = ("atlas.css", "atlas.js", "plots.js")
+STATIC = ("atlas.css", "atlas.js", "plots.js", "icon.png")  # the icon spares servers a favicon 404
 STATE = ".render.json"  # what each layer page was drawn from
 
 
