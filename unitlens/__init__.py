@@ -13,6 +13,12 @@ _EXPORTS = {
     "mine": "mining",
     "MineConfig": "mining",
     "unit_summary": "summary",
+    "synthesize": "synth",
+    "SynthConfig": "synth",
+    "compare": "comparison",
+    "CompareConfig": "comparison",
+    "render_atlas": "atlas",
+    "run_all": "workflow",
 }
 __all__ = [*_EXPORTS, "__version__"]
 

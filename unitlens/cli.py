@@ -161,6 +161,183 @@ def show(
             print(f"   {e['rank']:>3}  {e['score']:>10.4g}  box {e['box']}  {e['id']}{label}")
 
 
+@app.command("run")
+def run_cmd(
+    model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
+    corpus: Path = typer.Option(..., "--corpus", help="Folder of images (searched recursively) or a text file of paths."),
+    layers: list[str] = typer.Option(..., "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
+    out: Path = typer.Option(..., "--out", help="Run folder (resumed if it exists)."),
+    units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
+    top: int = typer.Option(16, "--top", min=1, help="Exemplars kept per unit (top and bottom)."),
+    labels: Optional[str] = typer.Option(None, "--labels", help="'folders': class labels from first-level subfolders."),
+    steps: int = typer.Option(256, "--steps", min=1, help="Synthesis steps per image at most."),
+    synth_size: Optional[int] = typer.Option(None, "--synth-size", help="Synthesised image size (default: the input size)."),
+    seed: int = typer.Option(0, "--seed", help="Synthesis seed."),
+    budget: Optional[str] = typer.Option(None, "--budget", help="Time to fit in, e.g. 8h or 90m: steps, size and units are chosen to fit."),
+    batch_size: int = typer.Option(32, "--batch-size", min=1, help="Images per forward pass when mining."),
+    workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
+):
+    """Mine, synthesise and draw the atlas in one resumable command (kill it and run it again)."""
+    import torch
+
+    from . import MineConfig, SynthConfig, open_corpus, parse_layers, run_all
+
+    if threads:
+        torch.set_num_threads(threads)
+    m = _load(model, weights, size, mean, std, allow_pickle, arch_option)
+    chosen = parse_layers(m, layers, units)
+    c = open_corpus(corpus, labels=labels)
+    run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers),
+                  SynthConfig(steps=steps, size=synth_size, seed=seed), budget=budget,
+                  progress=sys.stderr.isatty())
+    print(run.path / "atlas" / "index.html")
+
+
+@app.command("synth")
+def synth(
+    target: str = typer.Argument(..., help="A run folder (model and units from its manifest), or a MODEL (then give --layers and --out)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable; default: those mined)."),
+    units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
+    out: Optional[Path] = typer.Option(None, "--out", help="Run folder to write when TARGET is a model (resumed if it exists)."),
+    steps: int = typer.Option(256, "--steps", min=1, help="Adam steps per image at most (Olah et al. 2017 used 2560)."),
+    size: Optional[int] = typer.Option(None, "--size", help="Image size in px (default: the model's input size; for a MODEL also its input size)."),
+    per_unit: int = typer.Option(1, "--per-unit", min=1, help="Images per unit."),
+    seed: int = typer.Option(0, "--seed", help="Seed; a unit's images depend only on it, the layer, the channel and the image number."),
+    param: str = typer.Option("spectral", "--param", help="spectral (1/f Fourier coefficients, decorrelated colour) or pixel (plain RGB)."),
+    objective: str = typer.Option("channel", "--objective", help="channel (spatial mean) or neuron (the centre position)."),
+    diversity: float = typer.Option(0.0, "--diversity", min=0.0, help="Weight of the diversity term between a unit's images (e.g. 0.5 with --per-unit 4)."),
+    tv: float = typer.Option(0.0, "--tv", min=0.0, help="Weight of a total-variation penalty (off by default)."),
+    l2: float = typer.Option(0.0, "--l2", min=0.0, help="Weight of an L2 pixel penalty (off by default)."),
+    blur_every: int = typer.Option(0, "--blur-every", min=0, help="Blur the image every N steps (0: never)."),
+    no_transforms: bool = typer.Option(False, "--no-transforms", help="No random transforms (images turn to high-frequency noise)."),
+    early_stop: bool = typer.Option(True, "--early-stop/--no-early-stop", help="Stop an image once its objective stops improving."),
+    lr: float = typer.Option(0.05, "--lr", help="Adam learning rate."),
+    batch_size: Optional[int] = typer.Option(None, "--batch-size", min=1, help="Images per pass (default: from free memory, at most 32)."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    force: bool = typer.Option(False, "--force", help="Redo synthesised images made with other settings."),
+    weights: Optional[str] = Weights, mean: Optional[str] = Mean, std: Optional[str] = Std,
+    allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
+):
+    """Pass 2: synthesise images that drive each unit, many units per batch."""
+    import torch
+
+    from . import SynthConfig, parse_layers, synthesize
+    from .errors import UnitlensError
+    from .synth import TransformSpec, channel, diversity as diversity_term, neuron, pixel_norm, total_variation
+    from .synth.pipeline import model_from_run, run_layers
+
+    if threads:
+        torch.set_num_threads(threads)
+    run_dir = Path(target)
+    if run_dir.is_dir():
+        if out is not None:
+            raise UnitlensError(f"{target} is a run folder; --out is for synthesising from a MODEL.")
+        given = [n for n, v in (("--weights", weights), ("--mean", mean), ("--std", std), ("--arch-option", arch_option)) if v]
+        if given:
+            raise UnitlensError(f"{target} is a run folder, whose manifest names the model; {', '.join(given)} "
+                                "apply only when TARGET is a model.")
+        from .store import Run
+
+        m = model_from_run(run_dir, allow_pickle)
+        chosen = run_layers(m, Run(run_dir).manifest(), layers, units)
+    else:
+        if out is None or not layers:
+            raise UnitlensError(f"'{target}' is not a run folder. To synthesise from a model, give --layers and --out "
+                                "(e.g. unitlens synth torchvision:resnet18 --layers layer3 --out runs/r18).")
+        m = _load(target, weights, size, mean, std, allow_pickle, arch_option)
+        chosen = parse_layers(m, layers, units)
+        run_dir = out
+    if objective not in ("channel", "neuron"):
+        raise UnitlensError(f"--objective must be channel or neuron, got '{objective}'.")
+    obj = channel() if objective == "channel" else neuron()
+    if diversity:
+        obj = obj + diversity * diversity_term()
+    if tv:
+        obj = obj - tv * total_variation()
+    if l2:
+        obj = obj - l2 * pixel_norm(2)
+    config = SynthConfig(steps=steps, size=size, per_unit=per_unit, seed=seed, lr=lr, param=param,
+                         transforms=TransformSpec.none() if no_transforms else TransformSpec(),
+                         blur_every=blur_every, stop_gain=SynthConfig.stop_gain if early_stop else None,
+                         batch_size=batch_size)
+    n_units = sum(len(lu.units) for lu in chosen)
+    print(f"Synthesising {n_units} units in {len(chosen)} layer(s), {steps} steps at most -> {run_dir}", file=sys.stderr)
+    run = synthesize(m, chosen, run_dir, config, obj, progress=sys.stderr.isatty(), force=force)
+    print(run.path)
+
+
+@app.command("compare")
+def compare_cmd(
+    a: str = typer.Argument(..., metavar="A", help="Model A (torchvision:<arch>, file.py:function, TorchScript file), or a run folder."),
+    b: str = typer.Argument(..., metavar="B", help="Model B, or a second run folder mined over the same corpus."),
+    weights_a: Optional[str] = typer.Option(None, "--weights-a", help="Weights of model A: state-dict file or torchvision weights name."),
+    weights_b: Optional[str] = typer.Option(None, "--weights-b", help="Weights of model B."),
+    corpus: Optional[Path] = typer.Option(None, "--corpus", help="Probe images for two models (runs carry their corpus)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Layers of A (and of B without --layers-b), comma-separated; LAYER:CHANNELS limits the unit tables. Runs: default, all mined in both."),
+    layers_b: Optional[list[str]] = typer.Option(None, "--layers-b", help="Layers of B, paired with --layers in depth order (e.g. another architecture)."),
+    out: Optional[Path] = typer.Option(None, "--out", help="Folder for compare.json and the CSV tables (runs: default RUN_A/compare/<RUN_B name>)."),
+    full_maps: bool = typer.Option(False, "--full-maps", help="Also CKA of whole feature maps (minibatch estimator, unbiased HSIC)."),
+    top: int = typer.Option(16, "--top", min=1, help="Size of the top exemplar sets whose overlap (Jaccard) is reported."),
+    bootstrap: int = typer.Option(200, "--bootstrap", min=0, help="Resamples for the 95% CKA intervals (0: none)."),
+    batch_size: int = typer.Option(64, "--batch-size", min=1, help="Images per forward pass (the minibatch of --full-maps)."),
+    workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    size: Optional[int] = typer.Option(None, "--size", help="Input size of both models (default: from the weights' metadata)."),
+    mean: Optional[str] = typer.Option(None, "--mean", help="Normalisation mean of both models, R,G,B."),
+    std: Optional[str] = typer.Option(None, "--std", help="Normalisation std of both models, R,G,B."),
+    allow_pickle: bool = AllowPickle, as_json: bool = Json,
+):
+    """Compare two checkpoints (or two mined runs) on one corpus: CKA per layer, drift per unit."""
+    import torch
+
+    from . import CompareConfig, compare
+    from .errors import UnitlensError
+
+    if threads:
+        torch.set_num_threads(threads)
+    config = CompareConfig(top_k=top, full_maps=full_maps, bootstrap=bootstrap, batch_size=batch_size, workers=workers)
+    if Path(a).is_dir() or Path(b).is_dir():
+        given = [n for n, v in (("--weights-a", weights_a), ("--weights-b", weights_b), ("--size", size),
+                                ("--mean", mean), ("--std", std)) if v]
+        if given:
+            raise UnitlensError(f"{', '.join(given)} apply to models; a run folder's manifest names its model.")
+        s = compare(a, b, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
+                    progress=sys.stderr.isatty(), allow_pickle=allow_pickle)
+    else:
+        if out is None:
+            raise UnitlensError("Comparing two models writes a folder: give --out DIR.")
+        ma = _load(a, weights_a, size, mean, std, allow_pickle, None)
+        mb = _load(b, weights_b, size, mean, std, allow_pickle, None)
+        s = compare(ma, mb, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
+                    progress=sys.stderr.isatty())
+    if as_json:
+        print(json.dumps(s, indent=1))
+        return
+    fmt = lambda v: "-" if v is None else f"{v:.3f}"  # noqa: E731
+    print(f"{'layer':<20} {'CKA':>6} {'95% interval':>15} {'full-map':>9} {'corr':>6} {'jaccard':>7} {'dead':>4}  most changed")
+    for e in s["layers"]:
+        name = e["layer"] if e["layer"] == e["layer_b"] else f"{e['layer']}~{e['layer_b']}"
+        ci = f"{fmt(e['cka_ci'][0])}-{fmt(e['cka_ci'][1])}" if e["cka_ci"] else "-"
+        print(f"{name:<20} {fmt(e['cka']):>6} {ci:>15} {fmt(e['cka_full_maps']):>9} {fmt(e['mean_corr']):>6} "
+              f"{fmt(e['mean_jaccard']):>7} {e['dead']:>4}  {', '.join(map(str, e['most_changed'][:8])) or e['units_note'] or ''}")
+    print(s["out"])
+
+
+@app.command("atlas")
+def atlas_cmd(
+    run: Path = typer.Argument(..., help="A run folder (mined, synthesised, or both)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Redraw only these layers, comma-separated (repeatable; default: all)."),
+):
+    """Draw the run's static HTML atlas into RUN/atlas/ (opens from file://, no server, no network)."""
+    from . import render_atlas
+
+    names = [n.strip() for text in layers for n in text.split(",") if n.strip()] if layers else None
+    print(render_atlas(run, layers=names))
+
+
 def main() -> None:
     from .errors import UnitlensError
 

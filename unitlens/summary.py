@@ -76,4 +76,7 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
     }
     if float(idx["low"].min()) < 0:
         result["negative_exemplars"] = listing("bottom")
+    from .synth.results import unit_images
+
+    result["synth"] = unit_images(run, layer, channel)  # [] until `unitlens synth` has run
     return result

@@ -1,0 +1,439 @@
+"""Pass 2 (unitlens/synth): parameterisations, transforms, objectives, the batched loop, the run folder."""
+import json
+import math
+import sys
+
+import numpy as np
+import pytest
+import torch
+
+from conftest import TESTS, run_cli
+from unitlens import UnitlensError, load_model, parse_layers
+from unitlens.synth import (ColourBasis, PixelImage, SpectralImage, SynthConfig, TransformSpec, channel, direction,
+                            diversity, negative, neuron, optimise_units, pixel_norm, synthesize, total_variation,
+                            unit_images)
+from unitlens.synth.objectives import Context
+from unitlens.synth.param import DEFAULT_CORR, DEFAULT_STD, default_covariance
+from unitlens.synth.transforms import warp
+from unitlens.store import Run
+
+PLANTED = f"{TESTS / 'planted.py'}"
+NETS = f"{TESTS / 'nets.py'}"
+QUICK = dict(stop_gain=None, checks=0)  # fixed step counts, no robustness check
+
+
+# -- parameterisations ---------------------------------------------------------------------
+
+@pytest.mark.parametrize("size", [32, 33])
+def test_spectral_image_matches_numpy_fft(size):
+    p = SpectralImage(size, ColourBasis.default())
+    params = torch.randn(2, *p.shape, generator=torch.Generator().manual_seed(0))
+    # reference: numpy.fft on the same coefficients and scale
+    c = params[..., 0].double().numpy() + 1j * params[..., 1].double().numpy()
+    z = np.fft.irfft2(c * p.scale.double().numpy(), s=(size, size), norm="ortho")  # (2, 3, S, S)
+    np.testing.assert_allclose(p.whitened(params).numpy(), z, atol=1e-5)
+    # and the colour + sigmoid squash, written out in numpy from the docstring's formula
+    mu = np.array(p.colour.mean).reshape(1, 3, 1, 1)
+    u = mu + np.einsum("ij,bjhw->bihw", np.array(p.colour.factor), z)
+    x = 1 / (1 + np.exp(-(np.log(mu / (1 - mu)) + (u - mu) / (mu * (1 - mu)))))
+    np.testing.assert_allclose(p.pixels(params).numpy(), x, atol=1e-5)
+
+
+@pytest.mark.parametrize("decay", [1.0, 1.5])
+def test_spectral_scale_gives_the_intended_amplitude_slope(decay):
+    S = 64
+    p = SpectralImage(S, ColourBasis.default(), decay=decay)
+    z = p.whitened(torch.randn(16, *p.shape, generator=torch.Generator().manual_seed(1))).numpy()
+    amp = np.abs(np.fft.fft2(z)).mean((0, 1))  # (S, S), numpy as the reference FFT
+    f = np.hypot(*np.meshgrid(np.fft.fftfreq(S), np.fft.fftfreq(S), indexing="ij"))
+    ok = (f >= 2 / S) & (f <= 0.4)
+    slope = np.polyfit(np.log(f[ok]), np.log(amp[ok]), 1)[0]
+    assert slope == pytest.approx(-decay, abs=0.05)
+
+
+def test_colour_factor_whitens_the_corpus_colours():
+    from skimage import data  # bundled photographs as the corpus
+
+    px = np.concatenate([im.reshape(-1, 3) for im in (data.astronaut(), data.coffee(), data.chelsea())]) / 255.0
+    mu, cov = px.mean(0), np.cov(px, rowvar=False)  # numpy as the reference
+    cb = ColourBasis.from_covariance(cov, mu, "skimage photos")
+    m = np.array(cb.factor)
+    np.testing.assert_allclose(m @ m.T, cov, atol=1e-12)
+    white = np.linalg.solve(m, (px - mu).T)  # M^-1 (x - mu)
+    np.testing.assert_allclose(np.cov(white), np.eye(3), atol=1e-6)
+    assert np.allclose(np.triu(m, 1), 0)  # Cholesky, as in Feature Visualization (Distill 2017)
+    # the default is written as a covariance with its provenance marked
+    d = ColourBasis.default()
+    np.testing.assert_allclose(d.covariance(), default_covariance(), atol=1e-12)
+    s = np.sqrt(np.diag(d.covariance()))
+    np.testing.assert_allclose(d.covariance() / np.outer(s, s), DEFAULT_CORR, atol=1e-12)
+    np.testing.assert_allclose(s, DEFAULT_STD, atol=1e-12)
+    assert "[from memory]" in d.source
+    # a grey corpus has a singular covariance: a small ridge keeps colours reachable, and is recorded
+    grey = ColourBasis.from_covariance(np.full((3, 3), 0.04), (0.5, 0.5, 0.5), "grey")
+    assert 0 < grey.ridge < 1e-4
+
+
+def test_blur_matches_a_periodic_gaussian_filter():
+    from scipy.ndimage import gaussian_filter  # reference implementation
+
+    for cls in (SpectralImage, PixelImage):
+        p = cls(32, ColourBasis.plain())
+        params = torch.randn(1, *p.shape, generator=torch.Generator().manual_seed(2))
+        got = p.whitened(p.blur(params, 1.5)).numpy()
+        want = gaussian_filter(p.whitened(params).numpy(), sigma=(0, 0, 1.5, 1.5), mode="wrap", truncate=4)
+        edge = slice(None) if cls is SpectralImage else slice(8, -8)  # the pixel blur pads at the border
+        np.testing.assert_allclose(got[..., edge, edge], want[..., edge, edge], atol=2e-3, err_msg=cls.__name__)
+
+
+# -- transforms ----------------------------------------------------------------------------
+
+def test_transforms_against_numpy_shifts_and_rotations():
+    rng = np.random.default_rng(0)
+    img = torch.from_numpy(rng.random((1, 3, 20, 20))).float()
+    fill = (0.25, 0.5, 0.75)
+
+    def draw(tx=0, ty=0, s=1.0, a=0, fx=0, fy=0):
+        return torch.tensor([[tx, ty, s, a, fx, fy]], dtype=torch.float64)
+
+    np.testing.assert_allclose(warp(img, draw(), 4, fill).numpy(), img.numpy(), atol=1e-6)
+    # a jitter of (3, -2) and a fine jitter of (-1, 1) move content by (2, -1): numpy shift with fill
+    ref = np.broadcast_to(np.array(fill).reshape(1, 3, 1, 1), img.shape).copy()
+    ref[:, :, 0:19, 2:20] = img.numpy()[:, :, 1:20, 0:18]
+    np.testing.assert_allclose(warp(img, draw(3, -2, fx=-1, fy=1), 4, fill).numpy(), ref, atol=1e-5)
+    # 90 degrees maps pixel centres onto pixel centres: numpy.rot90 is exact
+    out = warp(img, draw(a=90), 4, fill).numpy()
+    assert min(np.abs(out - np.rot90(img.numpy(), k, axes=(2, 3))).max() for k in (1, -1)) < 1e-5
+    # reflect padding mirrors instead of filling
+    out = warp(img, draw(3, 0), 4, fill, "reflect").numpy()
+    np.testing.assert_allclose(out[..., :3], img.numpy()[..., 1:4][..., ::-1], atol=1e-5)
+    # pixel amounts scale with the image below the 224 px reference, not above
+    assert TransformSpec().at(112) == TransformSpec(8, 8, fine_jitter=4)
+    assert TransformSpec().at(448) == TransformSpec()
+    assert TransformSpec().at(16).fine_jitter == 1
+    # differentiable, and each image of a batch has its own transform
+    x = img.repeat(2, 1, 1, 1).requires_grad_(True)
+    y = warp(x, torch.cat([draw(a=3), draw(a=-4, s=1.05)]), 4, fill)
+    assert not torch.allclose(y[0], y[1])
+    y.sum().backward()
+    assert x.grad.abs().sum() > 0
+
+
+# -- objectives ----------------------------------------------------------------------------
+
+def test_objective_terms_against_plain_torch():
+    g = torch.Generator().manual_seed(0)
+    f = torch.randn(4, 6, 5, 7, generator=g)
+    px = torch.rand(4, 3, 8, 8, generator=g)
+    t = torch.tensor([2, 0, 5, 2])
+    groups = torch.tensor([0, 0, 1, 1])
+    ctx = Context("L", t, groups, px)
+    feats = {"L": f}
+    cases = [
+        (channel(), torch.stack([f[i, t[i]].mean() for i in range(4)])),
+        (neuron(), torch.stack([f[i, t[i], 2, 3] for i in range(4)])),
+        (neuron(y=4, x=0), torch.stack([f[i, t[i], 4, 0] for i in range(4)])),
+        (negative(channel()), -torch.stack([f[i, t[i]].mean() for i in range(4)])),
+        (direction(torch.eye(6)[1] * 3), f[:, 1].mean((1, 2))),
+        (direction(torch.eye(6)), torch.stack([f[i, t[i]].mean() for i in range(4)])),
+        (2 * channel() - 0.5 * total_variation(),
+         2 * torch.stack([f[i, t[i]].mean() for i in range(4)])
+         - 0.5 * torch.stack([((px[i, :, :-1, 1:] - px[i, :, :-1, :-1]) ** 2
+                               + (px[i, :, 1:, :-1] - px[i, :, :-1, :-1]) ** 2).mean() for i in range(4)])),
+        (pixel_norm(1), (px - 0.5).abs().flatten(1).mean(1)),
+    ]
+    for obj, expect in cases:
+        torch.testing.assert_close(obj(feats, ctx), expect, msg=repr(obj))
+    # diversity: minus the mean Gram cosine with the other images of the same unit (brute force in numpy)
+    a = f.flatten(2).numpy()
+    gram = [(x @ x.T).ravel() for x in a]
+    cos = lambda u, v: u @ v / np.linalg.norm(u) / np.linalg.norm(v)
+    expect = [-cos(gram[0], gram[1]), -cos(gram[1], gram[0]), -cos(gram[2], gram[3]), -cos(gram[3], gram[2])]
+    np.testing.assert_allclose(diversity()(feats, ctx).numpy(), expect, rtol=1e-5)
+    assert (channel() + 0.5 * diversity()).unit_term()[1].__class__.__name__ == "Channel"
+    assert negative(channel()).unit_term()[0] == -1.0
+    assert (channel() + neuron()).unit_term() is None
+    import doctest
+
+    from unitlens.synth import objectives
+
+    assert doctest.testmod(objectives).failed == 0  # the module's own example runs
+
+
+# -- the loop, against analytic and planted optima -----------------------------------------
+
+def test_linear_unit_under_a_norm_reaches_the_cauchy_schwarz_optimum():
+    # max w . x subject to ||x|| = r is x = r w / ||w|| (Cauchy-Schwarz), value r ||w||
+    m = load_model(f"{PLANTED}:linear_unit", size=16, mean=(0, 0, 0), std=(1, 1, 1))
+    w = m.module[0].weight[0].permute(1, 2, 0).numpy()  # (16, 16, 3), like the images
+    base = dict(steps=100, param="pixel", decorrelate=False, squash="none", transforms=TransformSpec.none(),
+                norm=4.0, **QUICK)
+    plain = ColourBasis.plain((0, 0, 0))  # image = z: what the norm constrains is the input itself
+    r = optimise_units(m, "0", [0], SynthConfig(optimizer="gradient", **base), colour=plain)[0]
+    x = r.images[0]
+    assert np.corrcoef(x.ravel(), w.ravel())[0, 1] >= 0.95
+    assert np.linalg.norm(x) == pytest.approx(4.0, rel=1e-4)
+    assert r.traces[0][-1] == pytest.approx(4.0 * np.linalg.norm(w), rel=1e-3)
+    # Adam's step on a linear objective is lr * sign(gradient), so it converges to sign(w) instead
+    r = optimise_units(m, "0", [0], SynthConfig(**base), colour=plain)[0]
+    assert np.corrcoef(r.images[0].ravel(), np.sign(w).ravel())[0, 1] >= 0.99
+
+
+def _orientation(image: np.ndarray) -> float:
+    """Dominant orientation (degrees, mod 180) of the 2-D FFT peak of the grey image (numpy.fft):
+    the power-weighted doubled-angle mean over the bins within half of the peak power, which
+    resolves the angle finer than the frequency grid does."""
+    g = image.mean(2)
+    P = np.abs(np.fft.fft2(g - g.mean())) ** 2
+    f = np.fft.fftfreq(g.shape[0])
+    fy, fx = np.meshgrid(f, f, indexing="ij")
+    phi = np.arctan2(fy, fx)
+    w = np.where(P >= 0.5 * P.max(), P, 0)
+    return math.degrees(0.5 * math.atan2((w * np.sin(2 * phi)).sum(), (w * np.cos(2 * phi)).sum())) % 180
+
+
+def test_planted_gabor_detectors_get_gratings_at_their_orientation():
+    from planted import ORIENTATIONS
+
+    m = load_model(f"{PLANTED}:gabor_net", size=32)
+    results = optimise_units(m, "1", range(len(ORIENTATIONS)), SynthConfig(steps=80, checks=0))  # defaults otherwise
+    for r, planted in zip(results, ORIENTATIONS):
+        found = _orientation(r.images[0])
+        err = abs((found - planted + 90) % 180 - 90)
+        assert err <= 10, f"unit at {planted} deg gave {found:.1f} deg"
+
+
+@pytest.fixture(scope="module")
+def r18(r18_weights):
+    return load_model("torchvision:resnet18", str(r18_weights), size=32)
+
+
+def test_a_unit_gives_the_same_image_in_a_batch_of_16_as_alone(r18):
+    cfg = SynthConfig(steps=16, **QUICK)
+    batch = optimise_units(r18, "layer2", list(range(16)), SynthConfig(batch_size=16, steps=16, **QUICK))
+    alone = optimise_units(r18, "layer2", [5], cfg)[0]
+    assert batch[5].target == 5
+    # batched convolutions round differently; over 16 Adam steps that stays below 1e-3 of the pixel range
+    np.testing.assert_allclose(batch[5].images, alone.images, atol=1e-3)
+    np.testing.assert_allclose(batch[5].traces[0], alone.traces[0], rtol=1e-3)
+    assert not np.allclose(batch[4].images, batch[5].images, atol=1e-2)
+
+
+@pytest.fixture(scope="session")
+def digits_model(tmp_path_factory):
+    from digits import MEAN, SIZE, STD, train_digits_net
+
+    path = tmp_path_factory.mktemp("digits") / "digits.pth"
+    acc = train_digits_net(path)
+    assert acc > 0.85, f"the digits net trained to only {acc:.2f}"
+    return load_model(f"{NETS}:digits_net", str(path), size=SIZE, mean=MEAN, std=STD)
+
+
+def test_each_digit_logit_image_beats_every_natural_digit(digits_model):
+    # Olah et al. 2017 (Feature Visualization, Distill): optimised inputs drive a unit far beyond
+    # what natural inputs do. Here: every one of the 1,797 digits, against each logit's image.
+    from digits import digit_images
+
+    images, _ = digit_images()
+    ex = digits_model.extractor(["7"])
+    with torch.no_grad():
+        natural = ex(digits_model.normalize(images))["7"].flatten(1)  # (N, 10)
+    results = optimise_units(digits_model, "7", range(10), SynthConfig(checks=0))
+    synth = torch.from_numpy(np.stack([np.round(r.images[0] * 255) for r in results])).permute(0, 3, 1, 2)
+    with torch.no_grad():
+        got = ex(digits_model.normalize(synth.to(torch.uint8)))["7"].flatten(1)  # as saved: 8-bit
+    for c in range(10):
+        assert got[c, c] > natural[:, c].max(), f"logit {c}: {got[c, c]:.2f} <= {natural[:, c].max():.2f}"
+
+
+def test_diversity_spreads_the_images_of_a_unit(digits_model):
+    ex = digits_model.extractor(["4"])
+
+    def gram_cosine(weight):  # mean pairwise cosine of the images' Gram matrices, what diversity lowers
+        obj = channel() + weight * diversity()
+        r = optimise_units(digits_model, "4", [3], SynthConfig(per_unit=3, steps=40, **QUICK), obj)[0]
+        x = torch.from_numpy(r.images).permute(0, 3, 1, 2)
+        with torch.no_grad():
+            f = ex(digits_model.normalize(x))
+        ctx = Context("4", torch.tensor([3, 3, 3]), torch.zeros(3, dtype=torch.long), x)
+        return float(-diversity()(f, ctx).mean())
+
+    assert gram_cosine(1.0) < gram_cosine(0.0) - 0.2
+
+
+def test_early_stop_is_per_image_and_others_keep_going(digits_model):
+    cfg = SynthConfig(steps=200, stop_window=8, stop_gain=0.05, checks=0, batch_size=10)
+    results = optimise_units(digits_model, "7", range(10), cfg)
+    steps = [r.steps[0] for r in results]
+    assert min(steps) < 200 and len(set(steps)) > 1, steps
+    for r in results:
+        assert len(r.traces[0]) == r.steps[0]
+
+
+def test_batch_halves_when_memory_runs_out_and_results_do_not_change(digits_model, monkeypatch):
+    from unitlens.synth import optimise
+
+    cfg = SynthConfig(steps=12, batch_size=8, **QUICK)
+    want = optimise_units(digits_model, "7", range(10), SynthConfig(steps=12, batch_size=2, **QUICK))
+    real = optimise._Engine.values_and_grads
+    seen = []
+
+    def tight(self, params, *a):
+        seen.append(len(params))
+        if len(params) > 2:
+            raise RuntimeError("DefaultCPUAllocator: can't allocate memory: you tried to allocate 1 bytes")
+        return real(self, params, *a)
+
+    monkeypatch.setattr(optimise._Engine, "values_and_grads", tight)
+    got = optimise_units(digits_model, "7", range(10), cfg)
+    assert seen[0] == 8 and max(seen[-5:]) <= 2
+    for a, b in zip(want, got):
+        np.testing.assert_allclose(a.images, b.images, atol=1e-5)
+
+
+def test_batch_size_estimate_grows_with_memory_per_image(digits_model):
+    from unitlens.synth.optimise import _Engine
+
+    small, large = (_Engine(digits_model, "5", range(32), SynthConfig(size=s, max_batch=10**6), None, None)
+                    for s in (16, 48))
+    b16, b48 = small.bytes_per_image(), large.bytes_per_image()
+    assert 0 < b16 < b48 and b48 / b16 == pytest.approx(9, rel=0.3)  # activations grow with the area
+    assert 1 <= large.capacity() <= 32 and small.capacity() == 32  # never more images than the work
+    assert _Engine(digits_model, "5", range(32), SynthConfig(per_unit=3), None, None).capacity() % 3 == 0
+
+
+def test_bad_targets_fail_before_the_first_step(r18):
+    cases = [
+        (lambda: optimise_units(r18, "layer2", [128], SynthConfig()), "Channel 128 is out of range for layer2"),
+        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(), neuron(y=9)), "outside layer2"),
+        (lambda: optimise_units(r18, "layer9", [0], SynthConfig()), "Unknown layer 'layer9'"),
+        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(param="wavelet")), "Unknown parameterisation"),
+        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(batch_size=1, per_unit=2)), "cannot hold"),
+        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(), direction(torch.ones(5))), "needs 128 numbers"),
+    ]
+    for call, message in cases:
+        with pytest.raises(UnitlensError, match=message):
+            call()
+
+
+# -- the run folder and the command ---------------------------------------------------------
+
+def cli(capsys, *args) -> tuple[int, str, str]:
+    """Run `unitlens ARGS` in this process (imports are paid once): (exit code, stdout, stderr)."""
+    from unitlens.cli import main
+
+    old = sys.argv
+    sys.argv = ["unitlens", *map(str, args)]
+    code = 0
+    try:
+        main()
+    except SystemExit as e:
+        code = e.code or 0
+    finally:
+        sys.argv = old
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+@pytest.fixture(scope="module")
+def mined(tmp_path_factory, smooth_corpus, r18_weights):
+    out = tmp_path_factory.mktemp("synth") / "run"
+    r = run_cli("mine", "torchvision:resnet18", "--weights", r18_weights, "--size", "32", "--corpus", smooth_corpus,
+                "--layers", "layer3", "--units", "0-3", "--top", "3", "--workers", "0", "--out", out)
+    assert r.returncode == 0
+    return out
+
+
+def test_synth_on_a_mined_run_then_show_and_resume(mined, capsys):
+    code, out, err = cli(capsys, "synth", mined, "--steps", "6", "--units", "0,1")
+    assert code == 0, err
+    d = mined / "synth" / "layer3"
+    stamps = {p.name: p.stat().st_mtime_ns for p in d.glob("unit-*")}
+    assert sorted(stamps) == ["unit-0000-0.png", "unit-0000.npz", "unit-0001-0.png", "unit-0001.npz"]
+    man = json.loads((mined / "manifest.json").read_text())
+    assert man["synth"]["colour"]["source"].startswith("measured on this run's corpus")
+    assert man["synth"]["layers"]["layer3"] == {"done": 2, "complete": True, "units": 2, "channels": "0-1"}
+    assert man["synth"]["settings"]["config"]["steps"] == 6
+
+    code, out, err = cli(capsys, "show", mined, "layer3:1", "--json")
+    s = json.loads(out)
+    (entry,) = s["synth"]
+    from PIL import Image
+
+    assert Image.open(entry["image"]).size == (32, 32)
+    assert entry["steps"] == 6 and entry["rank"] >= 1 and entry["robustness"]["n"] == 32
+    best = s["exemplars"][0]["score"]
+    assert entry["vs_best_exemplar"] == pytest.approx(entry["max_activation"] / best)
+
+    # no --units: all mined units; the two finished ones are not redone
+    code, out, err = cli(capsys, "synth", mined, "--steps", "6")
+    assert code == 0, err
+    for name, t in stamps.items():
+        assert (d / name).stat().st_mtime_ns == t, f"{name} was redone"
+    assert {p.name for p in d.glob("unit-*.png")} == {f"unit-000{i}-0.png" for i in range(4)}
+    assert json.loads((mined / "manifest.json").read_text())["synth"]["done"] is True
+    # other settings are refused rather than mixed in
+    code, out, err = cli(capsys, "synth", mined, "--steps", "7")
+    assert code == 1 and "other settings" in err and "config.steps" in err
+
+
+def test_bad_names_give_one_line_errors(mined, capsys):
+    cases = [
+        (["--layers", "layer9"], "Unknown layer 'layer9'"),
+        (["--layers", "layer3:0-999"], "Channel 999 is out of range for layer3 (0-255)"),
+        (["--units", "x"], "'x' is not a channel or range"),
+        (["--weights", "w.pth"], "apply only when TARGET is a model"),
+        (["--objective", "class"], "--objective must be channel or neuron"),
+    ]
+    for extra, message in cases:
+        code, out, err = cli(capsys, "synth", mined, "--steps", "2", *extra)
+        assert code == 1 and message in err, (extra, err)
+        assert err.strip().count("\n") == 0 and err.startswith("Error: ")
+    # and as a real process: exit status 1, one line, no traceback
+    r = run_cli("synth", mined, "--layers", "layer9", check=False)
+    assert r.returncode == 1 and r.stderr.strip().startswith("Error: Unknown layer") and "Traceback" not in r.stderr
+
+
+def test_synth_from_a_model_without_a_run(tmp_path, capsys):
+    out = tmp_path / "r"
+    code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1:0,3", "--size", "32",
+                       "--steps", "4", "--out", out)
+    assert code == 0, err
+    man = json.loads((out / "manifest.json").read_text())
+    assert man["model"]["spec"].endswith("planted.py:gabor_net") and man["model"]["preprocess"]["size"] == 32
+    assert "[from memory]" in man["synth"]["colour"]["source"]
+    (e,) = unit_images(out, "1", 3)
+    assert e["vs_best_exemplar"] is None and e["steps"] == 4
+    code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1")
+    assert code == 1 and "--out" in err
+
+
+def test_a_killed_synthesis_resumes_without_redoing_finished_units(tmp_path, digits_model, monkeypatch):
+    from unitlens.synth import pipeline
+
+    layers = parse_layers(digits_model, ["7:0-5"])
+    cfg = SynthConfig(steps=10, batch_size=2, **QUICK)
+    whole = synthesize(digits_model, layers, tmp_path / "whole", cfg)
+    real = pipeline.iter_units
+
+    def killed(*a, **k):
+        it = real(*a, **k)
+        yield next(it)
+        raise KeyboardInterrupt  # like Ctrl-C after the first batch
+
+    monkeypatch.setattr(pipeline, "iter_units", killed)
+    with pytest.raises(UnitlensError, match="Interrupted after 2 of 6 units"):
+        synthesize(digits_model, layers, tmp_path / "cut", cfg)
+    monkeypatch.setattr(pipeline, "iter_units", real)
+    d = Run(tmp_path / "cut").layer_dir("7", "synth")
+    stamps = {p.name: p.stat().st_mtime_ns for p in d.glob("*.png")}
+    assert len(stamps) == 2
+    synthesize(digits_model, layers, tmp_path / "cut", cfg)
+    for name, t in stamps.items():
+        assert (d / name).stat().st_mtime_ns == t
+    from PIL import Image
+
+    for c in range(6):
+        a = np.asarray(Image.open(Run(whole.path).layer_dir("7", "synth") / f"unit-{c:04d}-0.png"))
+        b = np.asarray(Image.open(d / f"unit-{c:04d}-0.png"))
+        assert np.abs(a.astype(int) - b.astype(int)).max() <= 1  # same seeds, same images (8-bit rounding)

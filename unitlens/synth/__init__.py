@@ -1,0 +1,32 @@
+"""Pass 2: synthesise images that drive units, many units of one layer per batch, on CPU.
+
+  param.py       spectral (1/f, colour-decorrelated) and pixel parameterisations
+  transforms.py  the random transforms applied at every step
+  objectives.py  channel, neuron, direction, diversity, regularisers; combined with + - *
+  optimise.py    the batched Adam loop, early stop, batch size from memory
+  evidence.py    checks stored beside each image (robustness, rank, activation vs exemplars)
+  pipeline.py    the run folder: validate, synthesise layer by layer, write, resume
+  results.py     the on-disk layout, read back (for `show`, the atlas) without torch
+
+Names load on first use, so reading results (`show`) does not import torch.
+"""
+_EXPORTS = {
+    "synthesize": "pipeline", "model_from_run": "pipeline", "unit_images": "results", "trace_of": "results",
+    "SynthConfig": "optimise", "optimise_units": "optimise", "iter_units": "optimise", "UnitResult": "optimise",
+    "TransformSpec": "transforms",
+    "ColourBasis": "param", "SpectralImage": "param", "PixelImage": "param",
+    "Objective": "objectives", "channel": "objectives", "neuron": "objectives", "direction": "objectives",
+    "negative": "objectives", "diversity": "objectives", "total_variation": "objectives",
+    "pixel_norm": "objectives",
+}
+__all__ = list(_EXPORTS)
+
+
+def __getattr__(name):
+    if name in _EXPORTS:
+        import importlib
+
+        value = getattr(importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'unitlens.synth' has no attribute {name!r}")

@@ -1,0 +1,347 @@
+"""The optimisation loop: many units of one layer per forward/backward pass.
+
+One batch holds B images, image i optimising its own target (a channel of the layer), all through
+ONE truncated forward and ONE backward (the network's weights are frozen, so only input gradients
+are computed). Images are independent rows everywhere: their own Adam state and step count, their
+own random generators for the start image and the transforms, seeded from (seed, layer, target,
+m). So a unit's result does not depend on the batch it happened to be in (up to the rounding of
+batched convolutions), and a resumed run gives the same images.
+
+Batches are refilled as units finish (an image stops early once its objective stops improving),
+so the batch stays full until the queue runs dry. The batch size starts from an estimate of
+memory per image (the difference in bytes autograd saves between trial steps of one and two
+images) against half the free memory, and halves if the allocator still runs out.
+
+Adam (Kingma & Ba 2015) is written out here because every row needs its own step count. Note
+that on an objective linear in the parameters Adam's step is lr * sign(gradient), so under a norm
+constraint it converges to sign(w), not w; the "gradient" optimizer (plain ascent, as in Erhan et
+al. 2009) reaches the analytic optimum there.
+"""
+from __future__ import annotations
+
+import hashlib
+from collections import deque
+from dataclasses import dataclass, field
+
+import numpy as np
+import torch
+
+from ..errors import UnitlensError
+from .objectives import Context, Objective, channel
+from .param import ColourBasis, make_param
+from .transforms import TransformSpec, warp
+
+BETAS = (0.9, 0.999)
+ADAM_EPS = 1e-8
+
+
+@dataclass(frozen=True)
+class SynthConfig:
+    """Settings of one synthesis. None means "use the default" (given in the comment)."""
+
+    steps: int = 256  # per image, at most; Olah et al. 2017 used 2560, a CPU run wants fewer
+    size: int | None = None  # image side in px; None: the model's input size
+    per_unit: int = 1  # images per unit (with a diversity term they differ from each other)
+    seed: int = 0
+    lr: float = 0.05  # Adam, as in Olah et al. 2017
+    optimizer: str = "adam"  # or "gradient": plain ascent p += lr * grad (Erhan et al. 2009)
+    param: str = "spectral"  # or "pixel"
+    decorrelate: bool = True  # colour factor from the corpus covariance; False: plain RGB
+    decay: float = 1.0  # spectral amplitude ~ 1 / f^decay
+    init_std: float = 0.1
+    squash: str = "sigmoid"  # "sigmoid", "clip" or "none" (see param.py)
+    transforms: TransformSpec = field(default_factory=TransformSpec)
+    norm: float | None = None  # project each whitened image onto the sphere of this L2 radius
+    blur_every: int = 0  # 0: never; else blur the parameters every n steps (Yosinski et al. 2015)
+    blur_sigma: float = 0.5
+    stop_window: int = 32  # early stop: compare the mean objective over the last two windows ...
+    stop_gain: float | None = 0.01  # ... and stop below this relative gain; None: always run all steps
+    batch_size: int | None = None  # images per pass; None: from memory, at most max_batch
+    max_batch: int = 32
+    checks: int = 32  # fresh random transforms for the robustness check (0: skip)
+
+    def validate(self) -> None:
+        for name, v, lo in (("steps", self.steps, 1), ("per_unit", self.per_unit, 1),
+                            ("max_batch", self.max_batch, 1), ("stop_window", self.stop_window, 1),
+                            ("checks", self.checks, 0), ("blur_every", self.blur_every, 0)):
+            if v < lo:
+                raise UnitlensError(f"{name} must be at least {lo}, got {v}.")
+        if self.size is not None and self.size < 16:
+            raise UnitlensError(f"Image size {self.size} is too small (at least 16 px).")
+        if self.batch_size is not None and self.batch_size < self.per_unit:
+            raise UnitlensError(f"batch_size {self.batch_size} cannot hold the {self.per_unit} images of one unit.")
+        if self.lr <= 0:
+            raise UnitlensError(f"lr must be positive, got {self.lr}.")
+        if self.optimizer not in ("adam", "gradient"):
+            raise UnitlensError(f"optimizer must be 'adam' or 'gradient', got '{self.optimizer}'.")
+
+    def describe(self, size: int) -> dict:
+        d = {k: getattr(self, k) for k in self.__dataclass_fields__ if k not in ("transforms", "batch_size",
+                                                                                   "max_batch")}
+        d["size"] = size
+        d["transforms"] = None if self.transforms.identity else self.transforms.describe(size)
+        return d
+
+
+@dataclass
+class UnitResult:
+    """The finished images of one target."""
+
+    index: int  # position in the targets given
+    target: int
+    images: np.ndarray  # (M, H, W, 3) float32, in [0, 1] unless squash is "none"
+    traces: list[np.ndarray]  # M objective traces (value under that step's transform), one per step run
+    steps: list[int]  # steps used per image (<= config.steps when stopped early)
+
+
+def seed_for(seed: int, layer: str, target: int, m: int, purpose: str) -> int:
+    """A 63-bit seed that depends only on what the image is, never on its batch."""
+    h = hashlib.sha256(f"{seed}/{layer}/{target}/{m}/{purpose}".encode()).digest()
+    return int.from_bytes(h[:8], "little") >> 1
+
+
+class _Unit:
+    """One target's M images in flight: parameters, Adam moments, steps, generators, traces."""
+
+    def __init__(self, index: int, target: int, engine: _Engine):
+        c, M = engine.config, engine.config.per_unit
+        self.index, self.target = index, target
+        gens = [torch.Generator().manual_seed(seed_for(c.seed, engine.layer, target, m, "init")) for m in range(M)]
+        self.params = torch.stack([engine.param.init(g) for g in gens])  # (M, *shape)
+        self.m1 = torch.zeros_like(self.params)
+        self.m2 = torch.zeros_like(self.params)
+        self.step = torch.zeros(M, dtype=torch.long)
+        self.done = torch.zeros(M, dtype=torch.bool)
+        self.rngs = [np.random.default_rng(seed_for(c.seed, engine.layer, target, m, "transforms")) for m in range(M)]
+        self.traces: list[list[float]] = [[] for _ in range(M)]
+
+
+class _Batch:
+    """The units in flight packed into batch tensors (rebuilt only when the membership changes)."""
+
+    def __init__(self, units: list[_Unit], M: int):
+        self.M = M
+        self.P = torch.cat([u.params for u in units])  # (B, *shape)
+        self.m1 = torch.cat([u.m1 for u in units])
+        self.m2 = torch.cat([u.m2 for u in units])
+        self.step = torch.cat([u.step for u in units])  # (B,)
+        self.done = torch.cat([u.done for u in units])
+        self.targets = torch.tensor([u.target for u in units for _ in range(M)])
+        self.groups = torch.arange(len(units)).repeat_interleave(M)
+        self.rngs = [r for u in units for r in u.rngs]
+        self.traces = [t for u in units for t in u.traces]  # shared lists: appends reach the units
+
+    def unpack(self, units: list[_Unit]) -> None:
+        for k, u in enumerate(units):
+            rows = slice(k * self.M, (k + 1) * self.M)
+            u.params, u.m1, u.m2 = self.P[rows], self.m1[rows], self.m2[rows]
+            u.step, u.done = self.step[rows], self.done[rows]
+
+
+class _Engine:
+    def __init__(self, model, layer: str, targets, config: SynthConfig, objective: Objective | None,
+                 colour: ColourBasis | None):
+        config.validate()
+        self.model, self.layer, self.config = model, layer, config
+        self.targets = [int(t) for t in targets]
+        self.objective = objective if objective is not None else channel()
+        self.objective.check(model, layer, self.targets)  # before the first step
+        self.size = config.size or model.preprocess.size
+        mean = colour.mean if colour else ColourBasis.default().mean
+        if not config.decorrelate:
+            colour = ColourBasis.plain(mean)
+        self.colour = colour or ColourBasis.default()
+        options = {"squash": config.squash, "init_std": config.init_std}
+        if config.param == "spectral":
+            options["decay"] = config.decay
+        self.param = make_param(config.param, self.size, self.colour, **options)
+        self.spec = config.transforms.at(self.size)
+        self.extract = model.extractor(self.objective.layers(layer))
+
+    # -- one step for a packed batch ------------------------------------------------------
+    def values_and_grads(self, params, targets, groups, draws):
+        p = params.detach().requires_grad_(True)
+        with torch.enable_grad():
+            pixels = self.param.pixels(p)  # (B, 3, S, S)
+            x = pixels if draws is None else warp(pixels, draws, self.spec.pad, self.colour.mean, self.spec.pad_mode)
+            feats = self.extract(self.model.normalize(x))
+            values = self.objective(feats, Context(self.layer, targets, groups, pixels))  # (B,)
+            (grad,) = torch.autograd.grad(-values.sum(), p)
+        return values.detach(), grad
+
+    def _draws(self, rngs) -> torch.Tensor | None:
+        if self.spec.identity:
+            return None
+        return torch.from_numpy(np.stack([self.spec.draw(r) for r in rngs]))
+
+    # -- batch size ---------------------------------------------------------------------------
+    def capacity(self) -> int:
+        """Images per pass: the configured batch, else what memory allows (at most max_batch)."""
+        c, M = self.config, self.config.per_unit
+        total = len(self.targets) * M
+        if c.batch_size:
+            return max(M, min(c.batch_size, total) // M * M)
+        one, two = self.saved_bytes(1), self.saved_bytes(2)
+        per_image = max(two - one, 1)  # the difference leaves out what every batch saves once (weights)
+        fit = int((available_memory() * 0.5 - (one - per_image)) // (2 * per_image))
+        return max(M, min(fit, c.max_batch, total) // M * M)
+
+    def bytes_per_image(self) -> int:
+        return self.saved_bytes(2) - self.saved_bytes(1)
+
+    def saved_bytes(self, n: int) -> int:
+        """Bytes autograd saves for the backward of a trial step of n images (most of the memory)."""
+        seen = [0]
+
+        def pack(t):
+            seen[0] += t.numel() * t.element_size()
+            return t
+
+        p = torch.zeros((n, *self.param.shape))
+        draws = None if self.spec.identity else torch.tensor([[0, 0, 1.0, 0, 0, 0]] * n)
+        t = torch.tensor([self.targets[0]] * n)
+        with torch.autograd.graph.saved_tensors_hooks(pack, lambda t: t):
+            self.values_and_grads(p, t, torch.zeros(n, dtype=torch.long), draws)
+        return seen[0]
+
+    # -- the loop -------------------------------------------------------------------------
+    def run(self):
+        """Yield lists of finished UnitResults, in order of completion."""
+        M = self.config.per_unit
+        if not self.targets:
+            return
+        cap = self.capacity()
+        queue: deque = deque(range(len(self.targets)))  # unit indices, or paused _Unit objects
+        active: list[_Unit] = []
+        while queue or active:
+            while queue and (not active or (len(active) + 1) * M <= cap):
+                u = queue.popleft()
+                active.append(u if isinstance(u, _Unit) else _Unit(u, self.targets[u], self))
+            try:
+                self._steps_until_one_finishes(active)
+            except RuntimeError as e:
+                if not is_out_of_memory(e) or cap <= M:
+                    raise
+                cap = max(M, cap // 2 // M * M)
+                while len(active) * M > cap:  # the newest wait, their state kept
+                    queue.appendleft(active.pop())
+                continue
+            finished = [u for u in active if bool(u.done.all())]
+            active = [u for u in active if not bool(u.done.all())]
+            yield [self._result(u) for u in finished]
+
+    def _steps_until_one_finishes(self, units: list[_Unit]) -> None:
+        b = _Batch(units, self.config.per_unit)
+        try:
+            while not self.step(b):
+                pass
+        finally:  # on success or an out-of-memory error, the units keep the last completed step
+            b.unpack(units)
+
+    def step(self, b: _Batch) -> bool:
+        """One step for every image of the batch; True once some unit has all its images done."""
+        c = self.config
+        states = [r.bit_generator.state for r in b.rngs]
+        try:
+            values, g = self.values_and_grads(b.P, b.targets, b.groups, self._draws(b.rngs))
+        except RuntimeError:  # a retry after halving the batch sees the same transforms
+            for r, st in zip(b.rngs, states):
+                r.bit_generator.state = st
+            raise
+        live = ~b.done
+        self._update(b.P, b.m1, b.m2, g, b.step, None if bool(live.all()) else torch.nonzero(live).flatten())
+        b.step += live.long()
+        vals, steps_now = values.tolist(), b.step.tolist()
+        for i in torch.nonzero(live).flatten().tolist():
+            b.traces[i].append(vals[i])
+            if steps_now[i] >= c.steps or _stalled(b.traces[i], c.stop_window, c.stop_gain):
+                b.done[i] = True
+        return bool(b.done.view(-1, b.M).all(1).any())
+
+    def _update(self, P, m1, m2, g, step, rows) -> None:
+        """One Adam step, in place, for all rows (rows None) or the given ones; then blur / project."""
+        if rows is not None:
+            part = [x[rows] for x in (P, m1, m2, g)]
+            self._update(*part, step[rows], None)
+            for whole, p in zip((P, m1, m2), part):
+                whole[rows] = p
+            return
+        c = self.config
+        if c.optimizer == "gradient":
+            P.add_(g, alpha=-c.lr)
+        else:
+            b1, b2 = BETAS
+            shape = (-1,) + (1,) * (P.dim() - 1)
+            t = (step + 1).to(P.dtype).view(shape)  # each row has its own step count
+            m1.mul_(b1).add_(g, alpha=1 - b1)
+            m2.mul_(b2).addcmul_(g, g, value=1 - b2)
+            denom = (m2 / (1 - b2**t)).sqrt_().add_(ADAM_EPS)
+            P.addcdiv_(m1 * (c.lr / (1 - b1**t)), denom, value=-1.0)
+        if c.blur_every:
+            due = torch.nonzero((step + 1) % c.blur_every == 0).flatten()
+            if len(due):
+                P[due] = self.param.blur(P[due], c.blur_sigma)
+        if c.norm is not None:
+            P.copy_(self.param.project(P, c.norm))
+
+    def _result(self, u: _Unit) -> UnitResult:
+        with torch.no_grad():
+            px = self.param.pixels(u.params)  # (M, 3, S, S)
+        return UnitResult(u.index, u.target, px.permute(0, 2, 3, 1).numpy().astype(np.float32),
+                          [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step])
+
+
+def _stalled(trace: list[float], window: int, gain: float | None) -> bool:
+    """True once the mean of the last `window` values beats the window before by less than `gain`
+    (relative); noisy traces (random transforms) need the averaging."""
+    if gain is None or len(trace) < 2 * window:
+        return False
+    a = sum(trace[-2 * window:-window]) / window
+    b = sum(trace[-window:]) / window
+    return b - a < gain * max(abs(a), abs(b), 1e-8)
+
+
+def is_out_of_memory(e: BaseException) -> bool:
+    s = str(e).lower()
+    return "out of memory" in s or "can't allocate memory" in s or "not enough memory" in s
+
+
+def available_memory() -> int:
+    """Bytes this process may still allocate: MemAvailable, capped by a cgroup limit if there is one."""
+    avail = 4 << 30
+    try:
+        for line in open("/proc/meminfo"):
+            if line.startswith("MemAvailable:"):
+                avail = int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        limit = open("/sys/fs/cgroup/memory.max").read().strip()
+        if limit != "max":
+            used = int(open("/sys/fs/cgroup/memory.current").read())
+            avail = min(avail, int(limit) - used)
+    except (OSError, ValueError):
+        pass
+    return max(avail, 256 << 20)
+
+
+def iter_units(model, layer: str, targets, config: SynthConfig = SynthConfig(), objective: Objective | None = None,
+               colour: ColourBasis | None = None):
+    """Optimise one image set per target of `layer`; yield lists of UnitResult as units finish.
+
+    Everything is checked (targets, objective) before the first step.
+    """
+    yield from _Engine(model, layer, targets, config, objective, colour).run()
+
+
+def optimise_units(model, layer: str, targets, config: SynthConfig = SynthConfig(),
+                   objective: Objective | None = None, colour: ColourBasis | None = None) -> list[UnitResult]:
+    """In-memory synthesis (no run folder): one UnitResult per target, in the order given.
+
+    >>> m = load_model("torchvision:resnet18", size=64)                # doctest: +SKIP
+    >>> r = optimise_units(m, "layer2", [0, 5], SynthConfig(steps=64))  # doctest: +SKIP
+    >>> r[0].images.shape                                              # doctest: +SKIP
+    (1, 64, 64, 3)
+    """
+    got = {r.index: r for batch in iter_units(model, layer, targets, config, objective, colour) for r in batch}
+    return [got[i] for i in range(len(got))]

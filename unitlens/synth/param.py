@@ -1,0 +1,230 @@
+"""Image parameterisations: what the optimiser actually moves, and how it becomes pixels.
+
+Both parameterisations end the same way:
+
+    pixels = squash(mean + M @ z)          z (B, 3, H, W), one colour vector per pixel
+
+where ``M`` is a 3x3 colour factor with M @ M.T = Sigma (the RGB covariance of the corpus, or a
+natural-image default), so z is in whitened colour units, and ``squash`` maps to [0, 1]:
+
+  "sigmoid"  sigma(logit(mean) + (u - mean) / (mean * (1 - mean))) per channel, i.e. a logistic
+             curve through the mean colour with slope 1 there: near the mean, pixels = mean + M z,
+             and the image can never leave [0, 1]. This is the default.
+  "clip"     clamp(u, 0, 1); the gradient vanishes outside the range
+  "none"     u itself (analytic tests; the caller bounds the image, e.g. with a norm)
+
+They differ in what z is:
+
+  SpectralImage  z = irfft2(scale * c): learnable Fourier coefficients c, white at the start, and a
+                 fixed amplitude scale of 1/f (DC clamped to the lowest frequency), so a step of the
+                 same size on every coefficient moves low frequencies most. This is the whitened,
+                 preconditioned basis of Olah et al. 2017 (Feature Visualization, Distill).
+  PixelImage     z itself, one number per pixel and channel (the plain baseline).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from ..errors import UnitlensError
+
+# Natural-image colour default, used when a run has no corpus of its own. Per-channel standard
+# deviations are the ImageNet values torchvision normalises with; the correlations (R-G and G-B
+# about 0.9, R-B about 0.8) are typical for photos [from memory, not measured here].
+DEFAULT_MEAN = (0.485, 0.456, 0.406)
+DEFAULT_STD = (0.229, 0.224, 0.225)
+DEFAULT_CORR = ((1.0, 0.9, 0.8), (0.9, 1.0, 0.9), (0.8, 0.9, 1.0))
+DEFAULT_SOURCE = ("natural-image default [from memory]: ImageNet channel std 0.229/0.224/0.225, "
+                  "correlation R-G 0.9, G-B 0.9, R-B 0.8")
+SQUASHES = ("sigmoid", "clip", "none")
+
+
+def default_covariance() -> np.ndarray:
+    s = np.array(DEFAULT_STD)
+    return np.array(DEFAULT_CORR) * np.outer(s, s)
+
+
+@dataclass(frozen=True)
+class ColourBasis:
+    """Mean colour (3,) and colour factor M (3, 3) with M @ M.T = covariance, RGB in [0, 1]."""
+
+    mean: tuple[float, float, float]
+    factor: tuple[tuple[float, ...], ...]
+    source: str
+    ridge: float = 0.0  # added to the covariance diagonal when it was (nearly) singular
+
+    @classmethod
+    def from_covariance(cls, cov, mean, source: str) -> ColourBasis:
+        """Cholesky factor of `cov` (as in Feature Visualization, Distill 2017).
+
+        A grey corpus has a singular covariance; then a ridge of 1e-4 of its trace is added and
+        recorded, so colour directions stay reachable, if slowly.
+        """
+        cov = np.asarray(cov, dtype=np.float64).reshape(3, 3)
+        cov = (cov + cov.T) / 2
+        ridge = 0.0
+        if np.linalg.eigvalsh(cov).min() <= 1e-8 * max(np.trace(cov), 1e-12):
+            ridge = 1e-4 * max(np.trace(cov), 1e-6)
+            cov = cov + ridge * np.eye(3)
+        m = np.linalg.cholesky(cov)
+        return cls(tuple(float(v) for v in mean), tuple(tuple(float(v) for v in r) for r in m), source, ridge)
+
+    @classmethod
+    def default(cls) -> ColourBasis:
+        return cls.from_covariance(default_covariance(), DEFAULT_MEAN, DEFAULT_SOURCE)
+
+    @classmethod
+    def plain(cls, mean=(0.5, 0.5, 0.5)) -> ColourBasis:
+        """No decorrelation: z is in pixel units."""
+        return cls(tuple(float(v) for v in mean), ((1.0, 0, 0), (0, 1.0, 0), (0, 0, 1.0)), "plain RGB")
+
+    @classmethod
+    def from_run(cls, manifest: dict) -> ColourBasis:
+        """The corpus colour statistics a mining pass measured, else the default."""
+        c = (manifest.get("mine") or {}).get("colour")
+        if c and c.get("pixels", 1) > 1:
+            return cls.from_covariance(c["cov"], c["mean"], c.get("source", "measured on this run's corpus"))
+        return cls.default()
+
+    def covariance(self) -> np.ndarray:
+        m = np.array(self.factor)
+        return m @ m.T
+
+    def describe(self) -> dict:
+        return {"mean": list(self.mean), "factor": [list(r) for r in self.factor], "cov": self.covariance().tolist(),
+                "method": "cholesky", "source": self.source, "ridge": self.ridge}
+
+    def apply(self, z: torch.Tensor) -> torch.Tensor:
+        """z (B, 3, H, W) whitened -> mean + M z (B, 3, H, W)."""
+        m = torch.tensor(self.factor, dtype=z.dtype)
+        mu = torch.tensor(self.mean, dtype=z.dtype).view(1, 3, 1, 1)
+        return torch.einsum("ij,bjhw->bihw", m, z) + mu
+
+
+def squash(u: torch.Tensor, mean, kind: str) -> torch.Tensor:
+    """Map mean + M z to [0, 1] (see the module docstring)."""
+    if kind == "none":
+        return u
+    if kind == "clip":
+        return u.clamp(0, 1)
+    mu = torch.tensor(mean, dtype=u.dtype).clamp(0.05, 0.95).view(1, 3, 1, 1)
+    return torch.sigmoid(torch.logit(mu) + (u - mu) / (mu * (1 - mu)))
+
+
+class _Base:
+    """Shared by both parameterisations: colour, squash, and the per-image parameter shape."""
+
+    name = ""
+
+    def __init__(self, size: int, colour: ColourBasis, squash: str = "sigmoid", init_std: float = 0.1):
+        if squash not in SQUASHES:
+            raise UnitlensError(f"Unknown squash '{squash}'; valid: {', '.join(SQUASHES)}.")
+        self.size, self.colour, self.squash, self.init_std = int(size), colour, squash, float(init_std)
+
+    shape: tuple[int, ...] = ()
+
+    @property
+    def _folded(self) -> tuple[torch.Tensor, torch.Tensor]:
+        """The colour factor divided by the sigmoid's slope (3, 3), and its offset (3, 1)."""
+        mu = torch.tensor(self.colour.mean)
+        c = mu.clamp(0.05, 0.95)
+        k = torch.tensor(self.colour.factor) / (c * (1 - c)).view(3, 1)
+        return k, (torch.logit(c) + (mu - c) / (c * (1 - c))).view(3, 1)
+
+    def init(self, gen: torch.Generator) -> torch.Tensor:
+        """One image's starting parameters, drawn from `gen` (its own generator)."""
+        return torch.randn(self.shape, generator=gen) * self.init_std
+
+    def whitened(self, params: torch.Tensor) -> torch.Tensor:  # (B, *shape) -> z (B, 3, H, W)
+        raise NotImplementedError
+
+    def pixels(self, params: torch.Tensor) -> torch.Tensor:
+        """(B, *shape) -> RGB (B, 3, H, W) in [0, 1] (unless squash is 'none')."""
+        z = self.whitened(params)
+        if self.squash != "sigmoid":
+            return squash(self.colour.apply(z), self.colour.mean, self.squash)
+        # the same as squash(colour.apply(z), ...), with the colour factor, the slope and the
+        # offset folded into one 3x3 matrix and one bias, applied by one batched matmul
+        k, bias = self._folded
+        B, _, H, W = z.shape
+        return torch.sigmoid(torch.baddbmm(bias.expand(B, 3, 1), k.expand(B, 3, 3), z.reshape(B, 3, H * W))).view(B, 3, H, W)
+
+    def project(self, params: torch.Tensor, norm: float) -> torch.Tensor:
+        """Rescale each image so that its whitened image z has L2 norm `norm` (z is linear in params)."""
+        n = self.whitened(params).flatten(1).norm(dim=1).clamp(min=1e-12)  # (B,)
+        return params * (norm / n).view(-1, *([1] * (params.dim() - 1)))
+
+    def describe(self) -> dict:
+        return {"kind": self.name, "size": self.size, "squash": self.squash, "init_std": self.init_std}
+
+
+class SpectralImage(_Base):
+    """Learnable Fourier coefficients with a 1/f amplitude scale (see the module docstring).
+
+    `decay` is the exponent of the scale: 1 gives a 1/f amplitude spectrum, like natural images
+    (power ~ 1/f^2; Field 1987). The scale is divided by its root-mean-square over the half
+    spectrum, so white coefficients of variance v give pixels of variance about v.
+    """
+
+    name = "spectral"
+
+    def __init__(self, size: int, colour: ColourBasis, squash: str = "sigmoid", init_std: float = 0.1,
+                 decay: float = 1.0):
+        super().__init__(size, colour, squash, init_std)
+        self.decay = float(decay)
+        h = w = self.size
+        self.shape = (3, h, w // 2 + 1, 2)  # real and imaginary parts of the rfft2 half spectrum
+        self.freq = frequencies(h, w)  # (H, W//2+1) cycles per pixel
+        s = 1.0 / self.freq.clamp(min=1.0 / max(h, w)) ** self.decay  # DC clamped to the lowest frequency
+        self.scale = s / s.pow(2).mean().sqrt()  # (H, W//2+1)
+
+    def whitened(self, params: torch.Tensor) -> torch.Tensor:
+        c = torch.view_as_complex(params.contiguous()) * self.scale  # (B, 3, H, W//2+1)
+        return torch.fft.irfft2(c, s=(self.size, self.size), norm="ortho")  # (B, 3, H, W)
+
+    def blur(self, params: torch.Tensor, sigma: float) -> torch.Tensor:
+        """Gaussian blur of width `sigma` px, exactly: the Gaussian's transfer function exp(-2 pi^2 s^2 f^2)."""
+        g = torch.exp(-2 * math.pi**2 * sigma**2 * self.freq**2)
+        return params * g[..., None]
+
+    def describe(self) -> dict:
+        return {**super().describe(), "decay": self.decay, "dc": "clamped to the lowest frequency"}
+
+
+class PixelImage(_Base):
+    """One parameter per pixel and channel."""
+
+    name = "pixel"
+
+    def __init__(self, size: int, colour: ColourBasis, squash: str = "sigmoid", init_std: float = 0.1):
+        super().__init__(size, colour, squash, init_std)
+        self.shape = (3, self.size, self.size)
+
+    def whitened(self, params: torch.Tensor) -> torch.Tensor:
+        return params
+
+    def blur(self, params: torch.Tensor, sigma: float) -> torch.Tensor:
+        from torchvision.transforms.functional import gaussian_blur
+
+        k = 2 * math.ceil(3 * sigma) + 1
+        return gaussian_blur(params, [k, k], [sigma, sigma])
+
+
+def frequencies(h: int, w: int) -> torch.Tensor:
+    """|f| in cycles per pixel on the rfft2 grid (H, W//2+1)."""
+    fy = torch.fft.fftfreq(h).view(-1, 1)
+    fx = torch.fft.rfftfreq(w).view(1, -1)
+    return torch.sqrt(fy * fy + fx * fx)
+
+
+PARAMS = {"spectral": SpectralImage, "pixel": PixelImage}
+
+
+def make_param(kind: str, size: int, colour: ColourBasis, **options):
+    """A parameterisation by name: 'spectral' (default everywhere) or 'pixel'."""
+    if kind not in PARAMS:
+        raise UnitlensError(f"Unknown parameterisation '{kind}'; valid: {', '.join(PARAMS)}.")
+    return PARAMS[kind](size, colour, **options)

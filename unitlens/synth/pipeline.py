@@ -1,0 +1,220 @@
+"""Run-folder synthesis: validate, optimise layer by layer, write each finished batch (layout in results.py)."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from ..errors import UnitlensError
+from ..store import Run, _atomic, read_json, write_json, write_npz
+from .evidence import assess
+from .objectives import Objective, channel
+from .optimise import SynthConfig, iter_units
+from .param import ColourBasis
+from .results import best_exemplars, same_model
+
+
+def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objective: Objective | None = None,
+               *, progress: bool = False, force: bool = False) -> Run:
+    """Synthesise images for `layers` (LayerUnits from parse_layers) into the run folder `out`.
+
+    Resumes: units already in the folder with the same settings are not redone.
+
+    >>> m = load_model("torchvision:resnet18", size=128)                               # doctest: +SKIP
+    >>> synthesize(m, parse_layers(m, ["layer3:0-15"]), "runs/r18", SynthConfig(steps=128))  # doctest: +SKIP
+    """
+    config.validate()
+    objective = objective if objective is not None else channel()
+    unit = objective.unit_term()
+    if unit is None:
+        raise UnitlensError("Run-folder synthesis needs an objective with exactly one channel or neuron term "
+                            f"(got {objective!r}); for other objectives use optimise_units.")
+    sign, term = unit
+    size = config.size or model.preprocess.size
+    for lu in layers:  # everything checked before the first step
+        objective.check(model, lu.layer, lu.units)
+
+    run = Run(out)
+    manifest = read_json(run.manifest_path) or {}
+    if manifest.get("model") and not same_model(manifest["model"], model.describe()):
+        raise UnitlensError(f"{run.path} was made with another model ({manifest['model']['spec']}, weights "
+                            f"{_weights_text(manifest['model'])}). Use another --out folder.")
+    colour = ColourBasis.from_run(manifest)
+    used = colour if config.decorrelate else ColourBasis.plain(colour.mean)
+    settings = {"config": config.describe(size), "objective": objective.describe(), "colour": used.describe()}
+    old = manifest.get("synth")
+    if old and old.get("settings") != settings:
+        if not force:
+            raise UnitlensError(f"{run.path} already holds synthesised images with other settings "
+                                f"({_diff(old.get('settings'), settings)}). Use --force to redo them, "
+                                "or another --out folder.")
+        import shutil
+
+        shutil.rmtree(run.path / "synth", ignore_errors=True)
+        old = None
+    manifest.setdefault("model", model.describe())
+    status = (old or {}).get("layers", {})
+    for lu in layers:
+        st = status.setdefault(lu.layer, {"done": 0, "complete": False})
+        st.update(units=len(lu.units), channels=ranges_text(lu.units))
+    manifest["synth"] = {"settings": settings, "colour": used.describe(), "layers": status, "done": False}
+    run.path.mkdir(parents=True, exist_ok=True)
+    run.save_manifest(manifest)
+
+    for lu in layers:
+        _layer(run, model, lu, config, objective, term, sign, colour, size, progress)
+    m = run.manifest()
+    m["synth"]["done"] = all(v.get("complete") for v in m["synth"]["layers"].values())
+    run.save_manifest(m)
+    return run
+
+
+def _layer(run, model, lu, config, objective, term, sign, colour, size, progress) -> None:
+    from .._progress import Progress
+
+    d = run.layer_dir(lu.layer, "synth")
+    d.mkdir(parents=True, exist_ok=True)
+    table = read_json(d / "units.json") or {"layer": lu.layer, "units": {}}
+    finished = {int(k) for k, rec in table["units"].items()
+                if all((d / im["file"]).is_file() for im in rec["images"])}
+    todo = [c for c in lu.units if c not in finished]
+    best = best_exemplars(run, lu.layer)
+    bar = Progress(len(lu.units), len(lu.units) - len(todo), f"synth {lu.layer}", "units", per="h") \
+        if progress and todo else None
+    spec = config.transforms.at(size)
+    extract = model.extractor([term.layer or lu.layer])
+    try:
+        if todo:
+            for batch in _interruptible(iter_units(model, lu.layer, todo, config, objective, colour), lu, table):
+                for r in batch:
+                    table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, term, sign, spec, colour,
+                                                                config, best.get(r.target), extract)
+                write_json(d / "units.json", table)  # the finished batch counts from here on
+                _status(run, lu.layer, len(table["units"]), False)
+                if bar:
+                    bar.advance(len([c for c in lu.units if str(c) in table["units"]]))
+        write_json(d / "units.json", table)
+        _status(run, lu.layer, len(table["units"]), all(str(c) in table["units"] for c in lu.units))
+    finally:
+        if bar:
+            bar.close()
+
+
+def _interruptible(batches, lu, table):
+    try:
+        yield from batches
+    except KeyboardInterrupt:
+        done = sum(str(c) in table["units"] for c in lu.units)
+        raise UnitlensError(f"Interrupted after {done} of {len(lu.units)} units of {lu.layer}; finished units "
+                            "are saved. Run the same command to resume.") from None
+
+
+def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best, extract) -> dict:
+    from PIL import Image
+
+    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
+    M = len(u8)
+    files = [f"unit-{r.target:04d}-{m}.png" for m in range(M)]
+    for f, a in zip(files, u8):
+        _atomic(d / f, lambda fh, a=a: Image.fromarray(a).save(fh, format="PNG"))
+    T = max(len(t) for t in r.traces)
+    trace = np.full((M, T), np.nan, dtype=np.float32)
+    for m, t in enumerate(r.traces):
+        trace[m, :len(t)] = t
+    write_npz(d / f"unit-{r.target:04d}.npz", trace=trace, steps=np.array(r.steps, dtype=np.int64))
+    checks = assess(model, layer, torch.from_numpy(u8).permute(0, 3, 1, 2), [r.target] * M, term, sign, spec,
+                    colour.mean, config.seed, range(M), config.checks, extract)
+    images = []
+    for m in range(M):
+        c = checks[m]
+        ratio = c["max_activation"] / best if best is not None and best > 0 else None
+        images.append({"file": files[m], "steps": r.steps[m], "objective": float(r.traces[m][-1]),
+                       **c, "vs_best_exemplar": ratio})
+    return {"unit": r.target, "best_exemplar": best, "trace": f"unit-{r.target:04d}.npz", "images": images}
+
+
+def _status(run: Run, layer: str, done: int, complete: bool) -> None:
+    m = run.manifest()
+    m["synth"]["layers"][layer].update(done=done, complete=complete)
+    run.save_manifest(m)
+
+
+# -- the model of a run ----------------------------------------------------------------------
+
+def model_from_run(run: Run | str, allow_pickle: bool = False):
+    """Rebuild the LoadedModel a run folder was made with (spec, weights, preprocessing)."""
+    from ..model import load_model
+
+    run = run if isinstance(run, Run) else Run(run)
+    d = run.manifest().get("model")
+    if not d:
+        raise UnitlensError(f"{run.path}/manifest.json names no model. Give the model instead: "
+                            "`unitlens synth MODEL --layers ... --out RUN`.")
+    w = d.get("weights") or {"kind": "none"}
+    kind = w.get("kind")
+    if kind == "pickle" and not allow_pickle:
+        raise UnitlensError(f"{run.path} was made from a pickled module ({d['spec']}); loading it runs code "
+                            "from the file. Add --allow-pickle if you trust it.")
+    weights = {"file": w.get("path"), "torchvision": str(w.get("name", "")).split(".")[-1]}.get(kind)
+    p = d["preprocess"]
+    m = load_model(d["spec"], weights, size=p["size"], mean=tuple(p["mean"]), std=tuple(p["std"]),
+                   allow_pickle=allow_pickle, arch_options=d.get("arch_options") or None)
+    if w.get("sha256") and m.weights.get("sha256") != w["sha256"]:
+        raise UnitlensError(f"The weights file {w.get('path') or d['spec']} changed since {run.path} was made "
+                            "(its SHA-256 differs). Restore it, or start a new run folder.")
+    return m
+
+
+def _weights_text(d: dict) -> str:
+    w = d.get("weights", {})
+    return w.get("path") or w.get("name") or w.get("kind", "?")
+
+
+def _diff(prev, new) -> str:
+    if not isinstance(prev, dict):
+        return "unknown settings"
+    parts = []
+    for k in new:
+        if isinstance(new[k], dict) and isinstance(prev.get(k), dict):
+            parts += [f"{k}.{j}" for j in new[k] if prev[k].get(j) != new[k][j]]
+        elif prev.get(k) != new[k]:
+            parts.append(k)
+    return "differs in " + ", ".join(parts) if parts else "unknown settings"
+
+
+def ranges_text(units) -> str:
+    """(0, 1, 2, 3, 7) -> '0-3,7' (the --units syntax)."""
+    units = list(units)
+    parts, i = [], 0
+    while i < len(units):
+        j = i
+        while j + 1 < len(units) and units[j + 1] == units[j] + 1:
+            j += 1
+        parts.append(str(units[i]) if i == j else f"{units[i]}-{units[j]}")
+        i = j + 1
+    return ",".join(parts)
+
+
+def run_layers(model, manifest: dict, layers: list[str] | None, units: str | None):
+    """Resolve --layers/--units for a run folder: a layer named without channels (and no --units)
+    gets the channels mined for it (or synthesised before); no --layers means all of those."""
+    from ..units import parse_layers
+
+    known = {name: ranges_text(u) for name, u in ((manifest.get("mine") or {}).get("settings") or {})
+             .get("layers", {}).items()}
+    for name, st in ((manifest.get("synth") or {}).get("layers") or {}).items():
+        if st.get("channels"):
+            known.setdefault(name, st["channels"])
+    if not layers:
+        if not known:
+            raise UnitlensError("This run folder has no mined (or earlier synthesised) layers to default to; "
+                                "name them with --layers (`unitlens layers MODEL` lists them).")
+        if units:
+            return parse_layers(model, list(known), units)
+        return parse_layers(model, [f"{n}:{r}" for n, r in known.items()])
+    items = []
+    for text in layers:
+        for name in ([text] if ":" in text else [n.strip() for n in text.split(",") if n.strip()]):
+            items.append(f"{name}:{known[name]}" if ":" not in name and not units and name in known else name)
+    return parse_layers(model, items, units)

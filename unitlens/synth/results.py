@@ -1,0 +1,67 @@
+"""The on-disk layout of pass 2 and reading it back (no torch, so `show` and the atlas stay light).
+
+Layout, beside the mining pass (every file readable without unitlens):
+  synth/<layer>/unit-0037-0.png   the image(s) of channel 37 (one per image of the unit), 8-bit RGB
+  synth/<layer>/unit-0037.npz     trace (M, T) float32 objective per step, NaN after an early stop;
+                                  steps (M,) steps used
+  synth/<layer>/units.json        {"layer", "units": {"37": record}}; a record holds "unit",
+                                  "best_exemplar" (mining's top score, spatial max; null if not
+                                  mined), "trace" (the npz) and "images": one entry per image with
+                                  "file", "steps", "objective" (last step, under its transform),
+                                  "activation", "max_activation", "vs_best_exemplar" (null when
+                                  unknown), "rank", "channels", "robustness" {n, mean, std,
+                                  relative} (see evidence.py)
+  manifest.json["synth"]          settings, colour basis and where it came from, per-layer status
+
+A unit counts as done once it is in units.json (written after its images), so a killed run
+redoes at most the units of the batch in flight. A unit's images depend only on the settings and
+(seed, layer, channel, image number), so what is redone comes out the same.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..store import Run, read_json, read_npz
+
+
+def best_exemplars(run: Run, layer: str) -> dict[int, float]:
+    """{channel: score of the best natural exemplar} from the mining index (spatial max), if mined."""
+    path = run.layer_dir(layer) / "index.npz"
+    if not path.is_file():
+        return {}
+    idx = read_npz(path)
+    top = idx["top_score"][:, 0]
+    return {int(c): float(s) for c, s in zip(idx["units"], top) if np.isfinite(s)}
+
+
+def unit_images(run: Run | str, layer: str, channel: int) -> list[dict]:
+    """The synthesised images of one unit, for `show`: [] when there are none.
+
+    Each entry: image (PNG path), activation, vs_best_exemplar (None when unknown), max_activation,
+    steps, rank, robustness, trace (npz path).
+    """
+    run = run if isinstance(run, Run) else Run(run)
+    d = run.layer_dir(layer, "synth")
+    table = read_json(d / "units.json") or {"units": {}}
+    rec = table["units"].get(str(channel))
+    if not rec:
+        return []
+    return [{"image": str(d / im["file"]), "trace": str(d / rec["trace"]), **{k: v for k, v in im.items() if k != "file"}}
+            for im in rec["images"]]
+
+
+def trace_of(run: Run | str, layer: str, channel: int) -> np.ndarray:
+    """(M, T) objective traces of one unit (NaN after an early stop)."""
+    run = run if isinstance(run, Run) else Run(run)
+    return read_npz(run.layer_dir(layer, "synth") / f"unit-{channel:04d}.npz")["trace"]
+
+
+def same_model(a: dict, b: dict) -> bool:
+    """Same architecture, weights and preprocessing (the free-text provenance may differ)."""
+    def key(d):
+        w = d.get("weights", {})
+        p = d.get("preprocess", {})
+        return (d.get("spec"), w.get("kind"), w.get("sha256") or w.get("name"), d.get("arch_options") or {},
+                p.get("size"), [round(v, 6) for v in p.get("mean", [])], [round(v, 6) for v in p.get("std", [])])
+
+    return key(a) == key(b)
