@@ -125,6 +125,8 @@ def load_model(
         if arch_options:
             raise UnitlensError("Architecture options apply to torchvision:<arch> models only.")
         module = _user_code(spec)
+        file, func = spec.rsplit(":", 1)
+        spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
         wdesc = _load_weights_file(module, weights) if weights else {"kind": "none"}
         pre = Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
     elif Path(spec).is_file():
