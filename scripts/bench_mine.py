@@ -121,6 +121,7 @@ def bare_forward(extractor, x, layer) -> float:
 
 
 def parts_1_2(args, tmp: Path) -> None:
+    torch.manual_seed(0)  # the same random weights, so the same exemplars and crop work, every run
     model = load_model(f"torchvision:{args.model}", size=args.size)
     layers = parse_layers(model, [args.layer])  # also builds the layer table once, outside the timing
     n_units = len(layers[0].units)
@@ -263,6 +264,7 @@ def variant(model, kind: str, n: int, layer: str, out: Path) -> dict:
 def child(args) -> None:
     """Part-3 variant(s) in this fresh process; prints one JSON list."""
     torch.set_num_threads(args.threads)
+    torch.manual_seed(0)
     model = load_model(f"torchvision:{args.model3}", size=args.size3)
     model.layers()
     counts = [int(c) for c in args._child_n.split(",")]
