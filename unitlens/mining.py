@@ -155,7 +155,7 @@ def _merge(val, img, pos, new_val, new_img, new_pos, k, largest):
 def colour_moments(images: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, int]:
     """Sums for the RGB mean and covariance of uint8 images (B,3,H,W): (sum (3,), sum xx^T (3,3), n)."""
     x = images.permute(1, 0, 2, 3).reshape(3, -1).float() / 255.0  # (3, pixels)
-    return x.double().sum(1), (x @ x.T).double(), x.shape[1]
+    return x.sum(1, dtype=torch.float64), (x @ x.T).double(), x.shape[1]  # no float64 copy of every pixel
 
 
 def _settings(model, corpus, layers, cfg) -> dict:
