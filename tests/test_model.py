@@ -195,3 +195,17 @@ def test_user_code_model_and_hook_fallback(tmp_path):
     assert torch.allclose(ext(x)["a"], m.module.a(x))
     r = run_cli("layers", f"{code}:build", "--size", "32")
     assert "a " in r.stdout and "4x32x32" in r.stdout
+
+
+def test_user_code_declares_its_preprocessing(tmp_path):
+    code = tmp_path / "tiny.py"
+    code.write_text("import torch\nPREPROCESS = {'size': 40, 'mean': (0.5, 0.5, 0.5), 'std': (0.2, 0.2, 0.2)}\n"
+                    "def build():\n    return torch.nn.Sequential(torch.nn.Conv2d(3, 4, 3), torch.nn.ReLU())\n")
+    m = load_model(f"{code}:build")
+    assert (m.preprocess.size, m.preprocess.mean, m.preprocess.std) == (40, (0.5,) * 3, (0.2,) * 3)
+    assert m.preprocess.source == "PREPROCESS in tiny.py"
+    assert load_model(f"{code}:build", size=64).preprocess.size == 64  # the command line still wins
+    code.write_text("import torch\nPREPROCESS = {'size': 40, 'colour': 'rgb'}\n"
+                    "def build():\n    return torch.nn.Conv2d(3, 4, 3)\n")
+    with pytest.raises(UnitlensError, match="keys size, mean, std"):
+        load_model(f"{code}:build")

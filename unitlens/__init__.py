@@ -19,6 +19,7 @@ _EXPORTS = {
     "CompareConfig": "comparison",
     "render_atlas": "atlas",
     "run_all": "workflow",
+    "build_demo": "demo.build",
 }
 __all__ = [*_EXPORTS, "__version__"]
 

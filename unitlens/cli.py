@@ -338,6 +338,25 @@ def atlas_cmd(
     print(render_atlas(run, layers=names))
 
 
+@app.command("demo")
+def demo_cmd(
+    out: Path = typer.Option(Path("unitlens-demo"), "--out", help="Folder for the generated corpus and the run (resumed if it exists)."),
+    count: Optional[int] = typer.Option(None, "--count", min=12, help="Swatch images to generate (default 2000)."),
+    steps: Optional[int] = typer.Option(None, "--steps", min=1, help="Optimisation steps per synthesised image, at most (default 64)."),
+    units: Optional[int] = typer.Option(None, "--units", min=1, help="Only the first N units of each layer (default: all 208)."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+):
+    """Build a whole atlas of the shipped swatch network on generated swatches (no downloads), print its path."""
+    import torch
+
+    from . import build_demo
+
+    if threads:
+        torch.set_num_threads(threads)
+    given = {k: v for k, v in (("count", count), ("steps", steps)) if v is not None}
+    print(build_demo(out, units=units, progress=sys.stderr.isatty(), **given))
+
+
 def main() -> None:
     from .errors import UnitlensError
 

@@ -124,11 +124,12 @@ def load_model(
     elif ".py:" in spec:
         if arch_options:
             raise UnitlensError("Architecture options apply to torchvision:<arch> models only.")
-        module = _user_code(spec)
+        module, declared = _user_code(spec)
         file, func = spec.rsplit(":", 1)
         spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
         wdesc = _load_weights_file(module, weights) if weights else {"kind": "none"}
-        pre = Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+        pre = _declared_preprocess(declared, Path(file).name)
+
     elif Path(spec).is_file():
         if weights:
             raise UnitlensError(
@@ -323,7 +324,22 @@ def _load_weights_file(module: nn.Module, weights: str) -> dict:
     return _apply_state_dict(module, _read_state_dict(Path(weights)), Path(weights))
 
 
-def _user_code(spec: str) -> nn.Module:
+def _declared_preprocess(declared, file: str) -> Preprocess:
+    """A user's code file may declare its input: PREPROCESS = {"size": 96, "mean": (..), "std": (..)}."""
+    if declared is None:
+        return Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+    if not isinstance(declared, dict) or not set(declared) <= {"size", "mean", "std"}:
+        raise UnitlensError(f"PREPROCESS in {file} must be a dict with keys size, mean, std; got {declared!r}.")
+    try:
+        return Preprocess(int(declared.get("size", 224)), tuple(float(v) for v in declared.get("mean", IMAGENET_MEAN)),
+                          tuple(float(v) for v in declared.get("std", IMAGENET_STD)), f"PREPROCESS in {file}")
+    except (TypeError, ValueError):
+        raise UnitlensError(f"PREPROCESS in {file} needs an integer size and three numbers each for mean and std; "
+                            f"got {declared!r}.") from None
+
+
+def _user_code(spec: str) -> tuple[nn.Module, object]:
+    """The module built by `function()` in the file, and the file's PREPROCESS declaration (or None)."""
     file, func = spec.rsplit(":", 1)
     path = Path(file)
     if not path.is_file():
@@ -348,7 +364,7 @@ def _user_code(spec: str) -> nn.Module:
         raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
     if not isinstance(module, nn.Module):
         raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
-    return module
+    return module, getattr(mod, "PREPROCESS", None)
 
 
 def _model_file(path: Path, allow_pickle: bool):

@@ -1,0 +1,118 @@
+"""The built-in demo: shipped weights, the `unitlens demo` command, and the demo as an end-to-end
+check, since every swatch's generating factors are known."""
+from __future__ import annotations
+
+import math
+import subprocess
+import sys
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+
+from unitlens import MineConfig, mine, open_corpus, parse_layers
+from unitlens.demo import net, swatches
+from unitlens.demo.build import LAYERS, demo_corpus, demo_model
+from unitlens.store import Run
+
+from conftest import run_cli
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _inputs(images) -> torch.Tensor:
+    return torch.stack([torch.from_numpy(np.array(im)).permute(2, 0, 1) for im in images])  # (B, 3, S, S) uint8
+
+
+@pytest.fixture(scope="module")
+def model():
+    return demo_model()
+
+
+def test_shipped_weights_are_small_and_classify_fresh_swatches(model):
+    assert net.WEIGHTS.stat().st_size <= 5 * 2**20
+    assert model.preprocess.size == net.INPUT_SIZE and model.preprocess.source == "PREPROCESS in net.py"
+    # Seed 9 was used neither in training (1), in its held-out check (2) nor by the demo corpus (0).
+    fresh = [swatches.sample(i, seed=9) for i in range(240)]
+    with torch.no_grad():
+        logits = model.module(model.normalize(_inputs(swatches.render(s, net.INPUT_SIZE) for s in fresh)))
+    truth = torch.tensor([swatches.CLASSES.index(s.kind) for s in fresh])
+    accuracy = float((logits.argmax(1) == truth).float().mean())
+    assert accuracy >= 0.9, accuracy  # chance is 1/6; scripts/train_demo_model.py reports ~0.99 held out
+    per_kind = [float((logits.argmax(1)[truth == c] == c).float().mean()) for c in range(len(swatches.CLASSES))]
+    assert min(per_kind) >= 0.7, per_kind
+
+
+def _circular_mean(degrees: np.ndarray) -> tuple[float, float]:
+    """Mean axis of orientations on the 180-degree circle, and its resultant length in [0, 1]
+    (doubled angles: the usual statistic for axial data, Mardia & Jupp 2000, section 9.3)."""
+    z = np.exp(2j * np.deg2rad(degrees)).mean()
+    return float(np.rad2deg(np.angle(z)) / 2 % 180), float(abs(z))
+
+
+def test_units_with_one_exemplar_orientation_are_orientation_selective_on_fresh_swatches(model, tmp_path):
+    corpus_dir = demo_corpus(tmp_path / "corpus", count=600)
+    corpus = open_corpus(corpus_dir, labels="folders")
+    mine(model, corpus, parse_layers(model, ["block3", "block4"]), tmp_path / "run", MineConfig(top_k=16, workers=0))
+    run = Run(tmp_path / "run")
+    truth = {p.resolve(): s for p, s in swatches.read_factors(corpus_dir)}
+    factors = [truth[corpus.path(i).resolve()] for i in range(len(corpus))]
+    fresh = {k: [s for s in (swatches.sample(i, seed=7) for i in range(200)) if s.kind == k][:16]
+             for k in ("twill", "stripe")}
+    extract = model.extractor(["block3", "block4"])
+
+    def peak(layer, unit, swatch_list):  # the unit's spatial maximum on each image
+        with torch.no_grad():
+            x = model.normalize(_inputs(swatches.render(s, net.INPUT_SIZE) for s in swatch_list))
+            return extract(x)[layer][:, unit].amax((1, 2)).numpy()
+
+    checked = []
+    for layer in ("block3", "block4"):
+        idx = run.index(layer)
+        for row, unit in enumerate(idx["units"]):
+            lined = [factors[i] for i in idx["top_image"][row] if factors[i].kind in ("twill", "stripe")]
+            if len(lined) < 8:
+                continue
+            axis, length = _circular_mean(np.array([s.orientation for s in lined]))
+            if length < 0.9:  # the exemplars do not share one orientation
+                continue
+            kind = max(("twill", "stripe"), key=[s.kind for s in lined].count)
+            # Same swatches (dye, frequency, phase, noise), only the orientation turned by 90 degrees.
+            best = peak(layer, int(unit), [replace(s, orientation=axis) for s in fresh[kind]])
+            across = peak(layer, int(unit), [replace(s, orientation=(axis + 90) % 180) for s in fresh[kind]])
+            checked.append((layer, int(unit), float((best > across).mean()), float(best.mean() / across.mean())))
+    assert len(checked) >= 5, checked
+    for layer, unit, wins, ratio in checked:
+        assert wins >= 0.8 and ratio >= 1.1, (layer, unit, wins, ratio)
+
+
+def test_demo_command_builds_an_atlas(tmp_path):
+    out = tmp_path / "demo"
+    r = run_cli("demo", "--out", str(out), "--count", "36", "--units", "2", "--steps", "4", "--threads", "1")
+    index = Path(r.stdout.strip().splitlines()[-1])
+    assert index == out / "atlas" / "index.html" and index.is_file()
+    m = Run(out).manifest()
+    assert sorted(m["mine"]["layers"]) == sorted(LAYERS) and m["mine"]["done"]
+    assert all((out / "synth" / layer / "unit-0001.npz").is_file() for layer in LAYERS)
+    assert len(list((out / "corpus").rglob("*.png"))) == 36
+    again = run_cli("demo", "--out", str(out), "--count", "36", "--units", "2", "--steps", "4", "--threads", "1")
+    assert again.stdout.strip().splitlines()[-1] == str(index)  # resumed: nothing left to do
+
+
+def test_demo_refuses_a_folder_that_is_not_its_own(tmp_path):
+    (tmp_path / "corpus").mkdir()
+    (tmp_path / "corpus" / "holiday.jpg").write_bytes(b"not ours")
+    r = run_cli("demo", "--out", str(tmp_path), "--count", "36", check=False)
+    assert r.returncode == 1 and "is not a demo corpus" in r.stderr
+    assert (tmp_path / "corpus" / "holiday.jpg").read_bytes() == b"not ours"
+
+
+def test_training_script_runs_and_writes_loadable_weights(tmp_path):
+    out = tmp_path / "w.pt"
+    r = subprocess.run([sys.executable, str(ROOT / "scripts" / "train_demo_model.py"), "--train", "96", "--test", "36",
+                        "--epochs", "1", "--threads", "1", "--out", str(out)], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert "held-out accuracy per class" in r.stdout
+    net.swatch_net().load_state_dict(torch.load(out, weights_only=True))
