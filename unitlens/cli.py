@@ -324,14 +324,17 @@ def compare_cmd(
         print(f"{name:<20} {fmt(e['cka']):>6} {ci:>15} {fmt(e['cka_full_maps']):>9} {fmt(e['mean_corr']):>6} "
               f"{fmt(e['mean_jaccard']):>7} {e['dead']:>4}  {', '.join(map(str, e['most_changed'][:8])) or e['units_note'] or ''}")
     print(s["out"])
+    print(s["atlas"])
 
 
 @app.command("atlas")
 def atlas_cmd(
-    run: Path = typer.Argument(..., help="A run folder (mined, synthesised, or both)."),
+    run: Path = typer.Argument(..., help="A run folder (mined, synthesised, or both), or a folder written by `compare`."),
     layers: Optional[list[str]] = typer.Option(None, "--layers", help="Redraw only these layers, comma-separated (repeatable; default: all)."),
 ):
-    """Draw the run's static HTML atlas into RUN/atlas/ (opens from file://, no server, no network)."""
+    """Draw the run's static HTML atlas into RUN/atlas/ (opens from file://, no server, no network).
+
+    Given a comparison folder, (re)draw its pages into COMPARE/atlas/ instead."""
     from . import render_atlas
 
     names = [n.strip() for text in layers for n in text.split(",") if n.strip()] if layers else None

@@ -667,7 +667,7 @@ def _check(cfg: CompareConfig) -> None:
 
 
 def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: CompareConfig = CompareConfig(),
-            progress: bool = False, allow_pickle: bool = False) -> dict:
+            progress: bool = False, allow_pickle: bool = False, atlas: bool = True) -> dict:
     """Compare A with B layer by layer and unit by unit; return the summary (see the module doc).
 
     `a`, `b`: two LoadedModels (then `corpus` and `layers` are needed; `layers_b` pairs other layers
@@ -675,7 +675,8 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
     corpus (then what they hold is used, and what they lack is recomputed from the models in their
     manifests, said on stderr and listed in `recomputed`; `allow_pickle` lets a run's pickled model
     be reloaded for that). With `out` (for runs by default RUN_A/compare/<RUN_B name>) it writes
-    compare.json, cka_matrix.csv, units_<layer>.csv and corpus.json there.
+    compare.json, cka_matrix.csv, units_<layer>.csv and corpus.json there, and with `atlas` its pages
+    in OUT/atlas/ (the summary's `atlas` is then the path of their index.html).
 
     >>> s = compare(load_model(spec, "base.pth"), load_model(spec, "tuned.pth"),
     ...             corpus="probe/", layers=["layer3,layer4"], out="cmp")    # doctest: +SKIP
@@ -704,4 +705,8 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
     out = out if out is not None else plan.default_out
     if out is not None:
         _write(Path(out), summary, plan.corpus)
+        if atlas:
+            from .atlas.comparison_page import render_comparison
+
+            summary["atlas"] = str(render_comparison(out))
     return summary

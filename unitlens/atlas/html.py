@@ -60,12 +60,14 @@ def js_data(name: str, obj) -> str:
     return f"window.{name} = {text};\n"
 
 
-def page(title: str, kind: str, crumbs, main, scripts=(), body_attrs: dict | None = None) -> str:
+def page(title: str, kind: str, crumbs, main, scripts=(), body_attrs: dict | None = None, styles=()) -> str:
+    """A whole page: `styles` are stylesheets to load after atlas.css."""
     tpl = Template(resources.files(__package__).joinpath("templates/page.html").read_text())
     attrs = " ".join(f'{k}="{esc(v)}"' for k, v in (body_attrs or {}).items())
     return tpl.substitute(
         title=esc(title), kind=esc(kind), csp=Html(CSP), logo=LOGO, crumbs=join(crumbs), main=main,
         body_attrs=Html(attrs), cautions=esc(CAUTIONS[0].split(".")[0] + "."),
+        styles=join(Html(f'<link rel="stylesheet" href="{esc(s)}">') for s in styles),
         scripts=join(Html(f'<script src="{esc(s)}"></script>') for s in scripts),
     )
 
@@ -115,8 +117,10 @@ def _weights(w: dict) -> Html:
     return join(parts)
 
 
-def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_name: str) -> str:
-    """The run summary. `layers`: [{name, href|None, shape, mined, k, synthesised, synth_total, status}]."""
+def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_name: str,
+               comparisons: Html = Html("")) -> str:
+    """The run summary. `layers`: [{name, href|None, shape, mined, k, synthesised, synth_total, status}];
+    `comparisons`: the section listing the run's comparisons (comparison_page.comparisons_section)."""
     model = m.get("model") or {}
     pre = model.get("preprocess") or {}
     corpus = m.get("corpus") or {}
@@ -200,7 +204,7 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
     head = tag("header", tag("h1", run_name), tag("p", "unit atlas: what the channels of ", tag("code", model.get("spec", "?")),
                                                   " respond to on this corpus", class_="lede"), class_="pagehead")
     grid = tag("div", model_s, corpus_s, prov_s, class_="panels")
-    main = join([head, cautions, layers_s, grid, skipped_s, params_s])
+    main = join([head, cautions, layers_s, comparisons, grid, skipped_s, params_s])
     return page(f"{run_name}: unit atlas", "index", [tag("span", run_name, class_="here")], main)
 
 

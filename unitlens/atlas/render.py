@@ -31,11 +31,18 @@ STATE = ".render.json"  # what each layer page was drawn from
 def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = None) -> Path:
     """Draw (or bring up to date) the atlas of a run folder; returns the path of its index.html.
 
-    `layers`: redraw only these (the index and navigation always list every layer).
+    `layers`: redraw only these (the index and navigation always list every layer). Given a
+    comparison folder (compare.json, no manifest), it draws that folder's pages instead.
 
     >>> render_atlas("runs/demo")                     # doctest: +SKIP
     PosixPath('runs/demo/atlas/index.html')
     """
+    if not isinstance(run, Run) and (Path(run) / "compare.json").is_file() and not (Path(run) / "manifest.json").is_file():
+        from .comparison_page import render_comparison  # a comparison folder: its pages are drawn whole
+
+        if layers is not None:
+            raise UnitlensError(f"{run} is a comparison folder; its pages are drawn all at once. Leave out --layers.")
+        return render_comparison(run)
     run = run if isinstance(run, Run) else Run(run)
     m = run.manifest()
     known = _known_layers(m)
@@ -83,9 +90,12 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     rows = [_layer_row(n, m, pages.get(n)) for n in known]
     index = out / "index.html"
     drawn = state.get("drawn", "")
-    if drew or not index.is_file() or index.read_text() != index_page(m, rows, drawn, f"unitlens {version}", run_name):
+    from .comparison_page import comparisons_section
+
+    cmp = comparisons_section(run.path, out)  # the comparisons under RUN/compare/
+    if drew or not index.is_file() or index.read_text() != index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp):
         state["drawn"] = drawn = now()  # the date on the index is that of the atlas's last change
-    _write_if_changed(index, index_page(m, rows, drawn, f"unitlens {version}", run_name).encode())
+    _write_if_changed(index, index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp).encode())
     _write_if_changed(out / STATE, json.dumps(state, indent=1).encode())
     return out / "index.html"
 

@@ -1,4 +1,5 @@
-/* unitlens plots: a tiny inline-SVG renderer (histograms, horizontal bars, line traces).
+/* unitlens plots: a tiny inline-SVG renderer (histograms, horizontal bars, line traces), and the
+   few DOM helpers the page scripts share (el, add, unitFilter).
    Elements are built with createElementNS and text goes in through textContent only, so no
    value can become markup. Colours come from CSS classes (see atlas.css), so plots follow the
    light and dark themes. */
@@ -171,5 +172,31 @@
     return svg;
   }
 
-  window.ULPlot = { histogram: histogram, hbars: hbars, lines: lines, fmt: fmt, ticks: ticks, node: node };
+  /* Not plots, but shared by the pages that load this file. An HTML element whose text goes in as
+     textContent, and the same appended to a parent: */
+  function el(tag, cls, text) {
+    const e = document.createElement(tag);
+    if (cls) e.className = cls;
+    if (text !== undefined && text !== null) e.textContent = String(text);
+    return e;
+  }
+  function add(parent, tag, cls, text) { return parent.appendChild(el(tag, cls, text)); }
+
+  /* unit ids typed as "12" or "10-40, 77" -> a test u => bool; null for an empty text, undefined
+     for one that cannot be read */
+  function unitFilter(text) {
+    const t = text.trim();
+    if (!t) return null;
+    const ranges = [];
+    for (const p of t.split(/[\s,]+/).filter(Boolean)) {
+      const m = /^(\d+)(?:-(\d+))?$/.exec(p);
+      if (!m) return undefined;
+      const a = +m[1], b = m[2] === undefined ? a : +m[2];
+      ranges.push([Math.min(a, b), Math.max(a, b)]);
+    }
+    return u => ranges.some(r => u >= r[0] && u <= r[1]);
+  }
+
+  window.ULPlot = { histogram: histogram, hbars: hbars, lines: lines, fmt: fmt, ticks: ticks, node: node,
+    el: el, add: add, unitFilter: unitFilter };
 })();
