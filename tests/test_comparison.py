@@ -13,7 +13,7 @@ from conftest import TESTS, run_cli
 from digits import MEAN, SIZE, STD, digit_images, normalize
 from digits_finetune import BLOCKS, accuracy, permute_block, seeded_net, silence_unit, train, write_corpus
 from unitlens import CompareConfig, MineConfig, UnitlensError, compare, load_model, mine, open_corpus, parse_layers
-from unitlens.comparison import _resampled_cka, hsic_unbiased, linear_cka, minibatch_cka
+from unitlens._cka import _resampled_cka, hsic_unbiased, linear_cka, minibatch_cka
 
 SPEC = f"{TESTS / 'digits_finetune.py'}:digits_bn_net"
 PROBE = 600  # the first 600 digits are the probe corpus; the networks train on the other 1197
