@@ -230,15 +230,19 @@ def digits_model(tmp_path_factory):
 
 
 def test_each_digit_logit_image_beats_every_natural_digit(digits_model):
-    # Olah et al. 2017 (Feature Visualization, Distill): optimised inputs drive a unit far beyond
-    # what natural inputs do. Here: every one of the 1,797 digits, against each logit's image.
+    # Olah et al. 2017 (Feature Visualization, Distill): optimised inputs drive a unit beyond what
+    # natural inputs do. A bound, too: every natural digit lies in the parameterisation's image box,
+    # so the true maximum is at least the best digit, and a good optimiser must get there. The bound
+    # is for the plain objective; random transforms optimise an expectation over jitter instead, so
+    # they are off here, and so is the early stop. Here: each logit's image against all 1,797 digits.
     from digits import digit_images
 
     images, _ = digit_images()
     ex = digits_model.extractor(["7"])
     with torch.no_grad():
         natural = ex(digits_model.normalize(images))["7"].flatten(1)  # (N, 10)
-    results = optimise_units(digits_model, "7", range(10), SynthConfig(checks=0))
+    results = optimise_units(digits_model, "7", range(10),
+                             SynthConfig(checks=0, stop_gain=None, transforms=TransformSpec.none()))
     synth = torch.from_numpy(np.stack([np.round(r.images[0] * 255) for r in results])).permute(0, 3, 1, 2)
     with torch.no_grad():
         got = ex(digits_model.normalize(synth.to(torch.uint8)))["7"].flatten(1)  # as saved: 8-bit
