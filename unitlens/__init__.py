@@ -5,6 +5,8 @@ The library front door; the `unitlens` command calls exactly these. Names load o
 """
 __version__ = "0.1.0"
 
+from ._lazy import lazy_exports
+
 _EXPORTS = {
     "UnitlensError": "errors",
     "load_model": "model",
@@ -24,11 +26,4 @@ _EXPORTS = {
 __all__ = [*_EXPORTS, "__version__"]
 
 
-def __getattr__(name):
-    if name in _EXPORTS:
-        import importlib
-
-        value = getattr(importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module 'unitlens' has no attribute {name!r}")
+__getattr__ = lazy_exports(__name__, _EXPORTS, globals())

@@ -10,6 +10,8 @@
 
 Names load on first use, so reading results (`show`) does not import torch.
 """
+from .._lazy import lazy_exports
+
 _EXPORTS = {
     "synthesize": "pipeline", "model_from_run": "pipeline", "unit_images": "results", "trace_of": "results",
     "SynthConfig": "optimise", "optimise_units": "optimise", "iter_units": "optimise", "UnitResult": "optimise",
@@ -22,11 +24,4 @@ _EXPORTS = {
 __all__ = list(_EXPORTS)
 
 
-def __getattr__(name):
-    if name in _EXPORTS:
-        import importlib
-
-        value = getattr(importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module 'unitlens.synth' has no attribute {name!r}")
+__getattr__ = lazy_exports(__name__, _EXPORTS, globals())
