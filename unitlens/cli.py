@@ -23,6 +23,9 @@ Std = typer.Option(None, "--std", help="Normalisation std, R,G,B.")
 AllowPickle = typer.Option(False, "--allow-pickle", help="Allow a whole pickled module as MODEL (runs code from the file).")
 ArchOption = typer.Option(None, "--arch-option", help="Constructor option for torchvision models, key=value (repeatable).")
 Json = typer.Option(False, "--json", help="Print JSON instead of a table.")
+Device = typer.Option("cpu", "--device", help="Where the network runs: cpu, cuda or cuda:N (under torchrun, cuda is the GPU of LOCAL_RANK).")
+Dedupe = typer.Option(False, "--dedupe", help="Near-identical images (thumbnail cosine >= 0.99) count once in each "
+                                             "unit's exemplars; off: the exact top-K.")
 
 
 def _triple(text: Optional[str], name: str):
@@ -50,6 +53,12 @@ def _arch_options(items: Optional[list[str]]) -> dict:
         low = value.lower()
         out[key] = True if low == "true" else False if low == "false" else int(value) if value.lstrip("-").isdigit() else value
     return out
+
+
+def place(model, device: str):
+    from .dist import place as _place
+
+    return _place(model, device)
 
 
 def _load(model, weights, size, mean, std, allow_pickle, arch_option):
@@ -108,6 +117,7 @@ def mine_cmd(
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
     force: bool = typer.Option(False, "--force", help="Start the run folder's mining over."),
     checkpoint_every: float = typer.Option(5.0, "--checkpoint-every", min=0.0, help="Seconds between saved checkpoints."),
+    dedupe: bool = Dedupe, device: str = Device,
     weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
@@ -120,11 +130,12 @@ def mine_cmd(
         torch.set_num_threads(threads)
     m = _load(model, weights, size, mean, std, allow_pickle, arch_option)
     chosen = parse_layers(m, layers, units)  # checked before any image is decoded
+    place(m, device)
     c = open_corpus(corpus, labels=labels)
     n_units = sum(len(lu.units) for lu in chosen)
     print(f"Mining {n_units} units in {len(chosen)} layer(s) over {len(c)} images -> {out}", file=sys.stderr)
     run = mine(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers,
-                                           checkpoint_seconds=checkpoint_every),
+                                           checkpoint_seconds=checkpoint_every, dedupe=dedupe),
                progress=sys.stderr.isatty(), force=force)
     skipped = run.manifest()["corpus"]["skipped"]
     if skipped:
@@ -177,6 +188,7 @@ def run_cmd(
     batch_size: int = typer.Option(32, "--batch-size", min=1, help="Images per forward pass when mining."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    dedupe: bool = Dedupe, device: str = Device,
     weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
@@ -189,8 +201,9 @@ def run_cmd(
         torch.set_num_threads(threads)
     m = _load(model, weights, size, mean, std, allow_pickle, arch_option)
     chosen = parse_layers(m, layers, units)
+    place(m, device)
     c = open_corpus(corpus, labels=labels)
-    run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers),
+    run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
                   SynthConfig(steps=steps, size=synth_size, seed=seed), budget=budget,
                   progress=sys.stderr.isatty())
     print(run.path / "atlas" / "index.html")
@@ -218,6 +231,7 @@ def synth(
     batch_size: Optional[int] = typer.Option(None, "--batch-size", min=1, help="Images per pass (default: from free memory, at most 32)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
     force: bool = typer.Option(False, "--force", help="Redo synthesised images made with other settings."),
+    device: str = Device,
     weights: Optional[str] = Weights, mean: Optional[str] = Mean, std: Optional[str] = Std,
     allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
@@ -250,6 +264,7 @@ def synth(
         m = _load(target, weights, size, mean, std, allow_pickle, arch_option)
         chosen = parse_layers(m, layers, units)
         run_dir = out
+    place(m, device)
     if objective not in ("channel", "neuron"):
         raise UnitlensError(f"--objective must be channel or neuron, got '{objective}'.")
     obj = channel() if objective == "channel" else neuron()
@@ -288,7 +303,7 @@ def compare_cmd(
     size: Optional[int] = typer.Option(None, "--size", help="Input size of both models (default: from the weights' metadata)."),
     mean: Optional[str] = typer.Option(None, "--mean", help="Normalisation mean of both models, R,G,B."),
     std: Optional[str] = typer.Option(None, "--std", help="Normalisation std of both models, R,G,B."),
-    allow_pickle: bool = AllowPickle, as_json: bool = Json,
+    allow_pickle: bool = AllowPickle, as_json: bool = Json, device: str = Device,
 ):
     """Compare two checkpoints (or two mined runs) on one corpus: CKA per layer, drift per unit."""
     import torch
@@ -309,8 +324,8 @@ def compare_cmd(
     else:
         if out is None:
             raise UnitlensError("Comparing two models writes a folder: give --out DIR.")
-        ma = _load(a, weights_a, size, mean, std, allow_pickle, None)
-        mb = _load(b, weights_b, size, mean, std, allow_pickle, None)
+        ma = place(_load(a, weights_a, size, mean, std, allow_pickle, None), device)
+        mb = place(_load(b, weights_b, size, mean, std, allow_pickle, None), device)
         s = compare(ma, mb, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
                     progress=sys.stderr.isatty())
     if as_json:
@@ -366,6 +381,9 @@ def main() -> None:
     try:
         app()
     except UnitlensError as e:
+        from .dist import fail
+
+        fail(str(e))  # under torchrun the other ranks stop and quote it
         print(f"Error: {e}", file=sys.stderr)
         sys.exit(1)
     except KeyboardInterrupt:

@@ -404,12 +404,14 @@ def default_workers() -> int:
 
 
 def batches(corpus: Corpus, size: int, start: int = 0, batch_size: int = 32, workers: int | None = None,
-            max_pixels: int = DEFAULT_MAX_PIXELS) -> Iterator[Batch]:
-    """Decode corpus[start:] in DataLoader workers, in corpus order. Bad files come back in
-    Batch.failures and never stop the run; a batch may hold zero images."""
+            max_pixels: int = DEFAULT_MAX_PIXELS, indices: Sequence[int] | None = None) -> Iterator[Batch]:
+    """Decode corpus[start:] (or the `indices` from `start` on, e.g. one rank's shard) in DataLoader
+    workers, in corpus order. Bad files come back in Batch.failures and never stop the run; a batch
+    may hold zero images."""
     if not 0 <= start <= len(corpus):
         raise ValueError(f"start {start} outside the corpus (0-{len(corpus)})")
-    dataset = CorpusDataset(corpus, size, range(start, len(corpus)), max_pixels)
+    todo = range(start, len(corpus)) if indices is None else [i for i in indices if i >= start]
+    dataset = CorpusDataset(corpus, size, todo, max_pixels)
     yield from torch.utils.data.DataLoader(
         dataset, batch_size=batch_size, shuffle=False, collate_fn=partial(collate, size=size),
         num_workers=default_workers() if workers is None else workers)

@@ -14,8 +14,10 @@ from pathlib import Path
 import numpy as np
 import torch
 
+from . import dist
 from ._progress import Progress
 from .errors import UnitlensError
+from .facets import THUMB, NearDuplicates, needs_pooled, thumbnails
 from .store import Run, read_json, read_npz, write_json, write_npz
 from .units import LayerUnits
 
@@ -43,6 +45,8 @@ class MineConfig:
     checkpoint_seconds: float = 5.0
     keep_values: bool = True  # per-image maxima and means on disk (for compare and facets)
     thumb: int = 96  # exemplar crop size in the sprite sheets
+    dedupe: bool = False  # near-identical images count once in a unit's exemplar lists (facets.py)
+    dedupe_threshold: float = 0.99  # cosine between normalised 16x16 thumbnails
 
 
 def class_selectivity(class_means: np.ndarray, eps: float = 1e-7) -> np.ndarray:
@@ -83,6 +87,7 @@ class LayerTally:
         self.hist = torch.zeros((U, HIST_BINS), dtype=torch.long)
         self.class_sum = torch.zeros((max(n_classes, 1), U), dtype=torch.float64)
         self.class_count = torch.zeros(max(n_classes, 1), dtype=torch.long)
+        self.groups: torch.Tensor | None = None  # near-duplicate group per corpus image, with --dedupe
 
     STATE = ("top_val", "top_img", "top_pos", "bot_val", "bot_img", "bot_pos", "count", "sum_max",
              "sumsq_max", "sum_mean", "fires", "low", "high", "hist", "class_sum", "class_count")
@@ -105,9 +110,9 @@ class LayerTally:
         mn = torch.nan_to_num(mn, nan=math.inf)
         ids_u = ids.view(1, -1).expand(mx.shape[1], -1)  # (U, B)
         self.top_val, self.top_img, self.top_pos = _merge(
-            self.top_val, self.top_img, self.top_pos, mx.T, ids_u, amx.T, self.k, largest=True)
+            self.top_val, self.top_img, self.top_pos, mx.T, ids_u, amx.T, self.k, largest=True, groups=self.groups)
         self.bot_val, self.bot_img, self.bot_pos = _merge(
-            self.bot_val, self.bot_img, self.bot_pos, mn.T, ids_u, amn.T, self.k, largest=False)
+            self.bot_val, self.bot_img, self.bot_pos, mn.T, ids_u, amn.T, self.k, largest=False, groups=self.groups)
         m64 = mx.double()
         self.count += mx.shape[0]
         self.sum_max += m64.sum(0)
@@ -131,24 +136,30 @@ class LayerTally:
         """Fold another tally over a disjoint set of images into this one (exact)."""
         self.top_val, self.top_img, self.top_pos = _merge(
             self.top_val, self.top_img, self.top_pos, other.top_val, other.top_img, other.top_pos,
-            self.k, largest=True)
+            self.k, largest=True, groups=self.groups)
         self.bot_val, self.bot_img, self.bot_pos = _merge(
             self.bot_val, self.bot_img, self.bot_pos, other.bot_val, other.bot_img, other.bot_pos,
-            self.k, largest=False)
+            self.k, largest=False, groups=self.groups)
         for k in ("count", "sum_max", "sumsq_max", "sum_mean", "fires", "hist", "class_sum", "class_count"):
             setattr(self, k, getattr(self, k) + getattr(other, k))
         self.low = torch.minimum(self.low, other.low)
         self.high = torch.maximum(self.high, other.high)
 
 
-def _merge(val, img, pos, new_val, new_img, new_pos, k, largest):
-    """Keep the k best of both lists, ordered by score then corpus order. All (U, *)."""
+def _merge(val, img, pos, new_val, new_img, new_pos, k, largest, groups=None):
+    """Keep the k best of both lists, ordered by score then corpus order. All (U, *).
+    With `groups` (near-duplicate group per corpus image) only the best of each group is kept."""
     v = torch.cat([val, new_val], 1)
     i = torch.cat([img, new_img], 1)
     p = torch.cat([pos, new_pos], 1)
     o = torch.argsort(i, dim=1, stable=True)  # corpus order first ...
     v, i, p = v.gather(1, o), i.gather(1, o), p.gather(1, o)
-    o = torch.argsort(v, dim=1, descending=largest, stable=True)[:, :k]  # ... then score, stable
+    o = torch.argsort(v, dim=1, descending=largest, stable=True)  # ... then score, stable
+    if groups is not None:
+        from .facets import keep_first_of_group
+
+        return keep_first_of_group(v.gather(1, o), i.gather(1, o), p.gather(1, o), k, groups, largest)
+    o = o[:, :k]
     return v.gather(1, o), i.gather(1, o), p.gather(1, o)
 
 
@@ -166,6 +177,7 @@ def _settings(model, corpus, layers, cfg) -> dict:
         "top_k": cfg.top_k,
         "keep_values": cfg.keep_values,
         "thumb": cfg.thumb,
+        **({"dedupe": cfg.dedupe_threshold} if cfg.dedupe else {}),
     }
 
 
@@ -179,6 +191,10 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
 
     run = Run(out)
     settings = _settings(model, corpus, layers, config)
+    g = dist.group()  # one process, or this rank of a torchrun job: it mines every world-th batch
+    if config.dedupe and g.world > 1:
+        raise UnitlensError("Near-duplicate suppression (--dedupe) needs every image in one process, in corpus "
+                            f"order; run it without torchrun (this job has {g.world} ranks).")
     mdir = run.path / "mine"
     old = read_json(run.manifest_path)
     prev_corpus = read_json(run.path / "corpus.json")
@@ -196,17 +212,20 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
             )
         if old["mine"].get("done"):
             return run
-    if force and mdir.exists():
-        import shutil
+    g.agree((corpus.fingerprint, settings, force), "the corpus or the mining settings")
+    if g.main:  # the other ranks write only files of their own (dist.py)
+        if force and mdir.exists():
+            import shutil
 
-        shutil.rmtree(mdir)
-    run.path.mkdir(parents=True, exist_ok=True)
-    run.save_corpus(corpus)
-    manifest = old if old and not force else {}
-    manifest.update(model=model.describe(), corpus=_corpus_summary(corpus, []))
-    manifest["mine"] = {"settings": settings, "done": False,
-                        "layers": {lu.layer: {"units": len(lu.units), "done": False} for lu in layers}}
-    run.save_manifest(manifest)
+            shutil.rmtree(mdir)
+        run.path.mkdir(parents=True, exist_ok=True)
+        run.save_corpus(corpus)
+        manifest = old if old and not force else {}
+        manifest.update(model=model.describe(), corpus=_corpus_summary(corpus, []))
+        manifest["mine"] = {"settings": settings, "done": False,
+                            "layers": {lu.layer: {"units": len(lu.units), "done": False} for lu in layers}}
+        run.save_manifest(manifest)
+    g.check_shared(run.path)
 
     N = len(corpus)
     n_classes = len(corpus.classes)
@@ -220,8 +239,16 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     colour = [torch.zeros(3, dtype=torch.float64), torch.zeros(3, 3, dtype=torch.float64), 0]
     skipped: list[tuple[str, str]] = []
     start = 0
-    state_path, meta_path = mdir / "state.npz", mdir / "state.json"
+    state_path, meta_path = g.part(mdir / "state.npz"), g.part(mdir / "state.json")
+    if g.stray(mdir, "state", ".json"):
+        raise UnitlensError(f"{mdir} holds checkpoints of a launch with another number of processes "
+                            f"({', '.join(g.stray(mdir, 'state', '.json'))}); resume with that number, or use "
+                            "--force to start over.")
+    shard = g.blocks(N, config.batch_size)
     meta = read_json(meta_path)
+    if meta and g.world > 1 and meta.get("batch_size") != config.batch_size:  # it decides the shards
+        raise UnitlensError(f"This mining pass was started with --batch-size {meta.get('batch_size')} on "
+                            f"{g.world} processes; resume it with that batch size, or use --force to start over.")
     if meta and state_path.is_file():
         st = read_npz(state_path)
         for name, t in tallies.items():
@@ -230,22 +257,39 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
         skipped = [tuple(s) for s in meta["skipped"]]
         start = int(meta["next"])
 
-    values = {}
+    values, row_files = {}, []  # per-image rows; with several ranks each writes its own part file
+
+    def rows_file(path, width):
+        row_files.append(path)
+        return _open_values(g.part(path), (len(shard), width), fresh=start == 0)
+
     if config.keep_values:
         for lu in layers:
             d = run.layer_dir(lu.layer)
             d.mkdir(parents=True, exist_ok=True)
-            values[lu.layer] = tuple(_open_values(d / f"{kind}.npy", (N, len(lu.units)), fresh=start == 0)
-                                     for kind in ("values", "means"))
+            values[lu.layer] = tuple(rows_file(d / f"{kind}.npy", len(lu.units)) for kind in ("values", "means"))
+            if needs_pooled(lu.units, infos[lu.layer].channels):  # embedding source (facets.py)
+                values[lu.layer] += (rows_file(d / "pooled.npy", infos[lu.layer].channels),)
+    dedupe = None
+    if config.dedupe:
+        dedupe = NearDuplicates(_open_values(mdir / "thumbs.npy", (N, 3 * THUMB * THUMB), start == 0, np.uint8),
+                                config.dedupe_threshold)
+        dedupe.extend(start)  # groups of the images before a resume point are recomputed from their thumbnails
+        for t in tallies.values():
+            t.groups = dedupe.groups
 
     def checkpoint(next_index: int) -> None:
         for vm in values.values():
             for a in vm:
                 a.flush()
+        if dedupe:
+            dedupe.flush()
         arrays = {f"{name}/{k}": v for name, t in tallies.items() for k, v in t.state().items()}
         arrays.update(colour_sum=colour[0].numpy(), colour_outer=colour[1].numpy())
         write_npz(state_path, **arrays)
-        write_json(meta_path, {"next": next_index, "skipped": skipped, "colour_n": colour[2]})
+        write_json(meta_path, {"next": next_index, "skipped": skipped, "colour_n": colour[2],
+                               "batch_size": config.batch_size})
+        g.check("while mining")  # stop early if another rank died
 
     extractor = model.extractor([lu.layer for lu in layers])
     bar = Progress(N, start, "mining", "img") if progress else None
@@ -254,7 +298,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     interrupted = False
     try:
         for batch in batches(corpus, model.preprocess.size, start=start, batch_size=config.batch_size,
-                             workers=config.workers):
+                             workers=config.workers, indices=shard):
             for i, reason in batch.failures:
                 skipped.append((corpus.files[i], reason))
                 print(f"Skipped {corpus.files[i]}: {reason}", file=sys.stderr)
@@ -262,15 +306,20 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                 ids = batch.indices
                 s, o, n = colour_moments(batch.images)
                 colour[0] += s; colour[1] += o; colour[2] += n
+                if dedupe:
+                    dedupe.thumbs[ids.numpy()] = thumbnails(batch.images)
+                    dedupe.extend(max([int(ids.max()) + 1] + [i + 1 for i, _ in batch.failures]))
                 with torch.inference_mode():
                     feats = _forward(extractor, model.normalize(batch.images))
                     cls = class_of[ids] if class_of is not None else None
                     for name, t in tallies.items():
                         mx, mean = t.update(feats[name], ids, cls)
                         if name in values:
-                            rows = ids.numpy()
+                            rows = g.row(ids.numpy(), config.batch_size)
                             values[name][0][rows] = _f16(mx)
                             values[name][1][rows] = _f16(mean)
+                            if len(values[name]) > 2:
+                                values[name][2][rows] = _f16(mean if t.all_units else feats[name].float().mean((2, 3)))
             done = [int(batch.indices.max()) + 1] if len(batch.indices) else []
             done += [i + 1 for i, _ in batch.failures]
             next_index = max([next_index] + done)
@@ -293,7 +342,16 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
             f"Interrupted after {next_index} of {N} images; state saved. Run the same command to resume."
         )
     checkpoint(next_index)
-    _finish(run, model, corpus, layers, tallies, colour, skipped, config, progress)
+    merged = dist.merge_tallies(g, tallies, colour, skipped, corpus.files)
+    if g.main:
+        for path in row_files:
+            dist.assemble_rows(g, path, N, config.batch_size)
+        _finish(run, model, corpus, layers, *merged, config, progress, dedupe.groups.numpy() if dedupe else None)
+        if g.world > 1:  # the merged files are complete: the ranks' parts and checkpoints can go
+            for path in row_files + [mdir / "state.npz", mdir / "state.json"]:
+                for p in g.parts(path):
+                    p.unlink(missing_ok=True)
+    g.barrier("the end of mining")
     return run
 
 
@@ -310,18 +368,18 @@ def _f16(t: torch.Tensor) -> np.ndarray:
     return t.clamp(-65504, 65504).numpy().astype(np.float16)
 
 
-def _open_values(path: Path, shape, fresh: bool):
+def _open_values(path: Path, shape, fresh: bool, dtype=np.float16):
     if not fresh and path.is_file():
         a = np.load(path, mmap_mode="r+")
-        if a.shape == shape:
+        if a.shape == shape and a.dtype == dtype:
             return a
-    return np.lib.format.open_memmap(path, mode="w+", dtype=np.float16, shape=shape)
+    return np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
 
 
 def _diff(prev: dict | None, new: dict) -> str:
     if not prev:
         return "unknown settings"
-    keys = [k for k in new if prev.get(k) != new[k]]
+    keys = [k for k in {**prev, **new} if prev.get(k) != new.get(k)]
     return "differs in " + ", ".join(keys)
 
 
@@ -337,8 +395,9 @@ def _corpus_summary(corpus, skipped) -> dict:
     }
 
 
-def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progress) -> None:
+def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progress, groups=None) -> None:
     from .crops import cut_exemplars
+    from .facets import finish_layers
 
     n = max(colour[2], 1)
     mu = colour[0] / n
@@ -357,8 +416,22 @@ def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progre
                            "source": "measured on this run's corpus (network inputs, RGB in [0, 1])"}
     m["mine"]["config"] = asdict(config)
     run.save_manifest(m)
+    for name, entry in finish_layers(run, corpus, layers, skipped, groups).items():
+        m["mine"]["layers"][name].update(entry)
+    m["mine"]["dedupe"] = _dedupe_summary(config, groups)
+    run.save_manifest(m)
     (run.path / "mine" / "state.npz").unlink(missing_ok=True)
     (run.path / "mine" / "state.json").unlink(missing_ok=True)
+
+
+def _dedupe_summary(config: MineConfig, groups: np.ndarray | None) -> dict:
+    if groups is None:
+        return {"on": False}
+    seen = groups >= 0
+    return {"on": True, "threshold": config.dedupe_threshold,
+            "thumbnail": f"{THUMB}x{THUMB} RGB of the network input, minus its mean, L2-normalised",
+            "duplicates": int((seen & (groups != np.arange(len(groups)))).sum()),
+            "thumbnails": "mine/thumbs.npy"}
 
 
 def _index_arrays(t: LayerTally, info, lu: LayerUnits) -> dict[str, np.ndarray]:

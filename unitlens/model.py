@@ -54,6 +54,7 @@ class LoadedModel:
     weights: dict  # {"kind": "none" | "file" | "torchvision" | "pickle", ...}
     arch_options: dict = field(default_factory=dict)
     _layers: dict | None = field(default=None, repr=False)
+    device: str = "cpu"  # where the network runs (dist.place); inputs and feature maps stay on the CPU
 
     # -- layers --------------------------------------------------------------------------
     def layers(self) -> dict[str, LayerInfo]:
@@ -79,7 +80,10 @@ class LoadedModel:
 
         for n in names:
             self.layer(n)
-        return make_extractor(self, list(names))
+        run = make_extractor(self, list(names))
+        if self.device == "cpu":
+            return run
+        return lambda x: {k: v.to(x.device) for k, v in run(x.to(self.device, non_blocking=True)).items()}
 
     def normalize(self, images: torch.Tensor) -> torch.Tensor:
         """uint8 (B,3,H,W) or float in [0,1] -> normalised network input (float32)."""
@@ -129,7 +133,6 @@ def load_model(
         spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
         wdesc = _load_weights_file(module, weights) if weights else {"kind": "none"}
         pre = _declared_preprocess(declared, Path(file).name)
-
     elif Path(spec).is_file():
         if weights:
             raise UnitlensError(

@@ -135,12 +135,15 @@ def _spread(units: tuple[int, ...], n: int) -> tuple[int, ...]:
 def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: str | None = None,
             progress: bool = False, log=None):
     """Mine `corpus`, synthesise `layers` one by one, and keep `out`/atlas up to date."""
+    from . import dist
     from .atlas import render_atlas
     from .mining import mine
     from .store import Run
     from .synth import synthesize
 
-    say = log or (lambda msg: print(msg, file=sys.stderr))
+    g = dist.group()  # under torchrun: every rank mines and synthesises its shard, rank 0 draws
+    say = (log or (lambda msg: print(msg, file=sys.stderr))) if g.main else (lambda msg: None)
+    draw = render_atlas if g.main else (lambda run: None)
     run = Run(out)
     size = synth_config.size or model.preprocess.size
     chosen_plan = None
@@ -152,15 +155,18 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
             chosen_plan = previous["plan"]  # a resumed run keeps the plan it started with
             say(f"budget: resuming with the plan chosen before ({chosen_plan['steps']} steps, "
                 f"{chosen_plan['size']} px)")
-        else:
+        elif g.main:  # one calibration, one plan for every rank; the work splits g.world ways
             calib = calibrate(model, layers, synth_config.batch_size or synth_config.max_batch, size)
-            p = plan(seconds, len(corpus), layers, synth_config.steps, size, calib, already_mined=mined)
+            split = {**calib, "mine_s_per_image": calib["mine_s_per_image"] / g.world,
+                     "synth_s_per_step": {k: v / g.world for k, v in calib["synth_s_per_step"].items()}}
+            p = plan(seconds, len(corpus), layers, synth_config.steps, size, split, already_mined=mined)
             chosen_plan = {**p.describe(), "calibration": calib}
             say(f"budget {budget}: {p.steps} steps, {p.size} px, "
                 + ", ".join(f"{lu.layer} {len(lu.units)} units" for lu in p.layers)
                 + f"; estimate {p.estimate_s / 60:.0f} min")
             for r in p.reasons:
                 say(f"  why: {r}")
+        chosen_plan = g.share(chosen_plan, "the budget plan")
         synth_config = replace(synth_config, steps=chosen_plan["steps"], size=chosen_plan["size"])
         keep = chosen_plan["units"]
         layers = tuple(replace(lu, units=_spread(lu.units, keep.get(lu.layer, len(lu.units)))) for lu in layers)
@@ -169,9 +175,9 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
     n_units = sum(len(lu.units) for lu in layers)
     say(f"[1/3] mining {len(corpus)} images for {n_units} units")
     mine(model, corpus, layers, out, mine_config, progress=progress)
-    if chosen_plan is not None:
+    if chosen_plan is not None and g.main:
         run.update_manifest(budget={"budget_s": parse_budget(budget), "text": budget, "plan": chosen_plan})
-    render_atlas(run)
+    draw(run)
     done = 0
     for k, lu in enumerate(layers, 1):
         say(f"[2/3] synthesis, layer {k}/{len(layers)} ({lu.layer}, {len(lu.units)} units); "
@@ -179,7 +185,7 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
         synthesize(model, (lu,), out, synth_config, progress=progress)
         done += len(lu.units)
         say(f"[3/3] atlas redrawn after {lu.layer}")
-        render_atlas(run)
+        draw(run)
     say(f"done in {(time.monotonic() - t0) / 60:.1f} min")
     return run
 

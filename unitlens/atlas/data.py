@@ -126,6 +126,7 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
             "ratio": _f(im["vs_best_exemplar"]) if im.get("vs_best_exemplar") is not None else None,
             "rank": im.get("rank"), "channels": im.get("channels"), "steps": im.get("steps"),
             "objective": _f(im.get("objective", math.nan)),
+            "nearest": [[n.get("id"), _f(n.get("similarity", math.nan), 3)] for n in im.get("nearest") or []],
             "robustness": None if not rob else {
                 "n": rob.get("n"), "mean": _f(rob.get("mean", math.nan)), "std": _f(rob.get("std", math.nan)),
                 "relative": _f(rob["relative"]) if rob.get("relative") is not None else None},
@@ -142,6 +143,12 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
             "ratio": max(ratios) if ratios else None}
     best = rec.get("best_exemplar")
     detail = {"images": images, "trace": traces, "best_exemplar": _f(best) if best is not None else None}
+    strip = Path(str(rec.get("nearest_strip") or "")).name
+    if strip and (d / strip).is_file():
+        from ..facets import NEAR_K, NEAR_THUMB
+
+        files.append(d / strip)
+        detail["near"] = {"src": strip, "thumb": NEAR_THUMB, "cols": NEAR_K}
     return card, detail, files
 
 
@@ -168,6 +175,7 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
         cards.update(c)
         details.update(hist)
         details.update(_mined_details(run, idx, units, pos))
+        details.update(_facet_details(run, layer, units, pos))
         sheets, cards["sheets"] = _sheets(run, layer, idx, len(mined), img_dir)
     images: list[Path] = []
     scard, sdet = [None] * U, [None] * U
@@ -290,3 +298,31 @@ def _sheets(run: Run, layer: str, idx: dict, n_mined: int, img_dir: str) -> tupl
     info = {"dir": img_dir, "rows": rows, "cols": int(idx["sheet_cols"]), "thumb": int(idx["thumb"]),
             "units": n_mined, "names": present}
     return [d / n for n in present if n], info
+
+
+def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int]) -> dict:
+    """Facets of the top images (facets.npz, see facets.py) and whether near-duplicates were merged.
+
+    Per unit: {"k", "n" (images clustered), "silhouette", "sizes" (members per facet),
+    "ranks" (facet of each kept top exemplar, by rank)}; None where the layer has no facets."""
+    mine = (read_json(run.manifest_path) or {}).get("mine") or {}
+    dd = mine.get("dedupe") or {}
+    out: dict = {"dedupe": dd.get("threshold") if dd.get("on") else None}
+    path = run.layer_dir(layer) / "facets.npz"
+    if not path.is_file():
+        return out
+    z = read_npz(path)
+    at = {int(u): j for j, u in enumerate(z["units"])}
+    lists = []
+    for u in units:
+        j = at.get(u) if u in pos else None
+        if j is None or int(z["k"][j]) < 1:
+            lists.append(None)
+            continue
+        f = z["facet"][j]
+        f = f[f >= 0]
+        lists.append({"k": int(z["k"][j]), "n": int(len(f)), "silhouette": _f(z["silhouette"][j], 3),
+                      "sizes": np.bincount(f, minlength=int(z["k"][j])).tolist(), "ranks": f.tolist()})
+    out["facets"] = lists
+    out["facet_top_n"] = int(z["top_n"])
+    return out

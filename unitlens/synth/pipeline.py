@@ -6,8 +6,10 @@ from pathlib import Path
 import numpy as np
 import torch
 
+from .. import dist
 from ..errors import UnitlensError
 from ..store import Run, _atomic, read_json, write_json, write_npz
+from ..facets import NaturalNeighbours, synth_neighbours
 from .evidence import assess
 from .objectives import Objective, channel
 from .optimise import SynthConfig, iter_units
@@ -36,6 +38,7 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
         objective.check(model, lu.layer, lu.units)
 
     run = Run(out)
+    g = dist.group()  # one process, or this rank of a torchrun job: it takes every world-th unit of a layer
     manifest = read_json(run.manifest_path) or {}
     if manifest.get("model") and not same_model(manifest["model"], model.describe()):
         raise UnitlensError(f"{run.path} was made with another model ({manifest['model']['spec']}, weights "
@@ -51,7 +54,8 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
                                 "or another --out folder.")
         import shutil
 
-        shutil.rmtree(run.path / "synth", ignore_errors=True)
+        if g.main:
+            shutil.rmtree(run.path / "synth", ignore_errors=True)
         old = None
     manifest.setdefault("model", model.describe())
     status = (old or {}).get("layers", {})
@@ -59,14 +63,19 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
         st = status.setdefault(lu.layer, {"done": 0, "complete": False})
         st.update(units=len(lu.units), channels=ranges_text(lu.units))
     manifest["synth"] = {"settings": settings, "colour": used.describe(), "layers": status, "done": False}
-    run.path.mkdir(parents=True, exist_ok=True)
-    run.save_manifest(manifest)
+    g.agree((settings, [(lu.layer, lu.units) for lu in layers]), "the synthesis settings or units")
+    if g.main:
+        run.path.mkdir(parents=True, exist_ok=True)
+        run.save_manifest(manifest)
+    g.check_shared(run.path)
 
     for lu in layers:
         _layer(run, model, lu, config, objective, term, sign, colour, size, progress)
-    m = run.manifest()
-    m["synth"]["done"] = all(v.get("complete") for v in m["synth"]["layers"].values())
-    run.save_manifest(m)
+    if g.main:
+        m = run.manifest()
+        m["synth"]["done"] = all(v.get("complete") for v in m["synth"]["layers"].values())
+        run.save_manifest(m)
+    g.barrier("the end of synthesis")
     return run
 
 
@@ -75,30 +84,55 @@ def _layer(run, model, lu, config, objective, term, sign, colour, size, progress
 
     d = run.layer_dir(lu.layer, "synth")
     d.mkdir(parents=True, exist_ok=True)
+    g = dist.group()
     table = read_json(d / "units.json") or {"layer": lu.layer, "units": {}}
+    for part in sorted(d.glob("units-rank*.json")):  # ranks' tables of an interrupted launch
+        table["units"].update((read_json(part) or {}).get("units", {}))
     finished = {int(k) for k, rec in table["units"].items()
                 if all((d / im["file"]).is_file() for im in rec["images"])}
-    todo = [c for c in lu.units if c not in finished]
+    todo = [c for c in g.shard(lu.units) if c not in finished]
+    own = g.part(d / "units.json")  # several ranks never write one file
     best = best_exemplars(run, lu.layer)
     bar = Progress(len(lu.units), len(lu.units) - len(todo), f"synth {lu.layer}", "units", per="h") \
         if progress and todo else None
     spec = config.transforms.at(size)
     extract = model.extractor([term.layer or lu.layer])
+    near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
     try:
         if todo:
             for batch in _interruptible(iter_units(model, lu.layer, todo, config, objective, colour), lu, table):
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, term, sign, spec, colour,
-                                                                config, best.get(r.target), extract)
-                write_json(d / "units.json", table)  # the finished batch counts from here on
-                _status(run, lu.layer, len(table["units"]), False)
+                                                                config, best.get(r.target), extract, near)
+                write_json(own, table)  # the finished batch counts from here on
+                g.check(f"in synthesis of {lu.layer}")
+                if g.main:
+                    _status(run, lu.layer, len(table["units"]), False)
                 if bar:
                     bar.advance(len([c for c in lu.units if str(c) in table["units"]]))
-        write_json(d / "units.json", table)
-        _status(run, lu.layer, len(table["units"]), all(str(c) in table["units"] for c in lu.units))
+        write_json(own, table)
+        g.barrier(f"the end of synthesis of {lu.layer}")
+        if g.main:
+            table = _merge_tables(d, table, lu.units)
+            _status(run, lu.layer, len(table["units"]), all(str(c) in table["units"] for c in lu.units))
     finally:
         if bar:
             bar.close()
+
+
+def _merge_tables(d: Path, table: dict, units) -> dict:
+    """Fold the ranks' unit tables into units.json (in unit order) and remove them."""
+    parts = sorted(d.glob("units-rank*.json"))
+    if not parts:
+        return table
+    for part in parts:
+        table["units"].update((read_json(part) or {}).get("units", {}))
+    order = {str(c): i for i, c in enumerate(units)}
+    table["units"] = dict(sorted(table["units"].items(), key=lambda kv: (order.get(kv[0], len(order)), int(kv[0]))))
+    write_json(d / "units.json", table)
+    for part in parts:
+        part.unlink(missing_ok=True)
+    return table
 
 
 def _interruptible(batches, lu, table):
@@ -110,7 +144,7 @@ def _interruptible(batches, lu, table):
                             "are saved. Run the same command to resume.") from None
 
 
-def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best, extract) -> dict:
+def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best, extract, near=None) -> dict:
     from PIL import Image
 
     u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
@@ -131,7 +165,12 @@ def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best
         ratio = c["max_activation"] / best if best is not None and best > 0 else None
         images.append({"file": files[m], "steps": r.steps[m], "objective": float(r.traces[m][-1]),
                        **c, "vs_best_exemplar": ratio})
-    return {"unit": r.target, "best_exemplar": best, "trace": f"unit-{r.target:04d}.npz", "images": images}
+    rec = {"unit": r.target, "best_exemplar": best, "trace": f"unit-{r.target:04d}.npz", "images": images}
+    if near is not None:  # nearest natural images in the layer's embedding (facets.py)
+        hits, rec["nearest_strip"] = synth_neighbours(near, model, layer, u8, extract, d, f"near-{r.target:04d}")
+        for im, h in zip(images, hits):
+            im["nearest"] = h
+    return rec
 
 
 def _status(run: Run, layer: str, done: int, complete: bool) -> None:

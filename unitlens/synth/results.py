@@ -10,7 +10,10 @@ Layout, beside the mining pass (every file readable without unitlens):
                                   "file", "steps", "objective" (last step, under its transform),
                                   "activation", "max_activation", "vs_best_exemplar" (null when
                                   unknown), "rank", "channels", "robustness" {n, mean, std,
-                                  relative} (see evidence.py)
+                                  relative} (see evidence.py), and, when the layer was mined,
+                                  "nearest": [{index, id, similarity}] the closest corpus images
+                                  in the layer's embedding (cosine, facets.py); the record's
+                                  "nearest_strip" names their thumbnails (near-0037.jpg)
   manifest.json["synth"]          settings, colour basis and where it came from, per-layer status
 
 A unit counts as done once it is in units.json (written after its images), so a killed run

@@ -17,13 +17,7 @@
   const HERO = 104, SMALL = 50, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
   const SPARK = "0123456789ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz-_";
 
-  function el(tag, cls, text) {
-    const e = document.createElement(tag);
-    if (cls) e.className = cls;
-    if (text !== undefined && text !== null) e.textContent = String(text);
-    return e;
-  }
-  function add(parent, tag, cls, text) { return parent.appendChild(el(tag, cls, text)); }
+  const el = P.el, add = P.add;
   const pct = x => (x === null || x === undefined) ? "–" : (100 * x).toFixed(x < 0.1 && x > 0 ? 1 : 0) + "%";
   const imgSrc = name => C.img_dir + "/" + name;
 
@@ -94,18 +88,7 @@
   const state = { sort: "id", desc: false, filter: null };
   let order = [], cols = 1, cardW = CARD_MIN_W, mounted = new Set(), firstFrame = false;
 
-  function parseFilter(text) {
-    const t = text.trim();
-    if (!t) return null;
-    const ranges = [];
-    for (const p of t.split(/[\s,]+/).filter(Boolean)) {
-      const m = /^(\d+)(?:-(\d+))?$/.exec(p);
-      if (!m) return undefined;
-      const a = +m[1], b = m[2] === undefined ? a : +m[2];
-      ranges.push([Math.min(a, b), Math.max(a, b)]);
-    }
-    return u => ranges.some(r => u >= r[0] && u <= r[1]);
-  }
+  const parseFilter = P.unitFilter;
 
   function computeOrder() {
     const key = KEYS[state.sort] || C.units, sign = state.desc ? -1 : 1, idx = [];
@@ -267,6 +250,7 @@
     const want = (cond, parent, title, cls) => { const s = cond ? section(parent, title, cls) : null; if (s) { secs.push(s); add(s, "p", "loading", "loading…"); } return s; };
     const dist = want(C.mined, left, "Per-image maximum over the corpus", "uv-dist");
     const exSec = want(C.mined, right, "Images that drive it most", "uv-ex");
+    const facSec = want(C.mined, right, "Facets: groups among its top images", "uv-facets");
     const negSec = want(C.mined && C.negative, right, "Images that push it lowest (spatial minimum)", "uv-neg");
     const labSec = want(C.mined, right, "By label", "uv-labels");
     const synSec = want(!!C.synth_src[i], right, "Synthesised images: how they were made, how far to trust them", "uv-synth");
@@ -283,6 +267,8 @@
       if (C.mined) profile(prof, i, D);
       if (dist) histogram(dist, i, D, sd);
       if (exSec) exemplars(exSec, i, D, D.top, 0);
+      if (exSec && D.dedupe) add(exSec, "p", "note", "Near-duplicate images count once here (cosine ≥ " + D.dedupe + " between small thumbnails); the best-scoring one is shown.");
+      if (facSec) facets(facSec, i, D);
       if (negSec) exemplars(negSec, i, D, D.bottom, C.k);
       if (labSec) labels(labSec, i, D);
       if (synSec) synthesis(synSec, i, sd);
@@ -362,6 +348,49 @@
     }
   }
 
+  /* facets (facets.npz): k-means groups of the top images, shown over the kept crops */
+  function facets(sec, i, D) {
+    const f = D.facets ? D.facets[i] : null;
+    if (!f) { add(sec, "p", "note", "This run has no facets for this layer (they need the per-image values mining keeps)."); return; }
+    const letter = c => String.fromCharCode(65 + c);
+    add(sec, "p", "note", f.k > 1
+      ? f.k + " groups among the top " + f.n + " images (k-means in the layer's embedding, silhouette " + fmt(f.silhouette, 3) + "): the unit may respond to several different things."
+      : "One group: the top " + f.n + " images split into no facets of at least 3 images with silhouette ≥ 0.25.");
+    if (f.k < 2) return;  // the one group is the exemplar list above
+    const kept = (D.top[i] || []).length;
+    for (let c = 0; c < f.k; c++) {
+      const box = add(sec, "div", "facet");
+      box.dataset.facet = letter(c);
+      const ranks = [];
+      f.ranks.forEach((fc, r) => { if (fc === c && r < kept) ranks.push(r); });
+      add(box, "h4", "facet-head", "facet " + letter(c) + " · " + f.sizes[c] + " of " + f.n + " images" +
+        " · " + ranks.length + " of the " + kept + " kept crops");
+      const g = add(box, "div", "facet-grid");
+      ranks.forEach(r => {
+        const e = g.appendChild(crop(i, r, 64));
+        e.title = "#" + (r + 1) + " " + D.files[D.top[i][r][0]];
+      });
+      if (!ranks.length) add(g, "span", "note", "none among the kept crops");
+    }
+  }
+
+  function nearest(parent, near, m, list) {
+    const box = add(parent, "div", "syn-near");
+    add(box, "span", "syn-near-head", "nearest natural images (cosine in the layer's embedding)");
+    const g = add(box, "div", "syn-near-grid");
+    list.forEach(([id, sim], c) => {
+      const fig = add(g, "figure", "near");
+      const e = add(fig, "span", "crop");
+      const k = 56 / near.thumb;
+      e.style.width = e.style.height = "56px";
+      e.style.backgroundImage = 'url("' + imgSrc(near.src) + '")';
+      e.style.backgroundSize = (near.cols * near.thumb * k) + "px auto";
+      e.style.backgroundPosition = (-c * 56) + "px " + (-m * 56) + "px";
+      e.title = id;
+      add(fig, "figcaption", "", fmt(sim, 3));
+    });
+  }
+
   function synthesis(sec, i, rec) {
     if (!rec) { add(sec, "p", "note", "none yet"); return; }
     const g = add(sec, "div", "syn-grid");
@@ -379,7 +408,9 @@
           r.relative !== null && r.relative < 0.5 ? "warn" : ""]);
       }
       rows.push(["steps", String(im.steps)]);
-      facts(add(fig, "figcaption"), rows, "small");
+      const cap = add(fig, "figcaption");
+      facts(cap, rows, "small");
+      if (rec.near && im.nearest && im.nearest.length) nearest(cap, rec.near, m, im.nearest);
     });
     const notes = [];
     if (rec.images.some(im => im.rank > 1)) notes.push("a rank above 1 means other channels of the layer respond more strongly to that image");
