@@ -22,6 +22,9 @@ _EXPORTS = {
     "render_atlas": "atlas",
     "run_all": "workflow",
     "build_demo": "demo.build",
+    "probe": "probing",
+    "probe_image": "probing",
+    "ProbeConfig": "probing",
 }
 __all__ = [*_EXPORTS, "__version__"]
 

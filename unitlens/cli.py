@@ -356,6 +356,75 @@ def atlas_cmd(
     print(render_atlas(run, layers=names))
 
 
+@app.command("probe")
+def probe_cmd(
+    target: str = typer.Argument(..., help="A model (then give --corpus and --out, or --image), or a mined run folder."),
+    unit: Optional[str] = typer.Argument(None, help="LAYER:CHANNEL, e.g. layer3:37 (leave out with --image)."),
+    corpus: Optional[Path] = typer.Option(None, "--corpus", help="Images to mine the unit over (a model only)."),
+    out: Optional[Path] = typer.Option(None, "--out", help="Run folder to write (a model only; resumed if it exists)."),
+    top: int = typer.Option(9, "--top", min=1, help="Exemplars to keep and print; with --image, units to list."),
+    image: Optional[Path] = typer.Option(None, "--image", help="One image: list the units of --layer it drives most."),
+    layer: Optional[str] = typer.Option(None, "--layer", help="The layer whose units --image ranks."),
+    attribution: Optional[str] = typer.Option(None, "--attribution", help="Heat maps: ig, gxi, smoothgrad (comma-separated), all or none. Default: ig,gxi."),
+    attribute: int = typer.Option(3, "--attribute", min=0, help="How many of the top exemplars get heat maps."),
+    ig_steps: int = typer.Option(16, "--ig-steps", min=1, help="Integrated-gradients steps to start from (doubled until complete)."),
+    ig_max_steps: int = typer.Option(32, "--ig-max-steps", min=1, help="Most integrated-gradients steps."),
+    ig_rule: str = typer.Option("trapezoid", "--ig-rule", help="trapezoid, midpoint, left or right (only trapezoid refines)."),
+    baseline: str = typer.Option("black", "--baseline", help="Integrated-gradients baseline: black or blur."),
+    noise: float = typer.Option(0.15, "--noise", min=0.0, help="SmoothGrad noise, a fraction of the image's range."),
+    samples: int = typer.Option(32, "--samples", min=1, help="SmoothGrad noisy copies."),
+    synth: Optional[bool] = typer.Option(None, "--synth/--no-synth", help="Synthesise an image if the unit has none (default: only when mining afresh)."),
+    steps: int = typer.Option(48, "--steps", min=1, help="Synthesis steps."),
+    synth_size: int = typer.Option(96, "--synth-size", min=16, help="Synthesised image size (at most the input size)."),
+    labels: Optional[str] = typer.Option(None, "--labels", help="'folders': class labels from first-level subfolders."),
+    workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
+    as_json: bool = Json,
+):
+    """Check one unit: top exemplars, attribution heat maps, a quick synthesised image, a one-unit page.
+
+    With --image FILE --layer L: the units of L that one image drives most, and where."""
+    import torch
+
+    from .errors import UnitlensError
+    from .probing import ProbeConfig, image_text, parse_methods, probe, probe_image, probe_text
+
+    if threads:
+        torch.set_num_threads(threads)
+    is_run = Path(target).is_dir()
+    model_opts = [n for n, v in (("--weights", weights), ("--size", size), ("--mean", mean), ("--std", std),
+                                 ("--arch-option", arch_option)) if v]
+    if is_run and model_opts:
+        raise UnitlensError(f"{target} is a run folder, whose manifest names the model; {', '.join(model_opts)} "
+                            "apply only when TARGET is a model.")
+    source = target if is_run else _load(target, weights, size, mean, std, allow_pickle, arch_option)
+    if image is not None:
+        if unit is not None or layer is None:
+            raise UnitlensError("With --image, give --layer L (and no LAYER:CHANNEL), e.g. "
+                                "unitlens probe torchvision:resnet18 --image cat.jpg --layer layer3.")
+        s = probe_image(source, image, layer, top, allow_pickle=allow_pickle)
+        print(json.dumps(s, indent=1) if as_json else image_text(s))
+        return
+    if unit is None:
+        raise UnitlensError("Name the unit as LAYER:CHANNEL (e.g. layer3:37), or give --image FILE --layer L.")
+    if not is_run and (corpus is None or out is None):
+        raise UnitlensError(f"'{target}' is not a run folder. To probe a model, give --corpus DIR and --out DIR "
+                            "(e.g. unitlens probe torchvision:resnet18 layer3:7 --corpus photos --out runs/p).")
+    config = ProbeConfig(top_k=top, attribute=attribute, methods=parse_methods(attribution), ig_steps=ig_steps,
+                         ig_max_steps=ig_max_steps, ig_rule=ig_rule, baseline=baseline, smoothgrad_noise=noise,
+                         smoothgrad_samples=samples, synth=synth, synth_steps=steps, synth_size=synth_size,
+                         workers=workers)
+    c = None
+    if not is_run:
+        from . import open_corpus
+
+        c = open_corpus(corpus, labels=labels)
+    s = probe(source, unit, corpus=c, out=out, config=config, progress=sys.stderr.isatty(), allow_pickle=allow_pickle)
+    print(json.dumps(s, indent=1) if as_json else probe_text(s))
+
+
 @app.command("demo")
 def demo_cmd(
     out: Path = typer.Option(Path("unitlens-demo"), "--out", help="Folder for the generated corpus and the run (resumed if it exists)."),
