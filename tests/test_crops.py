@@ -67,3 +67,118 @@ def test_real_photos_mine_and_crop(tmp_path):
         x0, y0, x1, y1 = e["box"]
         assert 0 <= x0 < x1 <= w and 0 <= y0 < y1 <= h
         assert (x1 - x0) < w  # a receptive field of layer2 is smaller than these photos
+
+
+def _sample_photo_corpus(folder, fmt):
+    """scikit-image's bundled sample photos, a few EXIF-rotated, in one format."""
+    import skimage.data as data
+
+    folder.mkdir()
+    for k, name in enumerate(("astronaut", "coffee", "chelsea", "rocket", "camera", "immunohistochemistry")):
+        img = getattr(data, name)()
+        img = Image.fromarray(img if img.ndim == 3 else np.stack([img] * 3, -1))
+        exif = Image.Exif()
+        exif[0x0112] = 6 if k % 3 == 1 else 1
+        img.save(folder / f"{name}.{fmt}", exif=exif, **({"quality": 92} if fmt == "jpg" else {}))
+
+
+def _mined(tmp_path, fmt):
+    torch_model = load_model("torchvision:resnet18", size=64)
+    _sample_photo_corpus(tmp_path / fmt, fmt)
+    corpus = open_corpus(tmp_path / fmt)
+    # conv1 goes negative (bottom exemplars too); 40 units each: a full sheet and a part one
+    layers = parse_layers(torch_model, ["conv1:0-39", "layer1:0-39"])
+    run = mine(torch_model, corpus, layers, tmp_path / f"run-{fmt}", MineConfig(top_k=3, workers=0, thumb=16))
+    return torch_model, corpus, layers, run
+
+
+def _reference_sheets(run, model, corpus, layer, thumb):
+    """Each crop cut on its own with PIL from decode_original, the way the sheet layout documents:
+    the decode of an image for a sheet is as large as its smallest box there needs to fill a cell."""
+    import functools
+
+    from unitlens.corpus import decode_original, placement
+    from unitlens.crops import input_box
+    from unitlens.store import read_npz
+
+    idx, size, field = read_npz(run.layer_dir(layer) / "index.npz"), model.preprocess.size, model.layer(layer).field
+    U, K = idx["top_image"].shape
+    kinds = [("top", 0)] + ([("bottom", K)] if (idx["low"] < 0).any() else [])
+    crops = [(u, c0 + r, kind, r, int(idx[f"{kind}_image"][u, r]), input_box(field, idx[f"{kind}_y"][u, r],
+                                                                           idx[f"{kind}_x"][u, r], size))
+             for kind, c0 in kinds for u in range(U) for r in range(K) if idx[f"{kind}_image"][u, r] < len(corpus)]
+    smallest: dict = {}  # (sheet, image) -> shortest box side there
+    for u, _col, _kind, _r, i, b in crops:
+        key = (u // SHEET_ROWS, i)
+        smallest[key] = min(smallest.get(key, np.inf), max(1.0, min(b[2] - b[0], b[3] - b[1])))
+    decode = functools.lru_cache(None)(decode_original)  # deterministic: caching only saves time
+    sheets, boxes = {}, {}
+    for u, col, kind, r, i, b in crops:
+        s = u // SHEET_ROWS
+        img, (W, H), (rx, ry) = decode(corpus.path(i), size=int(np.ceil(thumb * size / smallest[s, i])))
+        box = placement(W, H, size).to_original(b)
+        x0, y0, x1, y1 = (box[0] * rx, box[1] * ry, box[2] * rx, box[3] * ry)
+        crop = img.crop((x0, y0, max(x1, x0 + 1), max(y1, y0 + 1)))
+        f = thumb / max(crop.size)
+        w, h = max(1, round(crop.width * f)), max(1, round(crop.height * f))
+        cell = Image.new("RGB", (thumb, thumb), (128, 128, 128))
+        cell.paste(crop.resize((w, h), Image.BILINEAR, reducing_gap=2.0), ((thumb - w) // 2, (thumb - h) // 2))
+        rows = min(SHEET_ROWS, U - s * SHEET_ROWS)
+        sheet = sheets.setdefault(s, Image.new("RGB", (len(kinds) * K * thumb, rows * thumb), (128, 128, 128)))
+        sheet.paste(cell, (col * thumb, (u % SHEET_ROWS) * thumb))
+        boxes[kind, u, r] = box
+    return sheets, boxes, idx
+
+
+def test_sheets_are_byte_identical_to_crops_cut_one_by_one(tmp_path):
+    import io
+
+    from unitlens.crops import cut_exemplars
+
+    for fmt in ("jpg", "png"):  # JPEG decodes go through draft reduction; PNG ones never do
+        model, corpus, layers, run = _mined(tmp_path, fmt)
+        for memory in (None, 1):  # all sheets in one group; one sheet per group
+            if memory:
+                cut_exemplars(run, model, corpus, layers, 16, memory=memory)
+            for lu in layers:
+                sheets, boxes, idx = _reference_sheets(run, model, corpus, lu.layer, 16)
+                files = sorted(p.name for p in run.layer_dir(lu.layer).glob("sheet-*.jpg"))
+                assert files == [f"sheet-{s:03d}.jpg" for s in range(2)] == sorted(sheet_cell(32 * s, 0)[0]
+                                                                                   for s in sheets)
+                for s, sheet in sheets.items():
+                    buf = io.BytesIO()
+                    sheet.save(buf, format="JPEG", quality=88)
+                    assert (run.layer_dir(lu.layer) / f"sheet-{s:03d}.jpg").read_bytes() == buf.getvalue(), \
+                        (fmt, lu.layer, s)
+                for (kind, u, r), box in boxes.items():
+                    assert tuple(idx[f"{kind}_box"][u, r]) == box
+                assert (idx["bottom_box"] >= 0).all() if lu.layer == "conv1" else "bottom_box" not in idx
+
+
+def test_each_original_is_decoded_once_per_call(tmp_path, monkeypatch):
+    import unitlens.corpus as ucorpus
+    from unitlens.crops import cut_exemplars
+    from unitlens.store import read_npz
+
+    model, corpus, layers, run = _mined(tmp_path, "png")  # no JPEG drafts: one decode size serves all crops
+    used, per_sheet = set(), set()  # exemplar images; (layer, sheet, image) triples
+    for lu in layers:
+        idx = read_npz(run.layer_dir(lu.layer) / "index.npz")
+        for key in ("top_image", "bottom_image") if (idx["low"] < 0).any() else ("top_image",):
+            for (u, _r), i in np.ndenumerate(idx[key]):
+                if i < len(corpus):
+                    used.add(int(i))
+                    per_sheet.add((lu.layer, u // SHEET_ROWS, int(i)))
+    assert len(per_sheet) > len(used)  # decoding per sheet would cost more: the count below can fail
+    real, calls = ucorpus.decode_original, []
+
+    def counting(path, *a, **kw):
+        calls.append(path)
+        return real(path, *a, **kw)
+
+    monkeypatch.setattr(ucorpus, "decode_original", counting)
+    cut_exemplars(run, model, corpus, layers, 16)
+    assert sorted(calls) == sorted(corpus.path(i) for i in used)
+    calls.clear()
+    cut_exemplars(run, model, corpus, layers, 16, memory=1)  # one sheet per group: once per group
+    assert len(calls) == len(per_sheet)

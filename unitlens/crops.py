@@ -7,7 +7,9 @@ by rank, columns K..2K-1 the bottom ones (present when the layer goes negative).
 """
 from __future__ import annotations
 
+import os
 import sys
+import warnings
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -18,6 +20,10 @@ from .store import write_npz
 
 SHEET_ROWS = 32
 PAD_VALUE = 128  # neutral grey around crops that are not square
+# Sheet pixels held at once: 32 default sheets (1,024 units, 16 exemplars each way, 96 px crops) fit.
+# Originals that feed several groups are decoded once per group.
+SHEET_MEMORY = 512 * 2**20
+_WORKERS = min(8, os.cpu_count() or 1)  # Pillow decodes and resizes with the GIL released
 
 
 def input_box(field, y: int, x: int, size: int) -> tuple[float, float, float, float]:
@@ -39,78 +45,155 @@ def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
     return np.asarray(canvas)
 
 
-def _image_cells(path: Path, entries, field, size: int, thumb: int):
-    """Decode one image once and cut every cell it is needed for. entries: [(row, col, y, x)]."""
+def _image_cells(path: Path, entries, size: int, thumb: int):
+    """Decode one image and cut every cell it is needed for. entries: [(input-pixel box, need)],
+    where `need` is the decode size (see _plan) the entry's sheet asks of this image.
+
+    JPEG draft decoding shrinks by 1, 2, 4 or 8 depending on the size asked for, and a smaller
+    draft gives different pixels, so entries are grouped by the draft their `need` selects and the
+    image is decoded once per group: once in all for formats without drafts, and in practice once
+    for a JPEG unless its crops differ a lot in size. Returns (boxes, cells, reason)."""
     from .corpus import ImageProblem, decode_original, placement
 
-    boxes_in = [input_box(field, y, x, size) for (_r, _c, y, x) in entries]
-    smallest = min(max(1.0, min(b[2] - b[0], b[3] - b[1])) for b in boxes_in)
-    # Decode only as large as the smallest crop needs to fill a thumbnail: an input-pixel box of
-    # side b shows (short side / size) * b original pixels, so thumb * size / b pixels on the short side do.
-    need = int(np.ceil(thumb * size / smallest))
-    try:
-        img, (W, H), (rx, ry) = decode_original(path, size=need)
-    except ImageProblem as e:
-        return None, None, e.reason
-    place = placement(W, H, size)
-    boxes = [place.to_original(b) for b in boxes_in]
-    cells = [_cell(img, (b[0] * rx, b[1] * ry, b[2] * rx, b[3] * ry), thumb) for b in boxes]
+    needs = sorted({n for *_, n in entries})
+    key = {n: n for n in needs} if len(needs) == 1 else _draft_sizes(path, needs)
+    boxes: list = [None] * len(entries)
+    cells: list = [None] * len(entries)
+    for k in dict.fromkeys(key.values()):
+        group = [j for j, (*_, n) in enumerate(entries) if key[n] == k]
+        try:
+            img, (W, H), (rx, ry) = decode_original(path, size=max(entries[j][1] for j in group))
+        except ImageProblem as e:
+            return None, None, e.reason
+        place = placement(W, H, size)
+        for j in group:
+            b = place.to_original(entries[j][0])
+            boxes[j] = b
+            cells[j] = _cell(img, (b[0] * rx, b[1] * ry, b[2] * rx, b[3] * ry), thumb)
     return boxes, cells, None
 
 
-def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False) -> None:
-    """Write the sprite sheets of every mined layer and add the boxes to its index."""
+def _draft_sizes(path: Path, needs) -> dict:
+    """need -> the stored size a draft decode for it gives (header only: no pixels decoded). Files
+    PIL cannot open map every need to one key; decode_original then reports why."""
+    out = {}
+    for n in needs:
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # decode_original warns, if there is reason to
+                with Image.open(path) as im:
+                    im.draft(None, (n, n))  # a no-op for formats without drafts: one key for all
+                    out[n] = im.size
+        except Exception:  # damaged or hostile files: decode_original gives the reason
+            out[n] = None
+    return out
+
+
+def _plan(idx, n_images: int, field, size: int, thumb: int):
+    """Every crop of one layer's index: (kinds, cols, {sheet: {image: [(u, col, kind, r, box, need)]}}).
+
+    `box` is in network-input pixels. `need` is the decode size of the (sheet, image) pair: only as
+    large as its smallest crop needs to fill a thumbnail. An input-pixel box of side b shows
+    (short side / size) * b original pixels, so thumb * size / b pixels on the short side do."""
+    U, K = idx["top_image"].shape
+    negative = bool((idx["low"] < 0).any())
+    kinds = [("top", 0)] + ([("bottom", K)] if negative else [])
+    wanted: dict[int, dict[int, list]] = {}
+    for kind, c0 in kinds:
+        img_a, y_a, x_a = idx[f"{kind}_image"], idx[f"{kind}_y"], idx[f"{kind}_x"]
+        for u, r in zip(*np.nonzero(img_a < n_images)):  # empty slots hold a huge index
+            u, r = int(u), int(r)
+            wanted.setdefault(u // SHEET_ROWS, {}).setdefault(int(img_a[u, r]), []).append(
+                (u, c0 + r, kind, r, input_box(field, y_a[u, r], x_a[u, r], size)))
+    for per_image in wanted.values():
+        for i, es in per_image.items():
+            smallest = min(max(1.0, min(b[2] - b[0], b[3] - b[1])) for *_, b in es)
+            need = int(np.ceil(thumb * size / smallest))
+            per_image[i] = [(*e, need) for e in es]
+    return kinds, K * len(kinds), wanted
+
+
+def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False,
+                  memory: int = SHEET_MEMORY) -> None:
+    """Write the sprite sheets of every mined layer and add the boxes to its index.
+
+    All crops of the call are planned first. Sheets are then filled in groups of at most `memory`
+    bytes of pixels (one sheet at least); within a group one task per original, on one thread
+    pool for the whole call, decodes it (see _image_cells) and cuts every cell it gives to any
+    sheet of any layer. Peak memory: the group's sheets plus one decoded original per thread."""
     from ._progress import Progress
     from .store import read_npz
 
     size = model.preprocess.size
+    plans, sheets = [], []  # sheets: (plan number, sheet number, rows)
     for lu in layers:
-        d = run.layer_dir(lu.layer)
-        idx = read_npz(d / "index.npz")
+        idx = read_npz(run.layer_dir(lu.layer) / "index.npz")
         field = model.layer(lu.layer).field
         if field is None:
             print(f"Warning: no receptive field known for {lu.layer}; its crops show the whole input.",
                   file=sys.stderr)
+        kinds, cols, wanted = _plan(idx, len(corpus), field, size, thumb)
         U, K = idx["top_image"].shape
-        negative = bool((idx["low"] < 0).any())
-        kinds = [("top", 0)] + ([("bottom", K)] if negative else [])
-        cols = K * len(kinds)
-        boxes = {k: np.full((U, K, 4), -1, dtype=np.int64) for k, _ in kinds}
         n_sheets = (U + SHEET_ROWS - 1) // SHEET_ROWS
-        bar = Progress(n_sheets, 0, f"crops {lu.layer}", "sheets") if progress else None
-        for s in range(n_sheets):
-            rows = range(s * SHEET_ROWS, min(U, (s + 1) * SHEET_ROWS))
-            sheet = np.full((len(rows) * thumb, cols * thumb, 3), PAD_VALUE, dtype=np.uint8)
-            wanted: dict[int, list] = {}
-            for kind, c0 in kinds:
-                img_a, y_a, x_a = idx[f"{kind}_image"], idx[f"{kind}_y"], idx[f"{kind}_x"]
-                for u in rows:
-                    for r in range(K):
-                        i = int(img_a[u, r])
-                        if i < len(corpus):  # empty slots hold a huge index
-                            wanted.setdefault(i, []).append((u, c0 + r, int(y_a[u, r]), int(x_a[u, r]), kind, r))
-            items = sorted(wanted.items())
-            with ThreadPoolExecutor(max_workers=2) as pool:
-                results = pool.map(
-                    lambda it: _image_cells(corpus.path(it[0]), [e[:4] for e in it[1]], field, size, thumb),
-                    items,
-                )
-                for (i, entries), (bxs, cells, err) in zip(items, results):
-                    if err is not None:
+        plans.append(dict(layer=lu.layer, idx=idx, cols=cols, wanted=wanted, left=n_sheets,
+                          boxes={k: np.full((U, K, 4), -1, dtype=np.int64) for k, _ in kinds}))
+        sheets += [(len(plans) - 1, s, min(SHEET_ROWS, U - s * SHEET_ROWS)) for s in range(n_sheets)]
+        if n_sheets == 0:  # no units: an index without crops, as for any layer
+            _write_index(run, plans[-1], thumb)
+    bar = Progress(len(sheets), 0, "crops", "sheets") if progress else None
+    failed: set[int] = set()
+    done = 0
+    with ThreadPoolExecutor(max_workers=_WORKERS) as pool:
+        for group in _groups(sheets, lambda sh: sh[2] * thumb * plans[sh[0]]["cols"] * thumb * 3, memory):
+            arrays = {(p, s): np.full((rows * thumb, plans[p]["cols"] * thumb, 3), PAD_VALUE, dtype=np.uint8)
+                      for p, s, rows in group}
+            by_image: dict[int, list] = {}  # image -> [(plan, sheet, u, col, kind, r, box, need)]
+            for p, s, _rows in group:
+                for i, es in plans[p]["wanted"].get(s, {}).items():
+                    by_image.setdefault(i, []).extend((p, s, *e) for e in es)
+            items = sorted(by_image.items())
+            results = pool.map(lambda it: _image_cells(corpus.path(it[0]), [e[-2:] for e in it[1]], size, thumb),
+                               items)
+            for (i, todo), (bxs, cells, err) in zip(items, results):
+                if err is not None:
+                    if i not in failed:
                         print(f"Warning: no crop from {corpus.files[i]}: {err}", file=sys.stderr)
-                        continue
-                    for (u, col, _y, _x, kind, r), box, cell in zip(entries, bxs, cells):
-                        row = u - rows.start
-                        sheet[row * thumb:(row + 1) * thumb, col * thumb:(col + 1) * thumb] = cell
-                        boxes[kind][u, r] = box
-            Image.fromarray(sheet).save(d / f"sheet-{s:03d}.jpg", quality=88)
+                        failed.add(i)
+                    continue
+                for (p, s, u, col, kind, r, _b, _n), box, cell in zip(todo, bxs, cells):
+                    row = u - s * SHEET_ROWS
+                    arrays[p, s][row * thumb:(row + 1) * thumb, col * thumb:(col + 1) * thumb] = cell
+                    plans[p]["boxes"][kind][u, r] = box
+            for (p, s), sheet in arrays.items():
+                Image.fromarray(sheet).save(run.layer_dir(plans[p]["layer"]) / f"sheet-{s:03d}.jpg", quality=88)
+                plans[p]["left"] -= 1
+                if plans[p]["left"] == 0:  # the layer's last sheet: its index is complete
+                    _write_index(run, plans[p], thumb)
+            done += len(group)
             if bar:
-                bar.advance(s + 1)
-        if bar:
-            bar.close()
-        idx.update({f"{k}_box": b for k, b in boxes.items()})
-        idx.update(sheet_rows=np.array(SHEET_ROWS), sheet_cols=np.array(cols), thumb=np.array(thumb))
-        write_npz(d / "index.npz", **idx)
+                bar.advance(done)
+    if bar:
+        bar.close()
+
+
+def _write_index(run, pl: dict, thumb: int) -> None:
+    idx = pl["idx"]
+    idx.update({f"{k}_box": b for k, b in pl["boxes"].items()})
+    idx.update(sheet_rows=np.array(SHEET_ROWS), sheet_cols=np.array(pl["cols"]), thumb=np.array(thumb))
+    write_npz(run.layer_dir(pl["layer"]) / "index.npz", **idx)
+
+
+def _groups(items: list, nbytes, budget: int):
+    """Consecutive runs of `items` whose nbytes(item) add up to at most `budget` (one item at least)."""
+    group, used = [], 0
+    for it in items:
+        if group and used + nbytes(it) > budget:
+            yield group
+            group, used = [], 0
+        group.append(it)
+        used += nbytes(it)
+    if group:
+        yield group
 
 
 def sheet_cell(position: int, col: int) -> tuple[str, int, int]:
