@@ -236,3 +236,34 @@ def test_changed_corpus_is_detected_and_reported(tmp_path, r18_weights):
     Image.new("RGB", (40, 40)).save(d / "new.png")
     with pytest.raises(UnitlensError, match="corpus changed since this run started.*1 added"):
         mine(model, open_corpus(d), layers, tmp_path / "r", MineConfig(workers=0, batch_size=2))
+
+
+def test_a_run_stopped_while_finishing_completes_when_run_again(tmp_path, smooth_corpus, r18_weights, monkeypatch):
+    import unitlens.facets
+    from unitlens import UnitlensError
+
+    model = load_model("torchvision:resnet18", str(r18_weights), size=64)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer1:0-3"])  # a subset of 64 channels: pooled.npy feeds the embedding
+
+    def stop(*args, **kw):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(unitlens.facets, "finish_layers", stop)
+    with pytest.raises(KeyboardInterrupt):
+        mine(model, corpus, layers, tmp_path / "r", MineConfig(top_k=3, workers=0))
+    assert not Run(tmp_path / "r").manifest()["mine"]["done"]
+    monkeypatch.undo()
+    run = mine(model, corpus, layers, tmp_path / "r", MineConfig(top_k=3, workers=0))
+    entry = run.manifest()["mine"]["layers"]["layer1"]
+    assert run.manifest()["mine"]["done"] and "embedding" in entry and "facets" in entry
+    # Resuming over a lost or foreign per-image file is refused instead of leaving zeros in earlier rows.
+    from unitlens.mining import _open_values
+
+    values = run.layer_dir("layer1") / "values.npy"
+    assert _open_values(values, (len(corpus), 4), fresh=False).shape == (len(corpus), 4)
+    with pytest.raises(UnitlensError, match="Cannot resume mining: .*holds float16"):
+        _open_values(values, (len(corpus), 5), fresh=False)
+    values.unlink()
+    with pytest.raises(UnitlensError, match="Cannot resume mining: .*values.npy is missing"):
+        _open_values(values, (len(corpus), 4), fresh=False)

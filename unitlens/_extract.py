@@ -149,3 +149,12 @@ class Extractor:
 
 def make_extractor(model, names: list[str]) -> Extractor:
     return Extractor(model, names)
+
+
+def forward_batch(extractor, x: torch.Tensor) -> dict[str, torch.Tensor]:
+    """Run the truncated model. A batch of one is padded to two: the CPU convolution library takes
+    another code path for a single image whose results differ in the last bits, and mining must
+    give the same scores whatever the batch size (a final partial batch is often one image)."""
+    if x.shape[0] != 1:
+        return extractor(x)
+    return {k: v[:1] for k, v in extractor(torch.cat([x, x])).items()}

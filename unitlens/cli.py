@@ -429,7 +429,7 @@ def probe_cmd(
 def demo_cmd(
     out: Path = typer.Option(Path("unitlens-demo"), "--out", help="Folder for the generated corpus and the run (resumed if it exists)."),
     count: Optional[int] = typer.Option(None, "--count", min=12, help="Swatch images to generate (default 2000)."),
-    steps: Optional[int] = typer.Option(None, "--steps", min=1, help="Optimisation steps per synthesised image, at most (default 64)."),
+    steps: Optional[int] = typer.Option(None, "--steps", min=1, help="Optimisation steps per synthesised image, at most (default 128)."),
     units: Optional[int] = typer.Option(None, "--units", min=1, help="Only the first N units of each layer (default: all 208)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
 ):

@@ -317,7 +317,7 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
 
     from ._progress import Progress
     from .corpus import CorpusDataset, collate, default_workers
-    from .mining import _forward
+    from ._extract import forward_batch
 
     sides = [s for s in ("a", "b") if plan.need[s] or cfg.full_maps]
     if not sides:
@@ -356,7 +356,7 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
                 grams = {}
                 with torch.inference_mode():
                     for s in sides:
-                        feats = _forward(extract[s], models[s].normalize(batch.images))
+                        feats = forward_batch(extract[s], models[s].normalize(batch.images))
                         for n, f in feats.items():  # (B, C, H, W)
                             what, h = plan.need[s].get(n, ()), plan.held[s][n]
                             flat = f.flatten(2).float()  # (B, C, H*W)

@@ -45,7 +45,7 @@ def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
     return np.asarray(canvas)
 
 
-def _image_cells(path: Path, entries, size: int, thumb: int):
+def image_cells(path: Path, entries, size: int, thumb: int):
     """Decode one image and cut every cell it is needed for. entries: [(input-pixel box, need)],
     where `need` is the decode size (see _plan) the entry's sheet asks of this image.
 
@@ -119,7 +119,7 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
 
     All crops of the call are planned first. Sheets are then filled in groups of at most `memory`
     bytes of pixels (one sheet at least); within a group one task per original, on one thread
-    pool for the whole call, decodes it (see _image_cells) and cuts every cell it gives to any
+    pool for the whole call, decodes it (see image_cells) and cuts every cell it gives to any
     sheet of any layer. Peak memory: the group's sheets plus one decoded original per thread."""
     from ._progress import Progress
     from .store import read_npz
@@ -152,7 +152,7 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
                 for i, es in plans[p]["wanted"].get(s, {}).items():
                     by_image.setdefault(i, []).extend((p, s, *e) for e in es)
             items = sorted(by_image.items())
-            results = pool.map(lambda it: _image_cells(corpus.path(it[0]), [e[-2:] for e in it[1]], size, thumb),
+            results = pool.map(lambda it: image_cells(corpus.path(it[0]), [e[-2:] for e in it[1]], size, thumb),
                                items)
             for (i, todo), (bxs, cells, err) in zip(items, results):
                 if err is not None:

@@ -168,7 +168,8 @@ class Group:
             self.check(where)
             gone = [p for p in self.pulse.peers if self._store(lambda p=p: self.store.add(self._key("left", p), 0),
                                                                 where)]
-            if gone:
+            # A peer may add the last count and exit between our two reads: count again first.
+            if gone and self._store(lambda: self.store.add(key, 0), where) < self.world:
                 raise UnitlensError(f"rank {self.rank} {where}: rank {gone[0]} exited before reaching it "
                                     "(its own output says why). Run the same command again to resume.")
             time.sleep(delay)

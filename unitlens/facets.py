@@ -162,8 +162,8 @@ def finish_embedding(layer_dir: Path, skipped: np.ndarray) -> dict:
     centre = total / max(int((~skipped).sum()), 1)
     write_npz(layer_dir / "embed-basis.npz", centre=centre,
               **({} if basis is None else {"pca_mean": basis["mean"], "pca_components": basis["components"]}))
-    if basis is not None:
-        pooled.unlink()  # the embedding replaces it
+    # pooled.npy stays until mining has recorded the run as done (mining.py removes it then), so a
+    # run stopped before that can compute the embedding again.
     return {"path": str(path.relative_to(layer_dir.parent.parent)), "dtype": str(e.dtype), "shape": list(e.shape),
             "bytes": path.stat().st_size, "kind": kind, "basis": str((layer_dir / "embed-basis.npz")
                                                                         .relative_to(layer_dir.parent.parent))}

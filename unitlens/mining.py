@@ -15,6 +15,7 @@ import numpy as np
 import torch
 
 from . import dist
+from ._extract import forward_batch
 from ._progress import Progress
 from .errors import UnitlensError
 from .facets import THUMB, NearDuplicates, needs_pooled, thumbnails
@@ -292,7 +293,9 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
         g.check("while mining")  # stop early if another rank died
 
     extractor = model.extractor([lu.layer for lu in layers])
-    bar = Progress(N, start, "mining", "img") if progress else None
+    # Under torchrun only rank 0 draws the bar; batches are dealt in turn, so its place in the corpus
+    # is the job's progress to within a batch per rank.
+    bar = Progress(N, start, "mining", "img") if progress and g.main else None
     last_save = time.monotonic()
     next_index = start
     interrupted = False
@@ -310,7 +313,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                     dedupe.thumbs[ids.numpy()] = thumbnails(batch.images)
                     dedupe.extend(max([int(ids.max()) + 1] + [i + 1 for i, _ in batch.failures]))
                 with torch.inference_mode():
-                    feats = _forward(extractor, model.normalize(batch.images))
+                    feats = forward_batch(extractor, model.normalize(batch.images))
                     cls = class_of[ids] if class_of is not None else None
                     for name, t in tallies.items():
                         mx, mean = t.update(feats[name], ids, cls)
@@ -355,25 +358,19 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     return run
 
 
-def _forward(extractor, x: torch.Tensor) -> dict[str, torch.Tensor]:
-    """Run the truncated model. A batch of one is padded to two: the CPU convolution library takes
-    another code path for a single image whose results differ in the last bits, and mining must
-    give the same scores whatever the batch size (a final partial batch is often one image)."""
-    if x.shape[0] != 1:
-        return extractor(x)
-    return {k: v[:1] for k, v in extractor(torch.cat([x, x])).items()}
-
-
 def _f16(t: torch.Tensor) -> np.ndarray:
     return t.clamp(-65504, 65504).numpy().astype(np.float16)
 
 
 def _open_values(path: Path, shape, fresh: bool, dtype=np.float16):
-    if not fresh and path.is_file():
-        a = np.load(path, mmap_mode="r+")
-        if a.shape == shape and a.dtype == dtype:
-            return a
-    return np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
+    if fresh:
+        return np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
+    a = np.load(path, mmap_mode="r+") if path.is_file() else None
+    if a is None or a.shape != shape or a.dtype != dtype:
+        # Resuming over a missing or foreign file would leave zeros in the rows mined before.
+        found = "is missing" if a is None else f"holds {a.dtype} {a.shape}, not {np.dtype(dtype)} {tuple(shape)}"
+        raise UnitlensError(f"Cannot resume mining: {path} {found}. Use --force to start this run's mining over.")
+    return a
 
 
 def _diff(prev: dict | None, new: dict) -> str:
@@ -409,9 +406,6 @@ def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progre
     cut_exemplars(run, model, corpus, layers, config.thumb, progress=progress)
     m = run.manifest()
     m["corpus"] = _corpus_summary(corpus, skipped)
-    m["mine"]["done"] = True
-    for lu in layers:
-        m["mine"]["layers"][lu.layer]["done"] = True
     m["mine"]["colour"] = {"mean": mu.tolist(), "cov": cov.tolist(), "pixels": colour[2],
                            "source": "measured on this run's corpus (network inputs, RGB in [0, 1])"}
     m["mine"]["config"] = asdict(config)
@@ -419,7 +413,14 @@ def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progre
     for name, entry in finish_layers(run, corpus, layers, skipped, groups).items():
         m["mine"]["layers"][name].update(entry)
     m["mine"]["dedupe"] = _dedupe_summary(config, groups)
+    # Done only now: a run stopped during embeddings or facets finishes them when run again.
+    m["mine"]["done"] = True
+    for lu in layers:
+        m["mine"]["layers"][lu.layer]["done"] = True
     run.save_manifest(m)
+    for lu in layers:  # a PCA embedding replaces the pooled features, once the run says so
+        if (run.layer_dir(lu.layer) / "embed.npy").is_file():
+            (run.layer_dir(lu.layer) / "pooled.npy").unlink(missing_ok=True)
     (run.path / "mine" / "state.npz").unlink(missing_ok=True)
     (run.path / "mine" / "state.json").unlink(missing_ok=True)
 

@@ -278,7 +278,7 @@ def _exemplar_files(model, run: Run, layer: str, channel: int, exemplars: list[d
     """Crop PNGs for every exemplar; heat maps for the first `config.attribute`. Adds the file names
     (and each method's numbers) to the exemplar dicts."""
     from .corpus import CorpusDataset
-    from .crops import _image_cells, input_box
+    from .crops import image_cells, input_box
 
     info = model.layer(layer)
     size = model.preprocess.size
@@ -291,7 +291,7 @@ def _exemplar_files(model, run: Run, layer: str, channel: int, exemplars: list[d
         y, x = e["position"]
         box_in = input_box(info.field, y, x, size)
         need = int(math.ceil(config.thumb * size / max(1.0, min(box_in[2] - box_in[0], box_in[3] - box_in[1]))))
-        boxes, cells, err = _image_cells(Path(e["image"]), [(box_in, need)], size, config.thumb)
+        boxes, cells, err = image_cells(Path(e["image"]), [(box_in, need)], size, config.thumb)
         if err is not None:
             e["crop"] = None
             e["problem"] = f"no crop: {err}"
@@ -345,7 +345,7 @@ def probe_image(source, image: str | Path, layer: str, top: int = 10, *, allow_p
     """
     from .corpus import ImageProblem, decode_original, fit
     from .crops import input_box
-    from .mining import _forward
+    from ._extract import forward_batch
 
     if top < 1:
         raise UnitlensError(f"top must be at least 1, got {top}.")
@@ -366,7 +366,7 @@ def probe_image(source, image: str | Path, layer: str, top: int = 10, *, allow_p
         raise UnitlensError(f"Cannot use {image}: {e.reason}.") from None
     pixels, place = fit(img, size, original)
     with torch.inference_mode():
-        fmap = _forward(model.extractor([layer]), model.normalize(torch.from_numpy(pixels)[None]))[layer][0]
+        fmap = forward_batch(model.extractor([layer]), model.normalize(torch.from_numpy(pixels)[None]))[layer][0]
     flat = fmap.flatten(1).float()  # (C, H*W)
     mx, amx = flat.max(1)
     mean = flat.mean(1)

@@ -17,7 +17,7 @@ from . import net, swatches
 
 LAYERS = ("block1", "block2", "block3", "block4")  # every unit of every conv stage: 208 units
 CORPUS_SIZE = 2000
-STEPS = 64
+STEPS = 128
 
 
 def demo_model():
