@@ -441,3 +441,34 @@ def test_a_killed_synthesis_resumes_without_redoing_finished_units(tmp_path, dig
         a = np.asarray(Image.open(Run(whole.path).layer_dir("7", "synth") / f"unit-{c:04d}-0.png"))
         b = np.asarray(Image.open(d / f"unit-{c:04d}-0.png"))
         assert np.abs(a.astype(int) - b.astype(int)).max() <= 1  # same seeds, same images (8-bit rounding)
+
+
+def test_a_unit_silent_at_its_start_gets_new_starts(tmp_path, monkeypatch):
+    # A ReLU unit that needs contrast: the horizontal difference of neighbouring pixels, minus a
+    # threshold. A near-grey random start leaves it at exactly 0 with no gradient anywhere, so
+    # without a new start it can never move (common practice in activation maximisation: restart
+    # a dead start).
+    code = tmp_path / "edge.py"
+    code.write_text(
+        "import torch\n"
+        "def build():\n"
+        "    conv = torch.nn.Conv2d(3, 1, (1, 2))\n"
+        "    with torch.no_grad():\n"
+        "        conv.weight.zero_(); conv.weight[0, :, 0, 0] = 1.0; conv.weight[0, :, 0, 1] = -1.0\n"
+        "        conv.bias.fill_(-2.0)\n"
+        "    return torch.nn.Sequential(conv, torch.nn.ReLU())\n")
+    model = load_model(f"{code}:build", size=32, mean=(0.5,) * 3, std=(0.25,) * 3)
+    cfg = SynthConfig(steps=24, checks=0, param="pixel", transforms=TransformSpec.none())
+    ex = model.extractor(["1"])
+
+    def reached():
+        r = optimise_units(model, "1", [0], cfg)[0]
+        with torch.no_grad():
+            return float(ex(model.normalize(torch.from_numpy(r.images[0]).permute(2, 0, 1)[None]))["1"].max())
+
+    import unitlens.synth.optimise as opt
+
+    monkeypatch.setattr(opt, "MAX_REDRAWS", 0)
+    assert reached() == 0.0  # the plain start is dead
+    monkeypatch.setattr(opt, "MAX_REDRAWS", 4)
+    assert reached() > 1.0

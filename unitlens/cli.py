@@ -170,6 +170,12 @@ def show(
         for e in s[key]:
             label = f"  [{e['label']}]" if e.get("label") else ""
             print(f"   {e['rank']:>3}  {e['score']:>10.4g}  box {e['box']}  {e['id']}{label}")
+    for r in s.get("synth") or []:
+        vs = f", {r['vs_best_exemplar']:.2f} x the best exemplar" if r.get("vs_best_exemplar") is not None else ""
+        print(f"  synthesised: {r['image']}  (spatial max {r['max_activation']:.4g}{vs}; "
+              f"rank {r['rank']} of {r['channels']} channels, {r['steps']} steps)")
+        if r.get("nearest"):
+            print("    nearest natural images: " + ", ".join(f"{n['id']} ({n['similarity']:.2f})" for n in r["nearest"][:3]))
 
 
 @app.command("run")

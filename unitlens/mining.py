@@ -354,6 +354,8 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
             for path in row_files + [mdir / "state.npz", mdir / "state.json"]:
                 for p in g.parts(path):
                     p.unlink(missing_ok=True)
+        for p in mdir.rglob(".*.tmp"):  # half-written files of a process killed mid-write (store._atomic)
+            p.unlink(missing_ok=True)
     g.barrier("the end of mining")
     return run
 

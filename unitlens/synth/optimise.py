@@ -31,6 +31,7 @@ from .objectives import Context, Objective, channel
 from .param import ColourBasis, make_param
 from .transforms import TransformSpec, warp
 
+MAX_REDRAWS = 4  # new random starts for a unit silent at its start (contrast x3 each time)
 BETAS = (0.9, 0.999)
 ADAM_EPS = 1e-8
 
@@ -112,6 +113,7 @@ class _Unit:
         self.m2 = torch.zeros_like(self.params)
         self.step = torch.zeros(M, dtype=torch.long)
         self.done = torch.zeros(M, dtype=torch.bool)
+        self.redraws = torch.zeros(M, dtype=torch.long)  # new starts drawn because the unit was silent
         self.rngs = [np.random.default_rng(seed_for(c.seed, engine.layer, target, m, "transforms")) for m in range(M)]
         self.traces: list[list[float]] = [[] for _ in range(M)]
 
@@ -126,6 +128,7 @@ class _Batch:
         self.m2 = torch.cat([u.m2 for u in units])
         self.step = torch.cat([u.step for u in units])  # (B,)
         self.done = torch.cat([u.done for u in units])
+        self.redraws = torch.cat([u.redraws for u in units])
         self.targets = torch.tensor([u.target for u in units for _ in range(M)])
         self.groups = torch.arange(len(units)).repeat_interleave(M)
         self.rngs = [r for u in units for r in u.rngs]
@@ -135,7 +138,7 @@ class _Batch:
         for k, u in enumerate(units):
             rows = slice(k * self.M, (k + 1) * self.M)
             u.params, u.m1, u.m2 = self.P[rows], self.m1[rows], self.m2[rows]
-            u.step, u.done = self.step[rows], self.done[rows]
+            u.step, u.done, u.redraws = self.step[rows], self.done[rows], self.redraws[rows]
 
 
 class _Engine:
@@ -248,7 +251,7 @@ class _Engine:
             for r, st in zip(b.rngs, states):
                 r.bit_generator.state = st
             raise
-        live = ~b.done
+        live = ~b.done & ~self._redraw_silent(b, values, g)
         self._update(b.P, b.m1, b.m2, g, b.step, None if bool(live.all()) else torch.nonzero(live).flatten())
         b.step += live.long()
         vals, steps_now = values.tolist(), b.step.tolist()
@@ -257,6 +260,21 @@ class _Engine:
             if steps_now[i] >= c.steps or _stalled(b.traces[i], c.stop_window, c.stop_gain):
                 b.done[i] = True
         return bool(b.done.view(-1, b.M).all(1).any())
+
+    def _redraw_silent(self, b: _Batch, values: torch.Tensor, g: torch.Tensor) -> torch.Tensor:
+        """Rows that start where the unit is silent (objective exactly 0, no gradient: e.g. a ReLU
+        unit off everywhere on a near-grey start) would never move. Before their first step they
+        get a new random start with 3x the contrast, up to MAX_REDRAWS times; those rows skip this
+        step. Seeds depend on the image and the attempt only, never on the batch."""
+        flat = g.flatten(1)
+        silent = (b.step == 0) & ~b.done & (values == 0) & (flat == 0).all(1) & (b.redraws < MAX_REDRAWS)
+        for i in torch.nonzero(silent).flatten().tolist():
+            m = i % b.M
+            b.redraws[i] += 1
+            k = int(b.redraws[i])
+            gen = torch.Generator().manual_seed(seed_for(self.config.seed, self.layer, int(b.targets[i]), m, f"init-{k}"))
+            b.P[i] = self.param.init(gen) * 3.0**k
+        return silent
 
     def _update(self, P, m1, m2, g, step, rows) -> None:
         """One Adam step, in place, for all rows (rows None) or the given ones; then blur / project."""
