@@ -110,8 +110,8 @@ def _exemplar_row(e: dict, methods: list[str]):
     label = tag("span", e["label"], class_="ex-label") if e.get("label") else None
     facts = tag("div", tag("span", f"#{e['rank']}", class_="ex-rank"), " ",
                 tag("span", f"{e['score']:.4g}", class_="ex-score num"),
-                tag("span", e["id"], class_="ex-file"), label,
-                tag("span", f"box {e['box']} (original pixels), position {e['position']}", class_="num"),
+                tag("span", e["id"], class_="ex-file"), label and tag("div", label),
+                tag("div", f"box {e['box']} (original pixels), position {e['position']}", class_="num"),
                 tag("p", e["problem"], class_="note warn") if e.get("problem") else None, class_="pr-facts")
     return tag("div", facts, *figs, class_="pr-row")
 
