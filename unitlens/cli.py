@@ -68,6 +68,21 @@ def _load(model, weights, size, mean, std, allow_pickle, arch_option):
                       allow_pickle=allow_pickle, arch_options=_arch_options(arch_option))
 
 
+def _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_option, layers, units, corpus, labels,
+                         device, threads):
+    """mine and run: the model, its chosen layers (checked before any image is decoded), the corpus."""
+    import torch
+
+    from . import open_corpus, parse_layers
+
+    if threads:
+        torch.set_num_threads(threads)
+    m = _load(model, weights, size, mean, std, allow_pickle, arch_option)
+    chosen = parse_layers(m, layers, units)
+    place(m, device)
+    return m, chosen, open_corpus(corpus, labels=labels)
+
+
 # -- commands ------------------------------------------------------------------------------
 @app.command()
 def layers(
@@ -122,16 +137,10 @@ def mine_cmd(
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Pass 1: find each unit's top- and bottom-activating images and their crops."""
-    import torch
+    from . import MineConfig, mine
 
-    from . import MineConfig, mine, open_corpus, parse_layers
-
-    if threads:
-        torch.set_num_threads(threads)
-    m = _load(model, weights, size, mean, std, allow_pickle, arch_option)
-    chosen = parse_layers(m, layers, units)  # checked before any image is decoded
-    place(m, device)
-    c = open_corpus(corpus, labels=labels)
+    m, chosen, c = _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_option,
+                                        layers, units, corpus, labels, device, threads)
     n_units = sum(len(lu.units) for lu in chosen)
     print(f"Mining {n_units} units in {len(chosen)} layer(s) over {len(c)} images -> {out}", file=sys.stderr)
     run = mine(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers,
@@ -199,16 +208,10 @@ def run_cmd(
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Mine, synthesise and draw the atlas in one resumable command (kill it and run it again)."""
-    import torch
+    from . import MineConfig, SynthConfig, run_all
 
-    from . import MineConfig, SynthConfig, open_corpus, parse_layers, run_all
-
-    if threads:
-        torch.set_num_threads(threads)
-    m = _load(model, weights, size, mean, std, allow_pickle, arch_option)
-    chosen = parse_layers(m, layers, units)
-    place(m, device)
-    c = open_corpus(corpus, labels=labels)
+    m, chosen, c = _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_option,
+                                        layers, units, corpus, labels, device, threads)
     run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
                   SynthConfig(steps=steps, size=synth_size, seed=seed), budget=budget,
                   progress=sys.stderr.isatty())
