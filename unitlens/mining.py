@@ -305,13 +305,15 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
             for i, reason in batch.failures:
                 skipped.append((corpus.files[i], reason))
                 print(f"Skipped {corpus.files[i]}: {reason}", file=sys.stderr)
+            # The resume point after this batch; recorded only once the batch is tallied.
+            upto = max([next_index, *(batch.indices + 1).tolist(), *(i + 1 for i, _ in batch.failures)])
             if len(batch.indices):
                 ids = batch.indices
                 s, o, n = colour_moments(batch.images)
                 colour[0] += s; colour[1] += o; colour[2] += n
                 if dedupe:
                     dedupe.thumbs[ids.numpy()] = thumbnails(batch.images)
-                    dedupe.extend(max([int(ids.max()) + 1] + [i + 1 for i, _ in batch.failures]))
+                    dedupe.extend(upto)
                 with torch.inference_mode():
                     feats = forward_batch(extractor, model.normalize(batch.images))
                     cls = class_of[ids] if class_of is not None else None
@@ -323,9 +325,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                             values[name][1][rows] = _f16(mean)
                             if len(values[name]) > 2:
                                 values[name][2][rows] = _f16(mean if t.all_units else feats[name].float().mean((2, 3)))
-            done = [int(batch.indices.max()) + 1] if len(batch.indices) else []
-            done += [i + 1 for i, _ in batch.failures]
-            next_index = max([next_index] + done)
+            next_index = upto
             if bar:
                 bar.advance(next_index)
             if time.monotonic() - last_save > config.checkpoint_seconds:
