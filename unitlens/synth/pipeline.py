@@ -86,8 +86,7 @@ def _layer(run, model, lu, config, objective, term, sign, colour, size, progress
     d.mkdir(parents=True, exist_ok=True)
     g = dist.group()
     table = read_json(d / "units.json") or {"layer": lu.layer, "units": {}}
-    for part in sorted(d.glob("units-rank*.json")):  # ranks' tables of an interrupted launch
-        table["units"].update((read_json(part) or {}).get("units", {}))
+    _fold_parts(d, table)  # ranks' tables of an interrupted launch
     finished = {int(k) for k, rec in table["units"].items()
                 if all((d / im["file"]).is_file() for im in rec["images"])}
     todo = [c for c in g.shard(lu.units) if c not in finished]
@@ -120,13 +119,19 @@ def _layer(run, model, lu, config, objective, term, sign, colour, size, progress
             bar.close()
 
 
-def _merge_tables(d: Path, table: dict, units) -> dict:
-    """Fold the ranks' unit tables into units.json (in unit order) and remove them."""
+def _fold_parts(d: Path, table: dict) -> list[Path]:
+    """Add the units of the ranks' tables (units-rank*.json) to `table`; the part files found."""
     parts = sorted(d.glob("units-rank*.json"))
-    if not parts:
-        return table
     for part in parts:
         table["units"].update((read_json(part) or {}).get("units", {}))
+    return parts
+
+
+def _merge_tables(d: Path, table: dict, units) -> dict:
+    """Fold the ranks' unit tables into units.json (in unit order) and remove them."""
+    parts = _fold_parts(d, table)
+    if not parts:
+        return table
     order = {str(c): i for i, c in enumerate(units)}
     table["units"] = dict(sorted(table["units"].items(), key=lambda kv: (order.get(kv[0], len(order)), int(kv[0]))))
     write_json(d / "units.json", table)
