@@ -267,3 +267,36 @@ def test_a_run_stopped_while_finishing_completes_when_run_again(tmp_path, smooth
     values.unlink()
     with pytest.raises(UnitlensError, match="Cannot resume mining: .*values.npy is missing"):
         _open_values(values, (len(corpus), 4), fresh=False)
+
+
+def test_a_checkpoint_whose_json_lags_its_tallies_resumes_without_counting_twice(tmp_path, smooth_corpus, r18_weights,
+                                                                                  monkeypatch):
+    # A process killed between writing state.npz and state.json leaves new tallies beside an old
+    # resume point; the resume point saved inside the npz wins.
+    import unitlens.corpus as corpus_module
+    from unitlens import UnitlensError
+
+    model = load_model("torchvision:resnet18", str(r18_weights), size=64)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer1:0-3"])
+    cfg = MineConfig(top_k=3, workers=0, batch_size=4, checkpoint_seconds=0.0)
+    whole = mine(model, corpus, layers, tmp_path / "whole", cfg)
+    real = corpus_module.batches
+
+    def three_then_stop(*args, **kw):
+        for n, b in enumerate(real(*args, **kw)):
+            if n == 3:
+                raise KeyboardInterrupt
+            yield b
+
+    monkeypatch.setattr(corpus_module, "batches", three_then_stop)
+    with pytest.raises(UnitlensError, match="Interrupted after 12 of 24"):
+        mine(model, corpus, layers, tmp_path / "r", cfg)
+    monkeypatch.undo()
+    state = tmp_path / "r" / "mine" / "state.json"
+    state.write_text(json.dumps({**json.loads(state.read_text()), "next": 4}))  # as if the json write was lost
+    run = mine(model, corpus, layers, tmp_path / "r", cfg)
+    a, b = whole.index("layer1"), run.index("layer1")
+    assert int(b["count"]) == len(corpus) == 24
+    for key in ("top_image", "top_score", "bottom_image", "mean_max", "hist"):
+        np.testing.assert_array_equal(a[key], b[key])

@@ -5,6 +5,7 @@ order), so the kept lists are the same for any batch size, worker count, shard s
 """
 from __future__ import annotations
 
+import json
 import math
 import sys
 import time
@@ -252,6 +253,8 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                             f"{g.world} processes; resume it with that batch size, or use --force to start over.")
     if meta and state_path.is_file():
         st = read_npz(state_path)
+        if "meta" in st:  # the resume point saved with these very tallies (state.json may be older)
+            meta = json.loads(str(st["meta"]))
         for name, t in tallies.items():
             t.load({k: st[f"{name}/{k}"] for k in LayerTally.STATE})
         colour = [torch.from_numpy(st["colour_sum"]), torch.from_numpy(st["colour_outer"]), int(meta["colour_n"])]
@@ -286,10 +289,12 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
         if dedupe:
             dedupe.flush()
         arrays = {f"{name}/{k}": v for name, t in tallies.items() for k, v in t.state().items()}
-        arrays.update(colour_sum=colour[0].numpy(), colour_outer=colour[1].numpy())
+        meta = {"next": next_index, "skipped": skipped, "colour_n": colour[2], "batch_size": config.batch_size}
+        # The resume point goes into the npz too: a process killed between the two writes must not
+        # resume new tallies from an old point (it would count a batch twice).
+        arrays.update(colour_sum=colour[0].numpy(), colour_outer=colour[1].numpy(), meta=np.array(json.dumps(meta)))
         write_npz(state_path, **arrays)
-        write_json(meta_path, {"next": next_index, "skipped": skipped, "colour_n": colour[2],
-                               "batch_size": config.batch_size})
+        write_json(meta_path, meta)
         g.check("while mining")  # stop early if another rank died
 
     extractor = model.extractor([lu.layer for lu in layers])
