@@ -300,3 +300,51 @@ def test_a_checkpoint_whose_json_lags_its_tallies_resumes_without_counting_twice
     assert int(b["count"]) == len(corpus) == 24
     for key in ("top_image", "top_score", "bottom_image", "mean_max", "hist"):
         np.testing.assert_array_equal(a[key], b[key])
+
+
+@pytest.mark.parametrize("where", ["forward", "after_tally"])
+def test_an_interrupt_inside_a_batch_resumes_to_the_uninterrupted_result(tmp_path, smooth_corpus, r18_weights,
+                                                                         monkeypatch, where):
+    # KeyboardInterrupt raised inside the forward pass, or just after the first layer's tally took the
+    # batch: the checkpoint must hold whole batches only, so the resumed run equals a run never stopped.
+    import shutil
+
+    import unitlens.mining as mining_module
+    from unitlens import UnitlensError
+
+    d = tmp_path / "c"
+    d.mkdir()
+    for p in sorted(smooth_corpus.iterdir())[:10]:
+        shutil.copy(p, d / p.name)
+    (d / "img03b.png").write_bytes(b"not an image")  # a skipped file in the interrupted batch
+    model = load_model("torchvision:resnet18", str(r18_weights), size=32)
+    corpus = open_corpus(d)
+    layers = parse_layers(model, ["layer1:0-3", "layer2:0-5"])
+    cfg = MineConfig(top_k=3, workers=0, batch_size=3, checkpoint_seconds=0.0)
+    whole = mine(model, corpus, layers, tmp_path / "whole", cfg)
+    target, real = {"forward": ("forward_batch", mining_module.forward_batch),
+                    "after_tally": ("_f16", mining_module._f16)}[where]
+    calls = []
+
+    def interrupt_on_second_batch(*args, **kw):
+        calls.append(1)
+        out = real(*args, **kw)
+        if len(calls) == (2 if where == "forward" else 7):  # _f16: 3 calls per layer and batch
+            raise KeyboardInterrupt
+        return out
+
+    monkeypatch.setattr(mining_module, target, interrupt_on_second_batch)
+    with pytest.raises(UnitlensError, match="Interrupted after 3 of 11 images"):
+        mine(model, corpus, layers, tmp_path / "r", cfg)
+    monkeypatch.undo()
+    run = mine(model, corpus, layers, tmp_path / "r", cfg)
+    for lu in layers:
+        a, b = whole.index(lu.layer), run.index(lu.layer)
+        assert int(b["count"]) == 10
+        for key in a:
+            np.testing.assert_array_equal(a[key], b[key], err_msg=key)
+        np.testing.assert_array_equal(np.load(whole.layer_dir(lu.layer) / "values.npy"),
+                                      np.load(run.layer_dir(lu.layer) / "values.npy"))
+    ma, mb = whole.manifest(), run.manifest()
+    assert ma["corpus"]["skipped"] == mb["corpus"]["skipped"] and len(mb["corpus"]["skipped"]) == 1
+    assert ma["mine"]["colour"] == mb["mine"]["colour"]

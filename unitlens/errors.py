@@ -19,3 +19,13 @@ def closest(name: str, choices: Iterable[str], n: int = 3) -> list[str]:
     if not found:  # fall back to shared prefixes, e.g. 'layer' -> layer1..layer4
         found = [c for c in choices if c.startswith(name[:3])][:n]
     return found
+
+
+def shown(text: str) -> str:
+    r"""`text` safe to print on a terminal: control characters (escape sequences, newlines) and other
+    unprintable ones written as Python escapes, e.g. 'a\x1b[2Jb.png' -> 'a\\x1b[2Jb.png'."""
+    text = str(text)
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else c.encode("unicode_escape", "backslashreplace").decode("ascii")
+                   for c in text)

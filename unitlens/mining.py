@@ -18,7 +18,7 @@ import torch
 from . import dist
 from ._extract import forward_batch
 from ._progress import Progress
-from .errors import UnitlensError
+from .errors import UnitlensError, shown
 from .facets import THUMB, NearDuplicates, needs_pooled, thumbnails
 from .store import Run, read_json, read_npz, write_json, write_npz
 from .units import LayerUnits
@@ -102,7 +102,18 @@ class LayerTally:
             setattr(self, k, torch.from_numpy(np.array(st[k])))
 
     def update(self, fmap: torch.Tensor, ids: torch.Tensor, classes: torch.Tensor | None):
-        """fmap (B, C, H, W); ids (B,) corpus indices; classes (B,) class ids or -1."""
+        """Add a batch in place (see `added`); returns its per-image (max, mean), each (B, U)."""
+        new, mx, mean = self.added(fmap, ids, classes)
+        self.__dict__.update(new.__dict__)  # one step: an interrupt cannot land between the fields
+        return mx, mean
+
+    def added(self, fmap: torch.Tensor, ids: torch.Tensor, classes: torch.Tensor | None):
+        """This tally with a batch added, and its per-image (max, mean), each (B, U); self is unchanged,
+        so a pass interrupted mid-batch still holds whole batches only.
+
+        fmap (B, C, H, W); ids (B,) corpus indices; classes (B,) class ids or -1."""
+        import copy
+
         f = fmap if self.all_units else fmap.index_select(1, self.units)
         flat = f.flatten(2).float()  # (B, U, H*W)
         mx, amx = flat.max(2)  # (B, U)
@@ -111,28 +122,30 @@ class LayerTally:
         mx = torch.nan_to_num(mx, nan=-math.inf)
         mn = torch.nan_to_num(mn, nan=math.inf)
         ids_u = ids.view(1, -1).expand(mx.shape[1], -1)  # (U, B)
-        self.top_val, self.top_img, self.top_pos = _merge(
+        new = copy.copy(self)  # every state tensor below is a new one; none is changed in place
+        new.top_val, new.top_img, new.top_pos = _merge(
             self.top_val, self.top_img, self.top_pos, mx.T, ids_u, amx.T, self.k, largest=True, groups=self.groups)
-        self.bot_val, self.bot_img, self.bot_pos = _merge(
+        new.bot_val, new.bot_img, new.bot_pos = _merge(
             self.bot_val, self.bot_img, self.bot_pos, mn.T, ids_u, amn.T, self.k, largest=False, groups=self.groups)
         m64 = mx.double()
-        self.count += mx.shape[0]
-        self.sum_max += m64.sum(0)
-        self.sumsq_max += (m64 * m64).sum(0)
-        self.sum_mean += mean.double().sum(0)
-        self.fires += (mx > 0).sum(0)
-        self.low = torch.minimum(self.low, mn.min(0).values)
-        self.high = torch.maximum(self.high, mx.max(0).values)
+        new.count = self.count + mx.shape[0]
+        new.sum_max = self.sum_max + m64.sum(0)
+        new.sumsq_max = self.sumsq_max + (m64 * m64).sum(0)
+        new.sum_mean = self.sum_mean + mean.double().sum(0)
+        new.fires = self.fires + (mx > 0).sum(0)
+        new.low = torch.minimum(self.low, mn.min(0).values)
+        new.high = torch.maximum(self.high, mx.max(0).values)
         b = torch.floor(torch.asinh(mx / HIST_SCALE) * HIST_STEPS).long() + HIST_HALF
         b = b.clamp_(0, HIST_BINS - 1)  # (B, U)
         offs = torch.arange(mx.shape[1]).view(1, -1) * HIST_BINS
-        self.hist.view(-1).index_add_(0, (b + offs).view(-1), torch.ones(b.numel(), dtype=torch.long))
+        new.hist = self.hist.view(-1).index_add(0, (b + offs).view(-1),
+                                                torch.ones(b.numel(), dtype=torch.long)).view_as(self.hist)
         if classes is not None:
             ok = classes >= 0
             if ok.any():
-                self.class_sum.index_add_(0, classes[ok], mean[ok].double())
-                self.class_count.index_add_(0, classes[ok], torch.ones(int(ok.sum()), dtype=torch.long))
-        return mx, mean
+                new.class_sum = self.class_sum.index_add(0, classes[ok], mean[ok].double())
+                new.class_count = self.class_count.index_add(0, classes[ok], torch.ones(int(ok.sum()), dtype=torch.long))
+        return new, mx, mean
 
     def merge(self, other: "LayerTally") -> None:
         """Fold another tally over a disjoint set of images into this one (exact)."""
@@ -282,7 +295,13 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
         for t in tallies.values():
             t.groups = dedupe.groups
 
-    def checkpoint(next_index: int) -> None:
+    # What the checkpoint holds: whole batches only. A batch is added to copies, and the copies
+    # replace this tuple in one assignment once the batch is done, so an interrupt anywhere in
+    # between saves the state before that batch, never half of it.
+    done = (tallies, tuple(colour), tuple(skipped), start)
+
+    def checkpoint() -> None:
+        tallies, colour, skipped, next_index = done
         for vm in values.values():
             for a in vm:
                 a.flush()
@@ -302,55 +321,56 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     # is the job's progress to within a batch per rank.
     bar = Progress(N, start, "mining", "img") if progress and g.main else None
     last_save = time.monotonic()
-    next_index = start
     interrupted = False
     try:
         for batch in batches(corpus, model.preprocess.size, start=start, batch_size=config.batch_size,
                              workers=config.workers, indices=shard):
+            tallies, colour, skipped, next_index = done
             for i, reason in batch.failures:
-                skipped.append((corpus.files[i], reason))
-                print(f"Skipped {corpus.files[i]}: {reason}", file=sys.stderr)
+                print(f"Skipped {shown(corpus.files[i])}: {reason}", file=sys.stderr)
+            skipped = skipped + tuple((corpus.files[i], reason) for i, reason in batch.failures)
             # The resume point after this batch; recorded only once the batch is tallied.
             upto = max([next_index, *(batch.indices + 1).tolist(), *(i + 1 for i, _ in batch.failures)])
             if len(batch.indices):
                 ids = batch.indices
                 s, o, n = colour_moments(batch.images)
-                colour[0] += s; colour[1] += o; colour[2] += n
+                colour = (colour[0] + s, colour[1] + o, colour[2] + n)
                 if dedupe:
                     dedupe.thumbs[ids.numpy()] = thumbnails(batch.images)
                     dedupe.extend(upto)
                 with torch.inference_mode():
                     feats = forward_batch(extractor, model.normalize(batch.images))
                     cls = class_of[ids] if class_of is not None else None
+                    tallies = dict(tallies)
                     for name, t in tallies.items():
-                        mx, mean = t.update(feats[name], ids, cls)
+                        tallies[name], mx, mean = t.added(feats[name], ids, cls)
                         if name in values:
                             rows = g.row(ids.numpy(), config.batch_size)
                             values[name][0][rows] = _f16(mx)
                             values[name][1][rows] = _f16(mean)
                             if len(values[name]) > 2:
                                 values[name][2][rows] = _f16(mean if t.all_units else feats[name].float().mean((2, 3)))
-            next_index = upto
+            done = (tallies, colour, skipped, upto)  # the batch counts from here on
             if bar:
-                bar.advance(next_index)
+                bar.advance(upto)
             if time.monotonic() - last_save > config.checkpoint_seconds:
-                checkpoint(next_index)
+                checkpoint()
                 last_save = time.monotonic()
-            if _stop_after is not None and next_index >= _stop_after:
-                checkpoint(next_index)
+            if _stop_after is not None and upto >= _stop_after:
+                checkpoint()
                 return run
     except KeyboardInterrupt:
         interrupted = True
     finally:
         if bar:
             bar.close()
+    checkpoint()
+    tallies, colour, skipped, next_index = done
     if interrupted:
-        checkpoint(next_index)
         raise UnitlensError(
             f"Interrupted after {next_index} of {N} images; state saved. Run the same command to resume."
         )
-    checkpoint(next_index)
-    merged = dist.merge_tallies(g, tallies, colour, skipped, corpus.files)
+    merged = dist.merge_tallies(g, tallies, list(colour), list(skipped), corpus.files)
     if g.main:
         for path in row_files:
             dist.assemble_rows(g, path, N, config.batch_size)
