@@ -348,3 +348,18 @@ def test_an_interrupt_inside_a_batch_resumes_to_the_uninterrupted_result(tmp_pat
     ma, mb = whole.manifest(), run.manifest()
     assert ma["corpus"]["skipped"] == mb["corpus"]["skipped"] and len(mb["corpus"]["skipped"]) == 1
     assert ma["mine"]["colour"] == mb["mine"]["colour"]
+
+
+def test_a_corpus_without_one_usable_image_is_an_error_naming_the_skipped_files(tmp_path, r18_weights):
+    d = tmp_path / "c"
+    d.mkdir()
+    (d / "a.png").write_bytes(b"not an image")
+    (d / "b.jpg").write_bytes(b"\xff\xd8\xff\xe0 truncated")
+    r = run_cli("mine", "torchvision:resnet18", "--weights", r18_weights, "--size", "32", "--corpus", d,
+                "--layers", "layer1:0", "--workers", "0", "--out", tmp_path / "r", check=False)
+    assert r.returncode == 1 and "Traceback" not in r.stderr, r.stderr
+    line = r.stderr.strip().splitlines()[-1]
+    assert line.startswith("Error: No usable image") and "a.png: " in line and "b.jpg: " in line, line
+    assert not Run(tmp_path / "r").manifest()["mine"]["done"]
+    shown = run_cli("show", tmp_path / "r", "layer1:0", check=False)  # not a TypeError from an empty index
+    assert shown.returncode == 1 and shown.stderr.startswith("Error: Layer 'layer1' has not been mined"), shown.stderr

@@ -372,6 +372,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
         )
     merged = dist.merge_tallies(g, tallies, list(colour), list(skipped), corpus.files)
     if g.main:
+        _check_usable(corpus, merged[0], merged[2])
         for path in row_files:
             dist.assemble_rows(g, path, N, config.batch_size)
         _finish(run, model, corpus, layers, *merged, config, progress, dedupe.groups.numpy() if dedupe else None)
@@ -383,6 +384,17 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
             p.unlink(missing_ok=True)
     g.barrier("the end of mining")
     return run
+
+
+def _check_usable(corpus, tallies: dict, skipped: list) -> None:
+    """Refuse to finish a pass that tallied no image: every page and synthesis would be empty."""
+    if any(int(t.count) for t in tallies.values()):
+        return
+    shown_files = "; ".join(f"{shown(f)}: {r}" for f, r in skipped[:5])
+    more = f"; and {len(skipped) - 5} more" if len(skipped) > 5 else ""
+    raise UnitlensError(f"No usable image in {shown(corpus.root)}: all {len(corpus)} file(s) were skipped "
+                        f"({shown_files}{more}). Fix or replace them, or give --corpus another folder, then "
+                        "run again with --force.")
 
 
 def _f16(t: torch.Tensor) -> np.ndarray:
