@@ -363,3 +363,40 @@ def test_a_corpus_without_one_usable_image_is_an_error_naming_the_skipped_files(
     assert not Run(tmp_path / "r").manifest()["mine"]["done"]
     shown = run_cli("show", tmp_path / "r", "layer1:0", check=False)  # not a TypeError from an empty index
     assert shown.returncode == 1 and shown.stderr.startswith("Error: Layer 'layer1' has not been mined"), shown.stderr
+
+
+def test_force_deletes_only_what_the_manifest_says_mining_wrote(tmp_path, smooth_corpus, r18_weights):
+    from unitlens import UnitlensError
+
+    model = load_model("torchvision:resnet18", str(r18_weights), size=32)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer1:0-1"])
+    cfg = MineConfig(top_k=2, workers=0)
+    # a folder that is not a run: its mine/ is the user's, with or without --force
+    notes = tmp_path / "notes" / "mine" / "todo.txt"
+    notes.parent.mkdir(parents=True)
+    notes.write_text("mine the quarry on monday")
+    for force in (False, True):
+        with pytest.raises(UnitlensError, match="holds a mine/ folder but no manifest.json"):
+            mine(model, corpus, layers, tmp_path / "notes", cfg, force=force)
+        assert notes.read_text() == "mine the quarry on monday"
+    # a run: --force replaces the mined layers and checkpoints, and keeps what the user put beside them
+    run = mine(model, corpus, layers, tmp_path / "r", cfg)
+    mine_dir = run.path / "mine"
+    (mine_dir / "todo.txt").write_text("keep")
+    (mine_dir / "state.json").write_text("{}")  # as a stale checkpoint
+    mine(model, corpus, parse_layers(model, ["layer2:0"]), tmp_path / "r", cfg, force=True)
+    assert (mine_dir / "todo.txt").read_text() == "keep"
+    assert not run.layer_dir("layer1").exists() and (run.layer_dir("layer2") / "index.npz").is_file()
+    assert not (mine_dir / "state.json").exists()
+
+
+def test_a_finished_run_loses_the_checkpoint_a_kill_during_clean_up_left(tmp_path, smooth_corpus, r18_weights):
+    model = load_model("torchvision:resnet18", str(r18_weights), size=32)
+    layers = parse_layers(model, ["layer1:0"])
+    run = mine(model, open_corpus(smooth_corpus), layers, tmp_path / "r", MineConfig(top_k=2, workers=0))
+    # what a process killed between marking the run done and removing its checkpoint leaves
+    (run.path / "mine" / "state.json").write_text(json.dumps({"next": 24}))
+    (run.path / "mine" / "layer1" / ".index.npz.x1.tmp").write_bytes(b"half")
+    mine(model, open_corpus(smooth_corpus), layers, tmp_path / "r", MineConfig(top_k=2, workers=0))
+    assert sorted(p.name for p in (run.path / "mine").rglob("*") if "state" in p.name or p.suffix == ".tmp") == []

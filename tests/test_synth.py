@@ -472,3 +472,42 @@ def test_a_unit_silent_at_its_start_gets_new_starts(tmp_path, monkeypatch):
     assert reached() == 0.0  # the plain start is dead
     monkeypatch.setattr(opt, "MAX_REDRAWS", 4)
     assert reached() > 1.0
+
+
+def test_synth_refuses_a_run_whose_mining_is_unfinished(tmp_path, smooth_corpus, r18):
+    from unitlens import MineConfig, mine, open_corpus
+
+    layers = parse_layers(r18, ["layer2:0-1"])
+    mine(r18, open_corpus(smooth_corpus), layers, tmp_path / "r", MineConfig(top_k=2, workers=0, batch_size=4),
+         _stop_after=8)
+    with pytest.raises(UnitlensError, match=r"Mining in .* is not finished \(8 of 24 images\).*Finish mining first"):
+        synthesize(r18, layers, tmp_path / "r", SynthConfig(steps=2, **QUICK))
+    assert not (tmp_path / "r" / "synth").exists() and "synth" not in Run(tmp_path / "r").manifest()
+
+
+def test_resumed_synthesis_leaves_no_temporary_files_and_force_keeps_foreign_ones(tmp_path, digits_model, monkeypatch):
+    from unitlens.synth import pipeline
+
+    layers = parse_layers(digits_model, ["7:0-3"])
+    cfg = SynthConfig(steps=4, batch_size=2, **QUICK)
+    real = pipeline.iter_units
+
+    def killed(*a, **k):
+        it = real(*a, **k)
+        yield next(it)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(pipeline, "iter_units", killed)
+    with pytest.raises(UnitlensError, match="Interrupted after 2 of 4 units"):
+        synthesize(digits_model, layers, tmp_path / "r", cfg)
+    monkeypatch.setattr(pipeline, "iter_units", real)
+    d = Run(tmp_path / "r").layer_dir("7", "synth")
+    (d / ".unit-0002-0.png.k9x.tmp").write_bytes(b"\x89PNG half")  # what a SIGKILL mid-write leaves
+    synthesize(digits_model, layers, tmp_path / "r", cfg)
+    assert not list((tmp_path / "r").rglob("*.tmp"))
+    assert len(list(d.glob("unit-*.png"))) == 4
+    # --force with other settings redoes the layers the manifest names, and nothing else
+    (tmp_path / "r" / "synth" / "README.txt").write_text("mine")
+    synthesize(digits_model, layers, tmp_path / "r", SynthConfig(steps=5, batch_size=2, **QUICK), force=True)
+    assert (tmp_path / "r" / "synth" / "README.txt").read_text() == "mine"
+    assert json.loads((d / "units.json").read_text())["units"]["0"]["images"][0]["steps"] == 5

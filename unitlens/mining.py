@@ -218,6 +218,10 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                                         prev_corpus.get("stamps"))
         raise UnitlensError(f"The corpus changed since this run started ({change}). Use --force to start over.")
 
+    if not old and mdir.exists() and any(mdir.iterdir()):
+        raise UnitlensError(f"{shown(run.path)} holds a mine/ folder but no manifest.json, so unitlens did not write "
+                            "it (or its manifest was lost); nothing was changed. Move that folder away, or give "
+                            "--out a new or empty folder.")
     if old and old.get("mine") and not force:
         prev = old["mine"].get("settings")
         if prev != settings:
@@ -226,13 +230,15 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                 "Use another --out folder, or --force to start that folder over."
             )
         if old["mine"].get("done"):
+            if g.main:  # a process stopped during the final clean-up left its checkpoint behind
+                run.remove_stage("mine", (), _CHECKPOINTS)
             return run
     g.agree((corpus.fingerprint, settings, force), "the corpus or the mining settings")
     if g.main:  # the other ranks write only files of their own (dist.py)
-        if force and mdir.exists():
-            import shutil
-
-            shutil.rmtree(mdir)
+        if force and old and old.get("mine"):  # only what the manifest says this stage wrote
+            m = old["mine"]
+            run.remove_stage("mine", {*m.get("layers", {}), *(m.get("settings") or {}).get("layers", {})},
+                             (*_CHECKPOINTS, "thumbs.npy"))
         run.path.mkdir(parents=True, exist_ok=True)
         run.save_corpus(corpus)
         manifest = old if old and not force else {}
@@ -384,6 +390,9 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
             p.unlink(missing_ok=True)
     g.barrier("the end of mining")
     return run
+
+
+_CHECKPOINTS = ("state.npz", "state.json", "state-rank*of*.npz", "state-rank*of*.json")
 
 
 def _check_usable(corpus, tallies: dict, skipped: list) -> None:

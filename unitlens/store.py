@@ -124,6 +124,22 @@ class Run:
         self.save_manifest(m)
         return m
 
+    def remove_stage(self, stage: str, layers, files=()) -> None:
+        """Delete what a stage wrote, as its manifest entry names it: the folders of `layers` under
+        stage/, the `files` (glob patterns) there and half-written temporary files; the stage folder
+        itself only once empty. Anything else in it (the user's) stays."""
+        import shutil
+
+        d = self.path / stage
+        for name in layers:
+            shutil.rmtree(d / safe_name(name), ignore_errors=True)
+        for p in [*(q for pattern in files for q in d.glob(pattern)), *d.rglob(".*.tmp")]:
+            p.unlink(missing_ok=True)
+        try:
+            d.rmdir()
+        except OSError:  # missing, or holds what we did not write
+            pass
+
     def layer_dir(self, layer: str, stage: str = "mine") -> Path:
         return self.path / stage / safe_name(layer)
 

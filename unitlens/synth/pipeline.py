@@ -43,6 +43,7 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
     if manifest.get("model") and not same_model(manifest["model"], model.describe()):
         raise UnitlensError(f"{run.path} was made with another model ({manifest['model']['spec']}, weights "
                             f"{_weights_text(manifest['model'])}). Use another --out folder.")
+    _check_mined(run, manifest)
     colour = ColourBasis.from_run(manifest)
     used = colour if config.decorrelate else ColourBasis.plain(colour.mean)
     settings = {"config": config.describe(size), "objective": objective.describe(), "colour": used.describe()}
@@ -52,10 +53,8 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
             raise UnitlensError(f"{run.path} already holds synthesised images with other settings "
                                 f"({_diff(old.get('settings'), settings)}). Use --force to redo them, "
                                 "or another --out folder.")
-        import shutil
-
         if g.main:
-            shutil.rmtree(run.path / "synth", ignore_errors=True)
+            run.remove_stage("synth", old.get("layers", {}))
         old = None
     manifest.setdefault("model", model.describe())
     status = (old or {}).get("layers", {})
@@ -71,12 +70,27 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
 
     for lu in layers:
         _layer(run, model, lu, config, objective, term, sign, colour, size, progress)
-    if g.main:
+    if g.main:  # every rank is past its last write (the barrier closing _layer)
+        run.remove_stage("synth", ())  # half-written files of a process killed mid-write (store._atomic)
         m = run.manifest()
         m["synth"]["done"] = all(v.get("complete") for v in m["synth"]["layers"].values())
         run.save_manifest(m)
     g.barrier("the end of synthesis")
     return run
+
+
+def _check_mined(run: Run, manifest: dict) -> None:
+    """Refuse a run whose mining pass is unfinished: its colour basis and best exemplars are not
+    known yet, and the same command would be refused as 'other settings' once they are."""
+    mined = manifest.get("mine")
+    if not mined or mined.get("done"):
+        return
+    state = read_json(run.path / "mine" / "state.json") or {}
+    total = (manifest.get("corpus") or {}).get("count")
+    where = f" ({state['next']} of {total} images)" if "next" in state and total else ""
+    raise UnitlensError(f"Mining in {run.path} is not finished{where}; synthesis takes its colour basis and best "
+                        "exemplars from the finished pass. Finish mining first (run the same `unitlens mine` "
+                        "command again; it resumes), then synthesise.")
 
 
 def _layer(run, model, lu, config, objective, term, sign, colour, size, progress) -> None:
