@@ -45,3 +45,21 @@ def run_cli(*args, check=True, **kw):
     if check and r.returncode != 0:
         raise AssertionError(f"unitlens {' '.join(map(str, args))} failed ({r.returncode}):\n{r.stderr}")
     return r
+
+
+def cli(capsys, *args) -> tuple[int, str, str]:
+    """Run `unitlens ARGS` in this process (imports are paid once; a test can inject a failure):
+    (exit code, stdout, stderr)."""
+    from unitlens.cli import main
+
+    old = sys.argv
+    sys.argv = ["unitlens", *map(str, args)]
+    code = 0
+    try:
+        main()
+    except SystemExit as e:
+        code = e.code or 0
+    finally:
+        sys.argv = old
+    out, err = capsys.readouterr()
+    return code, out, err

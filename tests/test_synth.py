@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 import torch
 
-from conftest import TESTS, run_cli
+from conftest import TESTS, cli, run_cli
 from unitlens import UnitlensError, load_model, parse_layers
 from unitlens.synth import (ColourBasis, PixelImage, SpectralImage, SynthConfig, TransformSpec, channel, direction,
                             diversity, negative, neuron, optimise_units, pixel_norm, synthesize, total_variation,
@@ -321,23 +321,6 @@ def test_bad_targets_fail_before_the_first_step(r18):
 
 
 # -- the run folder and the command ---------------------------------------------------------
-
-def cli(capsys, *args) -> tuple[int, str, str]:
-    """Run `unitlens ARGS` in this process (imports are paid once): (exit code, stdout, stderr)."""
-    from unitlens.cli import main
-
-    old = sys.argv
-    sys.argv = ["unitlens", *map(str, args)]
-    code = 0
-    try:
-        main()
-    except SystemExit as e:
-        code = e.code or 0
-    finally:
-        sys.argv = old
-    out, err = capsys.readouterr()
-    return code, out, err
-
 
 @pytest.fixture(scope="module")
 def mined(tmp_path_factory, smooth_corpus, r18_weights):

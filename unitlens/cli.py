@@ -138,18 +138,21 @@ def mine_cmd(
 ):
     """Pass 1: find each unit's top- and bottom-activating images and their crops."""
     from . import MineConfig, mine
+    from .errors import shown
+    from .store import check_folder
 
+    check_folder(out)  # before the model loads
     m, chosen, c = _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_option,
                                         layers, units, corpus, labels, device, threads)
     n_units = sum(len(lu.units) for lu in chosen)
-    print(f"Mining {n_units} units in {len(chosen)} layer(s) over {len(c)} images -> {out}", file=sys.stderr)
+    print(f"Mining {n_units} units in {len(chosen)} layer(s) over {len(c)} images -> {shown(out)}", file=sys.stderr)
     run = mine(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers,
                                            checkpoint_seconds=checkpoint_every, dedupe=dedupe),
                progress=sys.stderr.isatty(), force=force)
     skipped = run.manifest()["corpus"]["skipped"]
     if skipped:
-        print(f"{len(skipped)} file(s) skipped; reasons are in {run.manifest_path}", file=sys.stderr)
-    print(run.path)
+        print(f"{len(skipped)} file(s) skipped; reasons are in {shown(run.manifest_path)}", file=sys.stderr)
+    print(shown(run.path))
 
 
 @app.command()
@@ -160,6 +163,7 @@ def show(
 ):
     """Print one unit's exemplars and statistics."""
     from . import unit_summary
+    from .errors import shown
     from .units import parse_unit
 
     layer, channel = parse_unit(unit)
@@ -168,7 +172,7 @@ def show(
         print(json.dumps(s, indent=1))
         return
     st = s["stats"]
-    print(f"{layer} channel {channel}  ({st['images']} images)")
+    print(f"{shown(layer)} channel {channel}  ({st['images']} images)")
     print(f"  per-image max: mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, range {st['min']:.4g} .. {st['max']:.4g}")
     print(f"  fires (max > 0) on {100 * st['fire_rate']:.1f}% of images", end="")
     print(f"; class selectivity {st['class_selectivity']:.3f}" if st["class_selectivity"] is not None else "")
@@ -177,14 +181,15 @@ def show(
             continue
         print(f"  {title}:")
         for e in s[key]:
-            label = f"  [{e['label']}]" if e.get("label") else ""
-            print(f"   {e['rank']:>3}  {e['score']:>10.4g}  box {e['box']}  {e['id']}{label}")
+            label = f"  [{shown(e['label'])}]" if e.get("label") else ""
+            print(f"   {e['rank']:>3}  {e['score']:>10.4g}  box {e['box']}  {shown(e['id'])}{label}")
     for r in s.get("synth") or []:
         vs = f", {r['vs_best_exemplar']:.2f} x the best exemplar" if r.get("vs_best_exemplar") is not None else ""
-        print(f"  synthesised: {r['image']}  (spatial max {r['max_activation']:.4g}{vs}; "
+        print(f"  synthesised: {shown(r['image'])}  (spatial max {r['max_activation']:.4g}{vs}; "
               f"rank {r['rank']} of {r['channels']} channels, {r['steps']} steps)")
         if r.get("nearest"):
-            print("    nearest natural images: " + ", ".join(f"{n['id']} ({n['similarity']:.2f})" for n in r["nearest"][:3]))
+            print("    nearest natural images: " + ", ".join(f"{shown(n['id'])} ({n['similarity']:.2f})"
+                                                          for n in r["nearest"][:3]))
 
 
 @app.command("run")
@@ -209,7 +214,9 @@ def run_cmd(
 ):
     """Mine, synthesise and draw the atlas in one resumable command (kill it and run it again)."""
     from . import MineConfig, SynthConfig, run_all
+    from .store import check_folder
 
+    check_folder(out)  # before the model loads
     m, chosen, c = _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_option,
                                         layers, units, corpus, labels, device, threads)
     run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
@@ -270,6 +277,9 @@ def synth(
         if out is None or not layers:
             raise UnitlensError(f"'{target}' is not a run folder. To synthesise from a model, give --layers and --out "
                                 "(e.g. unitlens synth torchvision:resnet18 --layers layer3 --out runs/r18).")
+        from .store import check_folder
+
+        check_folder(out)  # before the model loads
         m = _load(target, weights, size, mean, std, allow_pickle, arch_option)
         chosen = parse_layers(m, layers, units)
         run_dir = out
@@ -453,8 +463,29 @@ def demo_cmd(
     print(build_demo(out, units=units, progress=sys.stderr.isatty(), **given))
 
 
+def _one_line_on_interrupt(command):
+    """Ctrl-C that no stage reported itself (typer would exit 130 silently): the same one line."""
+    import functools
+
+    @functools.wraps(command)
+    def run(*args, **kwargs):
+        from .errors import interrupted
+
+        try:
+            return command(*args, **kwargs)
+        except KeyboardInterrupt:
+            raise interrupted("before the command finished; what it had saved is kept. Run the same command "
+                              "again to continue.") from None
+
+    return run
+
+
+for _c in app.registered_commands:
+    _c.callback = _one_line_on_interrupt(_c.callback)
+
+
 def main() -> None:
-    from .errors import UnitlensError
+    from .errors import UnitlensError, shown
 
     try:
         app()
@@ -462,8 +493,8 @@ def main() -> None:
         from .dist import fail
 
         fail(str(e))  # under torchrun the other ranks stop and quote it
-        print(f"Error: {e}", file=sys.stderr)
-        sys.exit(1)
-    except KeyboardInterrupt:
-        print("Interrupted.", file=sys.stderr)
+        print(f"Error: {shown(e)}", file=sys.stderr)  # one line, whatever a file name in it holds
+        sys.exit(e.status)
+    except KeyboardInterrupt:  # before or after a command ran (typer reports none in between)
+        print("Error: Interrupted.", file=sys.stderr)
         sys.exit(130)

@@ -30,8 +30,8 @@ import numpy as np
 import torch
 
 from ._cka import _cka_matrix, _cross, _MinibatchTally, _moments, _pooled_interval
-from .errors import UnitlensError
-from .store import Run, _atomic, now, safe_name, write_json
+from .errors import UnitlensError, interrupted
+from .store import Run, _atomic, check_folder, now, safe_name, write_json
 from .summary import _num
 
 DEAD_TOLERANCE = 1e-6  # a unit is dead when std(max) <= this * |mean(max)|: constant to float precision
@@ -372,6 +372,9 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
             done += len(batch.indices) + len(batch.failures)
             if bar:
                 bar.advance(done)
+    except KeyboardInterrupt:
+        raise interrupted(f"after {done} of {N} images; a comparison keeps no checkpoint, so nothing was written. "
+                          "Run the same command to start it again.") from None
     finally:
         if bar:
             bar.close()
@@ -505,6 +508,8 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
     >>> [(e["layer"], round(e["cka"], 3), e["most_changed"][:3]) for e in s["layers"]]  # doctest: +SKIP
     """
     _check(config)
+    if out is not None:
+        check_folder(Path(out))  # before the sweep, not after it
     runs = [_is_run(x) for x in (a, b)]
     if all(runs):
         if corpus is not None:

@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
+from .errors import shown
 from .store import write_npz
 
 SHEET_ROWS = 32
@@ -157,7 +158,7 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
             for (i, todo), (bxs, cells, err) in zip(items, results):
                 if err is not None:
                     if i not in failed:
-                        print(f"Warning: no crop from {corpus.files[i]}: {err}", file=sys.stderr)
+                        print(f"Warning: no crop from {shown(corpus.files[i])}: {err}", file=sys.stderr)
                         failed.add(i)
                     continue
                 for (p, s, u, col, kind, r, _b, _n), box, cell in zip(todo, bxs, cells):

@@ -8,8 +8,18 @@ from collections.abc import Iterable
 class UnitlensError(Exception):
     """A problem with the user's input or environment, phrased for the user.
 
-    The CLI prints it as a single ``Error: ...`` line and exits with status 1.
+    The CLI prints it as a single ``Error: ...`` line and exits with `status`: 1, or 130 (128 + SIGINT,
+    the shell's convention) when the user interrupted the command.
     """
+
+    def __init__(self, message: str, status: int = 1):
+        super().__init__(message)
+        self.status = status
+
+
+def interrupted(message: str) -> UnitlensError:
+    """The error for Ctrl-C: `message` says how far the command got and what was kept."""
+    return UnitlensError(f"Interrupted {message}", status=130)
 
 
 def closest(name: str, choices: Iterable[str], n: int = 3) -> list[str]:

@@ -18,7 +18,7 @@ import torch
 from . import dist
 from ._extract import forward_batch
 from ._progress import Progress
-from .errors import UnitlensError, shown
+from .errors import UnitlensError, interrupted, shown
 from .facets import THUMB, NearDuplicates, needs_pooled, thumbnails
 from .store import Run, read_json, read_npz, write_json, write_npz
 from .units import LayerUnits
@@ -327,7 +327,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     # is the job's progress to within a batch per rank.
     bar = Progress(N, start, "mining", "img") if progress and g.main else None
     last_save = time.monotonic()
-    interrupted = False
+    stopped = False
     try:
         for batch in batches(corpus, model.preprocess.size, start=start, batch_size=config.batch_size,
                              workers=config.workers, indices=shard):
@@ -366,16 +366,14 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                 checkpoint()
                 return run
     except KeyboardInterrupt:
-        interrupted = True
+        stopped = True
     finally:
         if bar:
             bar.close()
     checkpoint()
     tallies, colour, skipped, next_index = done
-    if interrupted:
-        raise UnitlensError(
-            f"Interrupted after {next_index} of {N} images; state saved. Run the same command to resume."
-        )
+    if stopped:
+        raise interrupted(f"after {next_index} of {N} images; state saved. Run the same command to resume.")
     merged = dist.merge_tallies(g, tallies, list(colour), list(skipped), corpus.files)
     if g.main:
         _check_usable(corpus, merged[0], merged[2])

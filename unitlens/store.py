@@ -22,7 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import UnitlensError
+from .errors import UnitlensError, shown
 
 FORMAT = 1
 _UMASK = os.umask(0)
@@ -62,8 +62,15 @@ def write_npz(path: Path, **arrays) -> None:
 
 
 def read_npz(path: Path) -> dict[str, np.ndarray]:
-    with np.load(path, allow_pickle=False) as z:
-        return {k: z[k] for k in z.files}
+    import zipfile
+    import zlib
+
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            return {k: z[k] for k in z.files}
+    except (zipfile.BadZipFile, zlib.error, EOFError, ValueError) as e:  # cut short or overwritten
+        raise UnitlensError(f"{shown(path)} is damaged ({e}). Run the command that wrote it again with --force "
+                            "to rebuild it.") from None
 
 
 def _jsonable(o):
@@ -85,11 +92,19 @@ def now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
+def check_folder(path: Path) -> None:
+    """Refuse an output or run folder that is an existing file (it would fail on the first write)."""
+    if path.exists() and not path.is_dir():
+        raise UnitlensError(f"{shown(path)} is a file, not a folder. Give a folder path (a new one is created), "
+                            "or move the file away.")
+
+
 class Run:
     """A run folder. Each stage reads what earlier stages wrote and writes its own part."""
 
     def __init__(self, path: str | Path):
         self.path = Path(path)
+        check_folder(self.path)
 
     @property
     def manifest_path(self) -> Path:

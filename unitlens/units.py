@@ -59,8 +59,11 @@ def parse_layers(model, layers: list[str], units: str | None = None) -> tuple[La
     out: dict[str, LayerUnits] = {}
     for name, spec in items:
         info = model.layer(name)
+        if spec is not None and not spec.strip():
+            raise UnitlensError(f"'{name}:' names no channels. Give them after the colon (e.g. {name}:0-63), or "
+                                f"write just '{name}' for all {info.channels} of them.")
         spec = spec if spec is not None else units
-        chosen = parse_ranges(spec, info.channels, layer=name) if spec else tuple(range(info.channels))
+        chosen = parse_ranges(spec, info.channels, layer=name) if spec is not None else tuple(range(info.channels))
         out[name] = LayerUnits(name, chosen)
     order = list(model.layers())
     return tuple(sorted(out.values(), key=lambda lu: order.index(lu.layer)))

@@ -7,7 +7,7 @@ import numpy as np
 import torch
 
 from .. import dist
-from ..errors import UnitlensError
+from ..errors import UnitlensError, interrupted
 from ..store import Run, _atomic, read_json, write_json, write_npz
 from ..facets import NaturalNeighbours, synth_neighbours
 from .evidence import assess
@@ -159,8 +159,8 @@ def _interruptible(batches, lu, table):
         yield from batches
     except KeyboardInterrupt:
         done = sum(str(c) in table["units"] for c in lu.units)
-        raise UnitlensError(f"Interrupted after {done} of {len(lu.units)} units of {lu.layer}; finished units "
-                            "are saved. Run the same command to resume.") from None
+        raise interrupted(f"after {done} of {len(lu.units)} units of {lu.layer}; finished units are saved. "
+                          "Run the same command to resume.") from None
 
 
 def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best, extract, near=None) -> dict:
