@@ -1,6 +1,7 @@
 """Mining: streaming top-K against brute force, determinism, resume, statistics."""
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -400,3 +401,81 @@ def test_a_finished_run_loses_the_checkpoint_a_kill_during_clean_up_left(tmp_pat
     (run.path / "mine" / "layer1" / ".index.npz.x1.tmp").write_bytes(b"half")
     mine(model, open_corpus(smooth_corpus), layers, tmp_path / "r", MineConfig(top_k=2, workers=0))
     assert sorted(p.name for p in (run.path / "mine").rglob("*") if "state" in p.name or p.suffix == ".tmp") == []
+
+
+def test_per_image_arrays_take_their_disk_blocks_when_created(tmp_path):
+    # A sparse memory map takes its blocks at the first write into each page; on a full disk that
+    # write kills the process with SIGBUS. Allocated up front, a full disk is an error at creation.
+    from unitlens.mining import _open_values
+
+    a = _open_values(tmp_path / "values.npy", (2000, 512), fresh=True)
+    st = os.stat(tmp_path / "values.npy")
+    assert st.st_blocks * 512 >= a.nbytes, (st.st_blocks * 512, a.nbytes)
+
+
+def _no_space(free):
+    import shutil
+
+    real = shutil.disk_usage
+    return lambda path: real(path)._replace(free=free)
+
+
+def test_too_little_free_space_is_refused_before_anything_is_written(tmp_path, smooth_corpus, r18_weights,
+                                                                      monkeypatch):
+    import shutil
+
+    from unitlens import UnitlensError
+    from unitlens.mining import space_needed
+    from unitlens.store import disk_bytes
+
+    model = load_model("torchvision:resnet18", str(r18_weights), size=32)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer2", "layer3:0-99"])
+    cfg = MineConfig(top_k=4, workers=0)
+    monkeypatch.setattr(shutil, "disk_usage", _no_space(72_000))
+    with pytest.raises(UnitlensError, match=r"Not enough free space for this mining pass .*needs about [\d.]+ MB, "
+                                            r"and the disk has 72 KB free.*resumes"):
+        mine(model, corpus, layers, tmp_path / "r", cfg)
+    assert not (tmp_path / "r").exists()
+    monkeypatch.undo()
+    run = mine(model, corpus, layers, tmp_path / "r", cfg)
+    # the estimate against what the pass really left on disk (the checkpoint, gone now, came on top)
+    written, estimate = disk_bytes(run.path / "mine"), space_needed(model, corpus, layers, cfg)
+    assert written <= estimate <= 4 * written, (written, estimate)
+
+
+def test_a_disk_filling_up_mid_pass_is_one_error_line_and_the_rerun_resumes(tmp_path, smooth_corpus, r18_weights,
+                                                                           monkeypatch, capsys):
+    import errno
+
+    import unitlens.store as store
+    from conftest import cli
+
+    args = ["mine", "torchvision:resnet18", "--weights", r18_weights, "--size", "32", "--corpus", smooth_corpus,
+            "--layers", "layer1:0-7", "--top", "3", "--workers", "0", "--batch-size", "4", "--checkpoint-every", "0"]
+    code, _, err = cli(capsys, *args, "--out", tmp_path / "whole")
+    assert code == 0, err
+    real, writes = store._atomic, []
+
+    def full_at_the_third_checkpoint(path, write):
+        writes.append(path.name)
+        if writes.count("state.npz") == 3:  # the write itself fails, as on a full disk
+
+            def write(f):
+                raise OSError(errno.ENOSPC, "No space left on device")
+        real(path, write)
+
+    monkeypatch.setattr(store, "_atomic", full_at_the_third_checkpoint)
+    code, _, err = cli(capsys, *args, "--out", tmp_path / "r")
+    assert code == 1 and "Traceback" not in err and err.count("Error: ") == 1, err
+    line = err.strip().splitlines()[-1]
+    assert line.startswith("Error: The disk holding") and "writing " in line and "state.npz" in line, line
+    assert re.search(r"needed about [\d.]+ [KM]B", line) and "resumes" in line, line
+    monkeypatch.undo()
+    assert json.loads((tmp_path / "r" / "mine" / "state.json").read_text())["next"] == 8  # two batches kept
+    assert not list((tmp_path / "r").rglob("*.tmp"))
+    code, _, err = cli(capsys, *args, "--out", tmp_path / "r")
+    assert code == 0, err
+    a, b = Run(tmp_path / "whole").index("layer1"), Run(tmp_path / "r").index("layer1")
+    for key in a:
+        np.testing.assert_array_equal(a[key], b[key], err_msg=key)

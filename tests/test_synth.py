@@ -494,3 +494,15 @@ def test_resumed_synthesis_leaves_no_temporary_files_and_force_keeps_foreign_one
     synthesize(digits_model, layers, tmp_path / "r", SynthConfig(steps=5, batch_size=2, **QUICK), force=True)
     assert (tmp_path / "r" / "synth" / "README.txt").read_text() == "mine"
     assert json.loads((d / "units.json").read_text())["units"]["0"]["images"][0]["steps"] == 5
+
+
+def test_synthesis_is_refused_up_front_when_its_images_do_not_fit_on_the_disk(tmp_path, r18, monkeypatch):
+    import shutil
+
+    real = shutil.disk_usage
+    monkeypatch.setattr(shutil, "disk_usage", lambda p: real(p)._replace(free=50_000))
+    layers = parse_layers(r18, ["layer2:0-7"])  # 8 units of 32x32 RGB: about 8 x (3 KB + 64 KB)
+    with pytest.raises(UnitlensError, match=r"Not enough free space for this synthesis .* needs about 5\d\d KB, "
+                                            r"and the disk has 50 KB free"):
+        synthesize(r18, layers, tmp_path / "r", SynthConfig(steps=2, **QUICK))
+    assert not (tmp_path / "r" / "synth").exists()

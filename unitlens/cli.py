@@ -498,3 +498,11 @@ def main() -> None:
     except KeyboardInterrupt:  # before or after a command ran (typer reports none in between)
         print("Error: Interrupted.", file=sys.stderr)
         sys.exit(130)
+    except OSError as e:  # a full disk outside the stages that check their space (store.space_for)
+        import errno
+
+        if e.errno not in (errno.ENOSPC, errno.EDQUOT):
+            raise
+        print(f"Error: The disk is full ({e.strerror}, writing {shown(e.filename or '?')}). Free some space and "
+              "run the same command again; it resumes from what is saved.", file=sys.stderr)
+        sys.exit(1)

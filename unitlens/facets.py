@@ -132,7 +132,7 @@ def finish_embedding(layer_dir: Path, skipped: np.ndarray) -> dict:
 
     skipped: (N,) bool, images that could not be decoded (their rows are left as written: zero).
     """
-    from .store import write_npz
+    from .store import new_array, write_npz
 
     pooled = layer_dir / "pooled.npy"
     if not pooled.is_file():
@@ -147,7 +147,7 @@ def finish_embedding(layer_dir: Path, skipped: np.ndarray) -> dict:
             sample = ok[np.linspace(0, len(ok) - 1, min(len(ok), PCA_SAMPLE)).round().astype(int)] if len(ok) else ok
             mean, comp = _pca(x[sample].astype(np.float64), EMBED_DIM)
             path, tmp = layer_dir / "embed.npy", layer_dir / ".embed.npy.tmp"
-            out = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.float16, shape=(N, comp.shape[0]))
+            out = new_array(tmp, (N, comp.shape[0]), np.float16)
             for a in range(0, N, 8192):
                 out[a:a + 8192] = np.clip((x[a:a + 8192].astype(np.float64) - mean) @ comp.T, -65504, 65504)
             out.flush()

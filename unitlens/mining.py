@@ -19,8 +19,8 @@ from . import dist
 from ._extract import forward_batch
 from ._progress import Progress
 from .errors import UnitlensError, interrupted, shown
-from .facets import THUMB, NearDuplicates, needs_pooled, thumbnails
-from .store import Run, read_json, read_npz, write_json, write_npz
+from .facets import EMBED_DIM, THUMB, NearDuplicates, needs_pooled, thumbnails
+from .store import Run, disk_bytes, new_array, read_json, read_npz, space_for, write_json, write_npz
 from .units import LayerUnits
 
 PAD = 2**62  # image index of an empty slot; larger than any real index so real images win ties
@@ -200,8 +200,36 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
          *, progress: bool = False, force: bool = False, _stop_after: int | None = None) -> Run:
     """Mine exemplars for `layers` over `corpus` into the run folder `out`; resumes if interrupted.
 
-    Returns the Run. Re-running a finished mining pass with the same settings does nothing.
+    Returns the Run. Re-running a finished mining pass with the same settings does nothing. Refused
+    up front when the disk lacks the space the pass will write; a disk that fills up during the
+    pass is one UnitlensError, and the same call then resumes.
     """
+    run = Run(out)
+    finished = not force and ((read_json(run.manifest_path) or {}).get("mine") or {}).get("done")
+    need = 0 if finished else max(0, space_needed(model, corpus, layers, config) - disk_bytes(run.path / "mine"))
+    with space_for(run.path, need, "this mining pass"):
+        return _mine(model, corpus, layers, out, config, progress=progress, force=force, _stop_after=_stop_after)
+
+
+def space_needed(model, corpus, layers: tuple[LayerUnits, ...], config: MineConfig) -> int:
+    """About how many bytes a whole mining pass writes: per-image rows, checkpoint and index, crop
+    sheets, embeddings (an estimate for the free-space check; the rows are exact)."""
+    N, n_classes = len(corpus), max(len(corpus.classes), 1)
+    total = N * 3 * THUMB * THUMB if config.dedupe else 0
+    for lu in layers:
+        U, C = len(lu.units), model.layer(lu.layer).channels
+        if config.keep_values:
+            total += N * (2 * U + (C if needs_pooled(lu.units, C) else 0)) * _VALUE_BYTES
+            total += N * EMBED_DIM * 2 if C > EMBED_DIM else 0  # the PCA embedding (float16)
+        tally = U * 8 * (6 * config.top_k + HIST_BINS + 8 + n_classes)  # LayerTally.STATE, 8-byte numbers
+        total += 3 * tally  # the checkpoint, its temporary copy while it is written, the index
+        # crop sheets: JPEG at quality 88 taken as 1/8 of raw RGB (measured 1/8.8 on crops of noise images,
+        # which compress worst; an estimate, not a bound)
+        total += U * 2 * config.top_k * config.thumb * config.thumb * 3 // 8
+    return total
+
+
+def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -> Run:
     from .corpus import batches
 
     run = Run(out)
@@ -404,13 +432,16 @@ def _check_usable(corpus, tallies: dict, skipped: list) -> None:
                         "run again with --force.")
 
 
+_VALUE_BYTES = 2  # per-image rows are float16 (_f16)
+
+
 def _f16(t: torch.Tensor) -> np.ndarray:
     return t.clamp(-65504, 65504).numpy().astype(np.float16)
 
 
 def _open_values(path: Path, shape, fresh: bool, dtype=np.float16):
     if fresh:
-        return np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
+        return new_array(path, shape, dtype)
     a = np.load(path, mmap_mode="r+") if path.is_file() else None
     if a is None or a.shape != shape or a.dtype != dtype:
         # Resuming over a missing or foreign file would leave zeros in the rows mined before.

@@ -13,7 +13,9 @@ Layout (every file readable without unitlens):
 """
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
+import errno
 import json
 import os
 import re
@@ -39,9 +41,80 @@ def _atomic(path: Path, write) -> None:
             os.fsync(f.fileno())
         os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes private files; a run folder is shared like any
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as e:
         Path(tmp).unlink(missing_ok=True)
+        if isinstance(e, OSError) and e.filename is None:  # a failed write names no file; say which
+            raise OSError(e.errno, e.strerror, str(path)) from None
         raise
+
+
+def new_array(path: Path, shape, dtype) -> np.memmap:
+    """A new .npy memory map whose blocks are taken on disk now. A sparse one takes them at the first
+    write into each page, and on a full disk that write kills the process (SIGBUS), not an error."""
+    a = np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=tuple(shape))
+    try:
+        with open(path, "r+b") as f:
+            size = os.fstat(f.fileno()).st_size
+            if hasattr(os, "posix_fallocate"):
+                os.posix_fallocate(f.fileno(), 0, size)  # glibc writes the blocks where the file system cannot
+            else:  # write the zeros of the data area (after the .npy header) for real
+                f.seek(size - a.nbytes)
+                for left in range(a.nbytes, 0, -(1 << 24)):
+                    f.write(bytes(min(left, 1 << 24)))
+                f.flush()
+                os.fsync(f.fileno())
+    except OSError as e:
+        del a
+        Path(path).unlink(missing_ok=True)
+        raise OSError(e.errno, e.strerror, str(path)) from None  # posix_fallocate names no file
+    return a
+
+
+def disk_bytes(folder: Path) -> int:
+    """Bytes the files under `folder` take on disk (0 if it does not exist)."""
+    total = 0
+    for p in Path(folder).rglob("*"):
+        if p.is_file():
+            st = p.lstat()
+            total += st.st_blocks * 512 if hasattr(st, "st_blocks") else st.st_size
+    return total
+
+
+def _size(n: float) -> str:
+    for unit in ("bytes", "KB", "MB", "GB"):
+        if n < 1000 or unit == "GB":
+            return f"{n:.0f} {unit}" if unit == "bytes" else f"{n:.3g} {unit}"
+        n /= 1000
+    raise AssertionError("unreachable")
+
+
+def _free(path: Path) -> int:
+    import shutil
+
+    path = Path(os.path.abspath(path))
+    while not path.exists():  # the run folder may not exist yet: the disk it will be on
+        path = path.parent
+    return shutil.disk_usage(path).free
+
+
+@contextlib.contextmanager
+def space_for(path: Path, need: int, what: str):
+    """Refuse to start `what` when the disk of `path` has less than `need` bytes free, and turn a
+    full disk met inside (ENOSPC, a quota) into one UnitlensError: a rerun resumes from what was saved."""
+    free = _free(path)
+    if free < need:
+        raise UnitlensError(f"Not enough free space for {what} in {shown(path)}: it needs about {_size(need)}, and "
+                            f"the disk has {_size(free)} free. Free some space (or give --out a folder on another "
+                            "disk) and run the same command; it resumes from what is saved.")
+    try:
+        yield
+    except OSError as e:
+        if e.errno not in (errno.ENOSPC, errno.EDQUOT):
+            raise
+        raise UnitlensError(f"The disk holding {shown(path)} filled up ({e.strerror}, writing {shown(e.filename or '?')}): "
+                            f"{what} needed about {_size(need)} when it started, and the disk has "
+                            f"{_size(_free(path))} free now. Free some space and run the same command; it resumes "
+                            "from what is saved.") from None
 
 
 def write_json(path: Path, obj) -> None:

@@ -8,7 +8,7 @@ import torch
 
 from .. import dist
 from ..errors import UnitlensError, interrupted
-from ..store import Run, _atomic, read_json, write_json, write_npz
+from ..store import Run, _atomic, disk_bytes, read_json, space_for, write_json, write_npz
 from ..facets import NaturalNeighbours, synth_neighbours
 from .evidence import assess
 from .objectives import Objective, channel
@@ -68,8 +68,11 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
         run.save_manifest(manifest)
     g.check_shared(run.path)
 
-    for lu in layers:
-        _layer(run, model, lu, config, objective, term, sign, colour, size, progress)
+    need = sum(_bytes_per_unit(config, size) * len(lu.units) for lu in layers)
+    with space_for(run.path, max(0, need - sum(disk_bytes(run.layer_dir(lu.layer, "synth")) for lu in layers)),
+                   "this synthesis"):
+        for lu in layers:
+            _layer(run, model, lu, config, objective, term, sign, colour, size, progress)
     if g.main:  # every rank is past its last write (the barrier closing _layer)
         run.remove_stage("synth", ())  # half-written files of a process killed mid-write (store._atomic)
         m = run.manifest()
@@ -77,6 +80,12 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
         run.save_manifest(m)
     g.barrier("the end of synthesis")
     return run
+
+
+def _bytes_per_unit(config: SynthConfig, size: int) -> int:
+    """At most what one unit writes: 8-bit RGB PNGs (raw size: noise-like images hardly compress),
+    the float32 traces, and about 64 KB of record and nearest-image strip (an estimate)."""
+    return config.per_unit * (size * size * 3 + 4 * config.steps) + 65536
 
 
 def _check_mined(run: Run, manifest: dict) -> None:
