@@ -11,14 +11,13 @@ import random
 import pytest
 import torch
 import torchvision
+from conftest import run_cli
 from test_geometry import positive_
 from torch import nn
 
 from unitlens import load_model
 from unitlens.errors import UnitlensError
 from unitlens.model import LoadedModel, Preprocess
-
-torch.set_grad_enabled(True)
 
 
 class _Stop(Exception):
@@ -239,3 +238,51 @@ def test_token_layers_are_named_and_refused():
     assert tokens["encoder.layers.encoder_layer_0"] == (197, 768)
     with pytest.raises(UnitlensError, match=r"token sequence \(N x 197 x 768\).*N x C x H x W or N x H x W x C"):
         model.layer("encoder.layers.encoder_layer_0")
+
+
+# --- a model with a fixed input size --------------------------------------------------------
+
+FIXED = """import torch
+from torch import nn
+PREPROCESS = {"size": 32}
+class Fixed(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+    def forward(self, x):
+        torch._assert(x.shape[-1] == 32, f"Wrong image width! Expected 32 but got {x.shape[-1]}!")
+        return self.conv(x)
+def build():
+    return Fixed()
+"""
+
+
+def test_synthesis_checks_the_input_size_first(tmp_path, monkeypatch):
+    import unitlens.synth.pipeline as pipeline
+    from unitlens import parse_layers, synthesize
+    from unitlens.synth import SynthConfig
+
+    code = tmp_path / "fixed.py"
+    code.write_text(FIXED)
+    model = load_model(f"{code}:build")
+    chosen = parse_layers(model, ["conv:0-1"])
+    out = tmp_path / "run"
+    with pytest.raises(UnitlensError, match=r"does not take 48x48 images.*Wrong image width.*--size 32"):
+        synthesize(model, chosen, out, SynthConfig(size=48, steps=2, checks=0))
+    assert not out.exists()  # nothing written, so nothing for the next attempt to trip on
+    r = run_cli("synth", f"{code}:build", "--layers", "conv:0", "--size", "48", "--out", out, check=False)
+    assert r.returncode == 1 and r.stderr.strip().splitlines()[-1].startswith("Error: ") \
+        and "Traceback" not in r.stderr, r.stderr
+
+    # a start that stops before its first unit leaves settings behind; other settings need no --force
+    def dies(*_a, **_k):
+        raise RuntimeError("stopped in the first batch")
+
+    monkeypatch.setattr(pipeline, "iter_units", dies)
+    with pytest.raises(RuntimeError):
+        synthesize(model, chosen, out, SynthConfig(steps=3, checks=0))
+    monkeypatch.undo()
+    synthesize(model, chosen, out, SynthConfig(steps=2, checks=0))
+    assert sorted(p.name for p in out.glob("synth/*/unit-*.png")) == ["unit-0000-0.png", "unit-0001-0.png"]
+    with pytest.raises(UnitlensError, match="--force"):  # finished units are still protected
+        synthesize(model, chosen, out, SynthConfig(steps=3, checks=0))

@@ -111,6 +111,22 @@ class LoadedModel:
             return run
         return lambda x: {k: v.to(x.device) for k, v in run(x.to(self.device, non_blocking=True)).items()}
 
+    def check_size(self, size: int, names) -> None:
+        """Raise a clear error before any work when the network refuses a size x size input
+        (a vision transformer's fixed 224, a model whose maps vanish at a small size)."""
+        try:
+            with torch.no_grad():
+                maps = self.extractor(names)(torch.zeros(1, 3, size, size))
+        except UnitlensError:
+            raise
+        except Exception as e:
+            maps = f"{e.__class__.__name__}: {str(e)[:200]}"
+        if isinstance(maps, str) or any(0 in v.shape[2:] for v in maps.values()):
+            why = maps if isinstance(maps, str) else "a feature map is empty"
+            p = self.preprocess.size
+            raise UnitlensError(f"{self.spec} does not take {size}x{size} images up to {', '.join(names)} "
+                                f"({why}); its input size is {p}x{p}. Use --size {p}, or leave --size out.")
+
     def normalize(self, images: torch.Tensor) -> torch.Tensor:
         """uint8 (B,3,H,W) or float in [0,1] -> normalised network input (float32)."""
         x = images.float()
