@@ -8,6 +8,7 @@ comparison all use (LoadedModel.extractor), and the boxes are the layer table's 
 """
 import random
 
+import numpy as np
 import pytest
 import torch
 import torchvision
@@ -286,3 +287,32 @@ def test_synthesis_checks_the_input_size_first(tmp_path, monkeypatch):
     assert sorted(p.name for p in out.glob("synth/*/unit-*.png")) == ["unit-0000-0.png", "unit-0001-0.png"]
     with pytest.raises(UnitlensError, match="--force"):  # finished units are still protected
         synthesize(model, chosen, out, SynthConfig(steps=3, checks=0))
+
+
+# --- mining reads the same layers ----------------------------------------------------------
+
+@pytest.mark.parametrize("arch,layer,units", [("resnet18", "layer1.0.relu_1", [0, 5, 63]),
+                                              ("convnext_tiny", "features.1.0.block.3", [0, 300, 383])])
+def test_mining_reads_the_call_and_the_channel(arch, layer, units, tmp_path, smooth_corpus):
+    from unitlens import MineConfig, mine, open_corpus, parse_layers
+    from unitlens.corpus import batches
+
+    torch.manual_seed(0)
+    model = load_model(f"torchvision:{arch}", size=64)
+    listing = tmp_path / "four.txt"
+    listing.write_text("".join(f"{p}\n" for p in sorted(smooth_corpus.iterdir())[:4]))
+    corpus = open_corpus(listing)
+    run = mine(model, corpus, parse_layers(model, [f"{layer}:{','.join(map(str, units))}"]), tmp_path / "run",
+               MineConfig(top_k=4, batch_size=4, workers=0))
+    idx = run.index(layer)
+    b = next(iter(batches(corpus, 64, batch_size=4, workers=0)))
+    out = every_call(model.module, model.normalize(b.images))[layer]
+    # the oracle reads channel u where the module put it: dim 1, or the last dim when channels-last
+    maps = out[..., units].permute(0, 3, 1, 2) if model.layer(layer).layout == "NHWC" else out[:, units]
+    assert maps.shape[1:] == (len(units), 16, 16)
+    best, where = maps.flatten(2).max(2)                                    # (N, U)
+    for j in range(len(units)):
+        order = torch.argsort(-best[:, j], stable=True)
+        np.testing.assert_allclose(idx["top_score"][j], best[order, j].numpy(), rtol=1e-5, atol=1e-5)
+        assert idx["top_image"][j].tolist() == b.indices[order].tolist()
+        assert (idx["top_y"][j] * 16 + idx["top_x"][j]).tolist() == where[order, j].tolist()
