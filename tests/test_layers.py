@@ -316,3 +316,24 @@ def test_mining_reads_the_call_and_the_channel(arch, layer, units, tmp_path, smo
         np.testing.assert_allclose(idx["top_score"][j], best[order, j].numpy(), rtol=1e-5, atol=1e-5)
         assert idx["top_image"][j].tolist() == b.indices[order].tolist()
         assert (idx["top_y"][j] * 16 + idx["top_x"][j]).tolist() == where[order, j].tolist()
+
+
+# --- outputs of functions -------------------------------------------------------------------
+
+def test_function_outputs_name_the_nearest_layer():
+    from unitlens.model import layer_notes
+
+    # (model, what the forward makes with a function, the nearest module output): GoogLeNet's
+    # block ends in torch.cat and its BasicConv2d in F.relu; ResNet adds before the shared ReLU
+    models = {}
+    for arch, made, nearest in [("googlenet", "inception3a.cat", "inception3a"),
+                                ("googlenet", "inception3a.branch2.0.relu", "inception3a.branch2.0"),
+                                ("resnet18", "layer1.0.add", "layer1.0.relu_1")]:
+        if arch not in models:
+            models[arch] = load_model(f"torchvision:{arch}", size=64)
+        model = models[arch]
+        assert made not in model.layers() and nearest in model.layers()
+        with pytest.raises(UnitlensError, match=rf"'{made}' is made by a function.*Nearest layer: {nearest} "):
+            model.layer(made)
+        if arch == "resnet18":
+            assert f"{made} -> {nearest}" in " ".join(layer_notes(model))

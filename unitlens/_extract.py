@@ -99,33 +99,80 @@ def _clone_outputs(graph) -> None:
     graph.recompile()
 
 
-def _fx_graph(module: nn.Module, layers: dict[str, tuple[str, int]], reused: set[str]):
-    """torchvision's graph feature extractor for `layers` ({layer: (module, call)}), and
-    {layer: graph node name}; several layers may share a node (a block and its last op).
-
-    Its node names differ from ours where a module is called twice or is named like a repeated
-    call (a module 'act_1' beside 'act'), so leaf modules are found by target and call order."""
+def _traced(module: nn.Module):
+    """torchvision's traced graph of `module`: [(node, node name)] in order, and {node: layer name}
+    for module calls. Its node names differ from ours where a module is called twice or is named
+    like a repeated call (a module 'act_1' beside 'act'), so module calls are named by target."""
     from torchvision.models import feature_extraction as fe
 
     tracer = fe.NodePathTracer(**fe._set_default_tracer_kwargs(None))
-    tracer.trace(module)
-    calls, node_of, order = Calls(n for n, _ in module.named_modules()), {}, []
-    for node, qualname in tracer.node_to_qualname.items():
-        order.append(qualname)
+    graph = tracer.trace(module)
+    calls, layer_of = Calls(n for n, _ in module.named_modules()), {}
+    for node in tracer.node_to_qualname:
         if node.op == "call_module":
-            node_of[calls.next(node.target)] = qualname
+            layer_of[node] = calls.next(node.target)
+    return graph, list(tracer.node_to_qualname.items()), layer_of
+
+
+def _fx_graph(module: nn.Module, layers: dict[str, tuple[str, int]], reused: set[str]):
+    """torchvision's graph feature extractor for `layers` ({layer: (module, call)}), and
+    {layer: graph node name}; several layers may share a node (a block and its last op)."""
+    from torchvision.models import feature_extraction as fe
+
+    _, order, layer_of = _traced(module)
+    node_of = {layer: dict(order)[node] for node, layer in layer_of.items()}
+    leaves = {node.target for node in layer_of}
     nodes = {}
     for layer, (mod, k) in layers.items():
         if layer in node_of:
             nodes[layer] = node_of[layer]
-        elif k == 0 and mod not in reused and mod not in calls._count:
+        elif k == 0 and mod not in reused and mod not in leaves:
             # a block: its output is the last node inside it, as torchvision reads blocks
-            nodes[layer] = [q for q in order if q.startswith(mod + ".")][-1]  # IndexError: none inside
+            nodes[layer] = [q for _, q in order if q.startswith(mod + ".")][-1]  # IndexError: none inside
         else:
             raise LookupError(f"{layer}: no graph node is this call")
     graph = fe.create_feature_extractor(module, return_nodes={q: q for q in set(nodes.values())})
     _clone_outputs(graph)
     return graph.eval(), nodes
+
+
+def function_outputs(model) -> dict[str, tuple[str, str]]:
+    """{graph node name: (nearest layer, how it relates)} for feature maps made by functions in a
+    forward (torch.cat, x + y, F.relu): they are not module outputs, so not layers. Empty when the
+    model does not trace. The nearest layer is the block returning the map, else the first module
+    applied to it."""
+    from torch.fx.passes.shape_prop import ShapeProp
+
+    table = model.layers()
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            graph, order, layer_of = _traced(model.module)
+            gm = torch.fx.GraphModule(model.module, graph)
+            ShapeProp(gm).propagate(torch.zeros(1, 3, model.preprocess.size, model.preprocess.size))
+    except Exception:  # does not trace: the hooks see module outputs only
+        return {}
+    out = {}
+    for node, name in order:
+        shape = getattr(node.meta.get("tensor_meta"), "shape", None)
+        if node.op not in ("call_function", "call_method") or shape is None or len(shape) != 4:
+            continue
+        block = name.rpartition(".")[0]
+        inside = [q for _, q in order if q.startswith(block + ".")]
+        if block in table and inside and inside[-1] == name:
+            out[name] = (block, f"{block} returns it")
+            continue
+        todo, seen = list(node.users), set()
+        while todo:  # breadth first through functions to the first module applied to it
+            user = todo.pop(0)
+            if user in seen:
+                continue
+            seen.add(user)
+            if user in layer_of and layer_of[user] in table:
+                out[name] = (layer_of[user], "the first module applied to it")
+                break
+            todo += list(user.users)
+    return out
 
 
 class Extractor:

@@ -85,6 +85,15 @@ class LoadedModel:
                 f"Run `unitlens layers {self.spec}` to list the layers it can read."
             )
         if name not in table:
+            from ._extract import function_outputs
+
+            fn = function_outputs(self).get(name)
+            if fn:
+                raise UnitlensError(
+                    f"'{name}' is made by a function in the forward of {self.spec} (torch.cat, +, F.relu...), "
+                    f"not by a module, so it cannot be chosen: layers are module outputs. Nearest layer: "
+                    f"{fn[0]} ({fn[1]})."
+                )
             near = closest(name, table)
             hint = f" Closest: {', '.join(near)}." if near else ""
             raise UnitlensError(
@@ -443,6 +452,14 @@ def layer_notes(model: LoadedModel) -> list[str]:
     notes = ["Layers are outputs of modules; a module run several times in one forward pass gives one layer "
              "per call (name, name_1, name_2, ...). Units are channels; channels-last maps are read along "
              "their last dim."]
+    from ._extract import function_outputs
+
+    made = function_outputs(model)
+    if made:
+        shown = "; ".join(f"{n} -> {layer}" for n, (layer, _) in list(made.items())[:4])
+        more = f" and {len(made) - 4} more" if len(made) > 4 else ""
+        notes.append(f"Feature maps made by functions (torch.cat, +, F.relu) are not layers; nearest layer "
+                     f"(the block returning it, else the first module applied to it): {shown}{more}.")
     tokens = model.token_layers()
     if tokens:
         first, (t, c) = next(iter(tokens.items()))
