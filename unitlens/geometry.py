@@ -72,9 +72,11 @@ class Field:
 def receptive_fields(module: torch.nn.Module, input_size: int | tuple[int, int],
                      layers: Iterable[str] | None = None, *,
                      global_context: bool = True) -> dict[str, Field]:
-    """Field of every named submodule whose output is a 4-D tensor, for an (h, w) input.
+    """Field of every submodule call whose output is a 4-D map, for an (h, w) input.
 
-    Names are those of ``module.named_modules()`` ('layer3', 'features.10', '' for the root).
+    Names are those of ``module.named_modules()`` ('layer3', 'features.10', '' for the root);
+    a module called several times gives one name per call ('relu', 'relu_1', see _calls).
+    Maps may be (B, C, H, W) or (B, H, W, C) (``Field.channels_last``).
     ``layers`` restricts the result (and the checks) to those names. The inside of a
     TorchScript module cannot be observed: only its own output is reported.
     ``global_context=False`` treats inputs shared by every position (squeeze-excitation
