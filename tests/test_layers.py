@@ -337,3 +337,13 @@ def test_function_outputs_name_the_nearest_layer():
             model.layer(made)
         if arch == "resnet18":
             assert f"{made} -> {nearest}" in " ".join(layer_notes(model))
+
+
+def test_layers_command_says_what_is_left_out():
+    r = run_cli("layers", "torchvision:resnet18", "--size", "64")
+    row = next(line for line in r.stdout.splitlines() if line.startswith("layer1.0.relu_1 "))
+    assert "call 2 of layer1.0.relu" in row and " 27 " in row  # 27 px: the block output's field
+    assert "layer1.0.add -> layer1.0.relu_1" in r.stdout
+    r = run_cli("layers", "torchvision:vit_b_16")
+    assert "Not listed: 124 layers output token sequences (N x T x C" in r.stdout
+    assert "N x C x H x W or N x H x W x C" in r.stdout

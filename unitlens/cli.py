@@ -112,13 +112,14 @@ def layers(
     p = m.preprocess
     print(f"{m.spec}  input 3x{p.size}x{p.size}  ({p.source})")
     print(f"{'layer':<34} {'C x H x W':>16} {'field':>9} {'stride':>7} {'offset':>8}  kind")
+    reused = {r["module"] for r in rows if r["call"]}
     for r in rows:
         shape = f"{r['channels']}x{r['height']}x{r['width']}"
         fs = "x".join(map(str, dict.fromkeys(r["rf_size_hw"]))) if r["rf_size_hw"] else "?"
         st = "x".join(map(str, dict.fromkeys(r["rf_stride_hw"]))) if r["rf_stride_hw"] else "?"
         off = "/".join(f"{v:g}" for v in dict.fromkeys(r["rf_offset_hw"])) if r["rf_offset_hw"] else "?"
         kind = ["block" if r["block"] else "op"]
-        kind += [f"call {r['call'] + 1} of {r['module']}"] if r["call"] else []
+        kind += [f"call {r['call'] + 1} of {r['module']}"] if r["module"] in reused else []
         kind += {"NHWC": ["channels-last"], "?": ["layout unknown: not selectable"]}.get(r["layout"], [])
         print(f"{r['name']:<34} {shape:>16} {fs:>9} {st:>7} {off:>8}  {', '.join(kind)}")
     for note in layer_notes(m):
