@@ -239,6 +239,11 @@ def test_token_layers_are_named_and_refused():
     assert tokens["encoder.layers.encoder_layer_0"] == (197, 768)
     with pytest.raises(UnitlensError, match=r"token sequence \(N x 197 x 768\).*N x C x H x W or N x H x W x C"):
         model.layer("encoder.layers.encoder_layer_0")
+    from unitlens.model import layer_notes
+
+    note = layer_notes(model)[-1]  # what `unitlens layers` prints under the table
+    assert note.startswith("Not listed: 124 layers output token sequences (N x T x C") \
+        and "N x C x H x W or N x H x W x C" in note
 
 
 # --- a model with a fixed input size --------------------------------------------------------
@@ -344,6 +349,3 @@ def test_layers_command_says_what_is_left_out():
     row = next(line for line in r.stdout.splitlines() if line.startswith("layer1.0.relu_1 "))
     assert "call 2 of layer1.0.relu" in row and " 27 " in row  # 27 px: the block output's field
     assert "layer1.0.add -> layer1.0.relu_1" in r.stdout
-    r = run_cli("layers", "torchvision:vit_b_16")
-    assert "Not listed: 124 layers output token sequences (N x T x C" in r.stdout
-    assert "N x C x H x W or N x H x W x C" in r.stdout
