@@ -1,8 +1,8 @@
 """What a layer is, for every architecture: one call of a module, read channels-first.
 
 Oracles: plain-torch forward hooks recording every call of every module (cloned at the call),
-and the gradient support of one feature position of that call (float64, positive weights so
-nothing cancels, max pooling swapped for average pooling of the same window so the gradient
+and the gradient support of one feature position of that call (positive weights and input so
+nothing cancels or switches off, max pooling swapped for average pooling of the same window so the gradient
 reaches the whole window). The extractor under test is the one mining, synthesis, probe and
 comparison all use (LoadedModel.extractor), and the boxes are the layer table's fields.
 """
@@ -80,13 +80,20 @@ def call_output(module: nn.Module, name: str, k: int, x: torch.Tensor) -> torch.
 
 def gradient_support(module, info, size: int, pos) -> tuple[int, int, int, int]:
     """(x0, y0, x1, y1) of the input pixels with nonzero gradient at one position of a layer."""
-    x = (torch.rand(1, 3, size, size, dtype=torch.float64) + 0.5).requires_grad_()
+    dtype = next(module.parameters()).dtype
+    x = (torch.rand(1, 3, size, size, dtype=dtype) + 0.5).requires_grad_()
     y = call_output(module, info.module, info.call, x)
     y = y.permute(0, 3, 1, 2) if info.layout == "NHWC" else y                # (1, C, H, W)
     y[0, :, pos[0], pos[1]].sum().backward()
     g = x.grad[0].abs().sum(0)                                              # (H, W)
     rows, cols = g.sum(1).nonzero()[:, 0], g.sum(0).nonzero()[:, 0]
     return int(cols.min()), int(rows.min()), int(cols.max()) + 1, int(rows.max()) + 1
+
+
+def positive(module: nn.Module) -> nn.Module:
+    """test_geometry's positive weights, in float32: CPU kernels for float64 convolutions
+    (ConvNeXt's depthwise 7x7) are many times slower, and nonzero gradients stay nonzero."""
+    return positive_(module).float()
 
 
 def wrap(module: nn.Module, size: int, spec: str) -> LoadedModel:
@@ -148,7 +155,7 @@ def check_layers(model: LoadedModel, names, size: int, fields=None):
 def test_reused_module_gives_one_layer_per_call():
     for dynamic in (False, True):
         torch.manual_seed(0)
-        model = wrap(positive_(Reuse(dynamic)), 24, "reuse")
+        model = wrap(positive(Reuse(dynamic)), 24, "reuse")
         table = model.layers()
         assert [n for n in table if "act" in n] == ["act", "act_call1", "act_call2", "act_1"]
         assert (table["act"].field.size, table["act_call1"].field.size, table["act_call2"].field.size) \
@@ -167,13 +174,13 @@ def boxes_to_check(table, n_reused: int, n_other: int) -> list[str]:
 
 def test_resnet18_every_layer():
     torch.manual_seed(0)
-    model = wrap(positive_(avg_pools(torchvision.models.resnet18())), 64, "resnet18")
+    model = wrap(positive(avg_pools(torchvision.models.resnet18())), 64, "resnet18")
     table = model.layers()
     # the block's second ReLU call is the block output, and its field is the block's
     assert table["layer1.0.relu_1"].field == table["layer1.0"].field != table["layer1.0.relu"].field
     assert table["layer1.0.relu"].field == table["layer1.0.bn1"].field
     assert sum(i.call > 0 for i in table.values()) == 8  # one per BasicBlock
-    check_layers(model, list(table), 64, fields=boxes_to_check(table, 8, 8))
+    check_layers(model, list(table), 64, fields=boxes_to_check(table, 4, 4))
 
 
 def test_inplace_relu_does_not_change_earlier_layers():
@@ -191,11 +198,11 @@ def test_inplace_relu_does_not_change_earlier_layers():
 def test_zoo_sampled_layers(arch):
     torch.manual_seed(0)
     kw = dict(init_weights=False, aux_logits=False) if arch == "googlenet" else {}
-    model = wrap(positive_(avg_pools(getattr(torchvision.models, arch)(**kw))), 64, arch)
+    model = wrap(positive(avg_pools(getattr(torchvision.models, arch)(**kw))), 64, arch)
     table = model.layers()
     # Bottleneck runs its ReLU three times; GoogLeNet reuses nothing
     assert sum(i.call > 0 for i in table.values()) == (32 if arch == "resnet50" else 0)
-    check_layers(model, list(table), 64, fields=boxes_to_check(table, 4, 6))
+    check_layers(model, list(table), 64, fields=boxes_to_check(table, 4, 4))
 
 
 def module_channels(m: nn.Module) -> int | None:
@@ -227,7 +234,8 @@ def test_channels_last_layers(arch):
         for u in (0, table[n].channels - 1):
             torch.testing.assert_close(got[n][:, u], want[n][..., u])
     if arch == "convnext_tiny":  # fields known through the permutes: check a few against gradients
-        check_layers(wrap(positive_(model.module), 64, arch), random.Random(1).sample(last, 4), 64)
+        early = [n for n in last if n.startswith(("features.1.", "features.3."))]
+        check_layers(wrap(positive(model.module), 64, arch), random.Random(1).sample(early, 3), 64)
     else:  # after window attention no field is known: crops fall back, but units stay channels
         assert table["features.1.0.attn"].field is None and table["features.1.0.attn"].layout == "NHWC"
 

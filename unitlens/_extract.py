@@ -120,7 +120,8 @@ def _fx_graph(module: nn.Module, layers: dict[str, tuple[str, int]], reused: set
     from torchvision.models import feature_extraction as fe
 
     _, order, layer_of = _traced(module)
-    node_of = {layer: dict(order)[node] for node, layer in layer_of.items()}
+    qualname = dict(order)
+    node_of = {layer: qualname[node] for node, layer in layer_of.items()}
     leaves = {node.target for node in layer_of}
     nodes = {}
     for layer, (mod, k) in layers.items():
@@ -149,7 +150,9 @@ def function_outputs(model) -> dict[str, tuple[str, str]]:
             warnings.simplefilter("ignore")
             graph, order, layer_of = _traced(model.module)
             gm = torch.fx.GraphModule(model.module, graph)
-            ShapeProp(gm).propagate(torch.zeros(1, 3, model.preprocess.size, model.preprocess.size))
+            p = next(iter(model.module.parameters()), torch.zeros(()))  # the input's dtype and device
+            ShapeProp(gm).propagate(torch.zeros(1, 3, model.preprocess.size, model.preprocess.size,
+                                                dtype=p.dtype, device=p.device))
     except Exception:  # does not trace: the hooks see module outputs only
         return {}
     out = {}
