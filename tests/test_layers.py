@@ -333,6 +333,7 @@ def test_mining_reads_the_call_and_the_channel(arch, layer, units, tmp_path, smo
 
 # --- outputs of functions -------------------------------------------------------------------
 
+@pytest.mark.slow
 def test_function_outputs_name_the_nearest_layer():
     from unitlens.model import layer_notes
 
