@@ -92,6 +92,8 @@ def layers(
     as_json: bool = Json,
 ):
     """List every layer whose output is a feature map: shape and receptive field."""
+    from .model import layer_notes
+
     m = _load(model, weights, size, mean, std, allow_pickle, arch_option)
     rows = []
     for info in m.layers().values():
@@ -102,7 +104,7 @@ def layers(
             "rf_offset": max(f.offset) if f else None,
             "rf_size_hw": list(f.size) if f else None, "rf_stride_hw": list(f.stride) if f else None,
             "rf_offset_hw": list(f.offset) if f else None, "rf_exact": f.exact if f else None,
-            "block": info.block,
+            "block": info.block, "layout": info.layout, "module": info.module, "call": info.call,
         })
     if as_json:
         print(json.dumps(rows, indent=1))
@@ -110,12 +112,18 @@ def layers(
     p = m.preprocess
     print(f"{m.spec}  input 3x{p.size}x{p.size}  ({p.source})")
     print(f"{'layer':<34} {'C x H x W':>16} {'field':>9} {'stride':>7} {'offset':>8}  kind")
+    reused = {r["module"] for r in rows if r["call"]}
     for r in rows:
         shape = f"{r['channels']}x{r['height']}x{r['width']}"
         fs = "x".join(map(str, dict.fromkeys(r["rf_size_hw"]))) if r["rf_size_hw"] else "?"
         st = "x".join(map(str, dict.fromkeys(r["rf_stride_hw"]))) if r["rf_stride_hw"] else "?"
         off = "/".join(f"{v:g}" for v in dict.fromkeys(r["rf_offset_hw"])) if r["rf_offset_hw"] else "?"
-        print(f"{r['name']:<34} {shape:>16} {fs:>9} {st:>7} {off:>8}  {'block' if r['block'] else 'op'}")
+        kind = ["block" if r["block"] else "op"]
+        kind += [f"call {r['call'] + 1} of {r['module']}"] if r["module"] in reused else []
+        kind += {"NHWC": ["channels-last"], "?": ["layout unknown: not selectable"]}.get(r["layout"], [])
+        print(f"{r['name']:<34} {shape:>16} {fs:>9} {st:>7} {off:>8}  {', '.join(kind)}")
+    for note in layer_notes(m):
+        print(note)
 
 
 @app.command("mine")

@@ -21,7 +21,10 @@ Conventions:
   branch depends on the whole image and gets stride 0 (every position sees the same box),
   unless global_context=False asks to treat such gates as constants too.
 - Reflect/replicate padding is treated like zero padding (border boxes leave the image).
-- A module called several times (a shared ReLU) reports its last call.
+- A module called several times (a shared ReLU) gives one layer per call, named as in
+  unitlens._calls (``relu``, ``relu_1``, ...).
+- Maps may be channels-first (B, C, H, W) or channels-last (B, H, W, C), as inside ConvNeXt
+  blocks; the tracer knows which dims are spatial, and `Field.channels_last` says which.
 """
 from __future__ import annotations
 
@@ -29,7 +32,7 @@ import math
 import re
 import weakref
 from collections.abc import Iterable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import NamedTuple
 
 import numpy as np
@@ -37,6 +40,7 @@ import torch
 from torch.utils._python_dispatch import TorchDispatchMode
 from torch.utils._pytree import tree_leaves, tree_map_only
 
+from unitlens._calls import Calls
 from unitlens.errors import UnitlensError, closest
 
 
@@ -47,6 +51,7 @@ class Field:
     stride: tuple[int, int]    # S: input pixels between neighbouring positions (0: all see one box)
     padding: tuple[int, int]   # P: feature position y sees input rows [y*S - P, y*S - P + r - 1]
     exact: bool = True         # False when the box is a covering (a superset), not the exact span
+    channels_last: bool = field(default=False, repr=False)  # the map is (B, H, W, C), not (B, C, H, W)
 
     @property
     def offset(self) -> tuple[float, float]:
@@ -67,9 +72,11 @@ class Field:
 def receptive_fields(module: torch.nn.Module, input_size: int | tuple[int, int],
                      layers: Iterable[str] | None = None, *,
                      global_context: bool = True) -> dict[str, Field]:
-    """Field of every named submodule whose output is a 4-D tensor, for an (h, w) input.
+    """Field of every submodule call whose output is a 4-D map, for an (h, w) input.
 
-    Names are those of ``module.named_modules()`` ('layer3', 'features.10', '' for the root).
+    Names are those of ``module.named_modules()`` ('layer3', 'features.10', '' for the root);
+    a module called several times gives one name per call ('relu', 'relu_1', see _calls).
+    Maps may be (B, C, H, W) or (B, H, W, C) (``Field.channels_last``).
     ``layers`` restricts the result (and the checks) to those names. The inside of a
     TorchScript module cannot be observed: only its own output is reported.
     ``global_context=False`` treats inputs shared by every position (squeeze-excitation
@@ -85,13 +92,15 @@ def receptive_fields(module: torch.nn.Module, input_size: int | tuple[int, int],
         raise UnitlensError(f"input_size must be a positive int or (h, w), got {input_size!r}.")
     scripted = isinstance(module, torch.jit.ScriptModule)
     names = [""] if scripted else [n for n, _ in module.named_modules()]
-    wanted = names if layers is None else [layers] if isinstance(layers, str) else list(layers)
-    for n in wanted:
-        if n not in names:
+    wanted = None if layers is None else [layers] if isinstance(layers, str) else list(layers)
+    calls = Calls(names)
+    for n in wanted or ():
+        if calls.split(n) is None:
             hint = ", ".join(closest(n, names)) or "none"
             raise UnitlensError(f"Unknown layer {n!r} in {type(module).__name__}. Closest: {hint}."
                                 + (" TorchScript modules expose only their output ('')."
                                    if scripted else ""))
+    hooked = set(names) if wanted is None else {calls.split(n)[0] for n in wanted}
     param = next((p for p in module.parameters() if p.is_floating_point()), None)
     dtype, device = (param.dtype, param.device) if param is not None else (None, None)
     first_conv = next((m for m in module.modules() if isinstance(m, torch.nn.Conv2d)), None)
@@ -103,10 +112,10 @@ def receptive_fields(module: torch.nn.Module, input_size: int | tuple[int, int],
         module.eval()  # batch statistics would mix positions, and must not be updated
         try:  # shapes are all we need: meta tensors skip the arithmetic and the memory
             x = torch.zeros(shape, dtype=dtype, device="meta")
-            seen = _trace(module, x, wanted, scripted, _Tracer(True, global_context))
+            seen = _trace(module, x, hooked, names, _Tracer(True, global_context))
         except Exception:  # an op without a meta kernel, or data-dependent control flow
-            seen = _trace(module, torch.zeros(shape, dtype=dtype, device=device), wanted,
-                          scripted, _Tracer(False, global_context))
+            seen = _trace(module, torch.zeros(shape, dtype=dtype, device=device), hooked,
+                          names, _Tracer(False, global_context))
     except Exception as e:
         raise UnitlensError(f"Running {type(module).__name__} on a zero image of shape "
                             f"{shape} failed: {e}") from e
@@ -114,7 +123,7 @@ def receptive_fields(module: torch.nn.Module, input_size: int | tuple[int, int],
         for m, training in modes.items():
             m.train(training)
     fields = {}
-    for n in wanted:
+    for n in seen if wanted is None else wanted:
         g = seen.get(n)
         if isinstance(g, _Unknown):
             if layers is None:  # a table of every layer: leave out the ones we cannot model
@@ -122,15 +131,17 @@ def receptive_fields(module: torch.nn.Module, input_size: int | tuple[int, int],
             raise UnitlensError(f"Cannot compute the receptive field of {n!r}: it depends on "
                                 f"{g.op}, which moves pixels in a way unitlens does not model. "
                                 "Choose a layer before that op.")
-        if g is None or g.pos is not None and [(p.dim, p.inner) for p in g.pos] != [(2, 1), (3, 1)]:
-            # not computed from the image, or not (B, C, H, W): e.g. ConvNeXt's (B, H, W, C)
+        dims = None if g is None or g.pos is None else [(p.dim, p.inner) for p in g.pos]
+        if g is None or dims not in (None, [(2, 1), (3, 1)], [(1, 1), (2, 1)]):
+            # not computed from the image, or neither (B, C, H, W) nor (B, H, W, C)
             if layers is not None:
-                raise UnitlensError(f"Layer {n!r} does not output a 4-D (B, C, H, W) feature "
-                                    "map computed from the image, so it has no receptive field.")
+                raise UnitlensError(f"Layer {n!r} does not output a 4-D feature map (B, C, H, W) or "
+                                    "(B, H, W, C) computed from the image, so it has no receptive field.")
             continue
         ax = _global(g) if g.pos is None else g.ax
         fields[n] = Field(size=tuple(a.hi - a.lo + 1 for a in ax), stride=tuple(a.S for a in ax),
-                          padding=tuple(-a.lo for a in ax), exact=g.exact)
+                          padding=tuple(-a.lo for a in ax), exact=g.exact,
+                          channels_last=dims == [(1, 1), (2, 1)])
     return fields
 
 
@@ -147,18 +158,21 @@ class _Watch(torch.nn.Module):
         return out
 
 
-def _trace(module, x: torch.Tensor, wanted: list[str], scripted: bool, tracer) -> dict:
-    """Geometry of each wanted module's 4-D output, after one forward pass on x."""
-    seen = {}
+def _trace(module, x: torch.Tensor, hooked: set[str], names: list[str], tracer) -> dict:
+    """Geometry of the 4-D output of every call of the `hooked` modules, after one forward
+    pass on x, by layer name (one per call, see unitlens._calls)."""
+    seen, calls = {}, Calls(names)
+    scripted = isinstance(module, torch.jit.ScriptModule)
     tracer.put(x, _Geo((_Pos(2, 1, x.shape[2]), _Pos(3, 1, x.shape[3])), (_Axis(1, 0, 0),) * 2, True))
 
     def record(name, _mod, _args, out):
+        layer = calls.next(name)
         if isinstance(out, torch.Tensor) and out.ndim == 4:
-            seen[name] = tracer.get(out)      # snapshot: later in-place ops change the entry
+            seen[layer] = tracer.get(out)     # snapshot: later in-place ops change the entry
 
-    wanted, mods = set(wanted), [] if scripted else list(module.named_modules())
+    mods = [] if scripted else list(module.named_modules())
     hooks = [m.register_forward_hook(lambda *a, n=n: record(n, *a)) for n, m in mods
-             if n in wanted and not isinstance(m, torch.jit.ScriptModule)]
+             if n in hooked and not isinstance(m, torch.jit.ScriptModule)]
     swapped = [(parent, leaf, child) for n, parent in mods
                if not isinstance(parent, torch.jit.ScriptModule)
                for leaf, child in parent.named_children()

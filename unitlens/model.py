@@ -42,6 +42,12 @@ class LayerInfo:
     width: int
     block: bool  # a module with children (a block), not a single operation
     field: object | None = None  # geometry.Field at the preprocessing size
+    layout: str = "NCHW"  # the module's own output: "NCHW", "NHWC" (read permuted), "?" (cannot tell)
+    module: str = ""  # the module whose output it is
+    call: int = 0  # which call of that module (a module run twice in a forward gives two layers)
+
+
+SUPPORTED = "feature maps of shape N x C x H x W or N x H x W x C"
 
 
 @dataclass
@@ -54,36 +60,81 @@ class LoadedModel:
     weights: dict  # {"kind": "none" | "file" | "torchvision" | "pickle", ...}
     arch_options: dict = field(default_factory=dict)
     _layers: dict | None = field(default=None, repr=False)
+    _tokens: dict | None = field(default=None, repr=False)  # {layer: (T, C)}: token sequences
     device: str = "cpu"  # where the network runs (dist.place); inputs and feature maps stay on the CPU
 
     # -- layers --------------------------------------------------------------------------
     def layers(self) -> dict[str, LayerInfo]:
-        """Every submodule whose output is a 4-D feature map, in execution order."""
+        """Every module call whose output is a 4-D feature map, in execution order."""
         if self._layers is None:
-            self._layers = _layer_table(self)
+            self._layers, self._tokens = _layer_table(self)
         return self._layers
+
+    def token_layers(self) -> dict[str, tuple[int, int]]:
+        """{layer: (T, C)} for module calls whose output is a token sequence (N x T x C): not supported."""
+        self.layers()
+        return self._tokens
 
     def layer(self, name: str) -> LayerInfo:
         table = self.layers()
+        if name in self._tokens:
+            t, c = self._tokens[name]
+            raise UnitlensError(
+                f"Layer '{name}' of {self.spec} outputs a token sequence (N x {t} x {c}); unitlens reads "
+                f"{SUPPORTED} only (vision transformers' token layers are not supported). "
+                f"Run `unitlens layers {self.spec}` to list the layers it can read."
+            )
         if name not in table:
+            from ._extract import function_outputs
+
+            fn = function_outputs(self).get(name)
+            if fn:
+                raise UnitlensError(
+                    f"'{name}' is made by a function in the forward of {self.spec} (torch.cat, +, F.relu...), "
+                    f"not by a module, so it cannot be chosen: layers are module outputs. Nearest layer: "
+                    f"{fn[0]} ({fn[1]})."
+                )
             near = closest(name, table)
             hint = f" Closest: {', '.join(near)}." if near else ""
             raise UnitlensError(
                 f"Unknown layer '{name}' in {self.spec}.{hint} "
                 f"Run `unitlens layers {self.spec}` to list all."
             )
-        return table[name]
+        info = table[name]
+        if info.layout == "?":
+            raise UnitlensError(
+                f"Cannot tell whether layer '{name}' of {self.spec} (output 1x{info.channels}x{info.height}x"
+                f"{info.width}) is channels-first (N x C x H x W) or channels-last (N x H x W x C): its "
+                "shape does not follow the input size and its receptive field is unknown. Choose another layer."
+            )
+        return info
 
     def extractor(self, names):
-        """A callable x -> {name: feature map} that runs the network only as far as needed."""
+        """A callable x -> {name: (B, C, H, W) feature map} that runs the network only as far as needed."""
         from ._extract import make_extractor
 
-        for n in names:
-            self.layer(n)
-        run = make_extractor(self, list(names))
+        infos = [self.layer(n) for n in names]
+        reused = {i.module for i in self.layers().values() if i.call > 0}
+        run = make_extractor(self, list(names), [i.name for i in infos if i.layout == "NHWC"], reused)
         if self.device == "cpu":
             return run
         return lambda x: {k: v.to(x.device) for k, v in run(x.to(self.device, non_blocking=True)).items()}
+
+    def check_size(self, size: int, names) -> None:
+        """Raise a clear error before any work when the network refuses a size x size input
+        (a vision transformer's fixed 224, a model whose maps vanish at a small size)."""
+        try:
+            with torch.no_grad():
+                maps = self.extractor(names)(torch.zeros(1, 3, size, size))
+        except UnitlensError:
+            raise
+        except Exception as e:
+            maps = f"{e.__class__.__name__}: {str(e)[:200]}"
+        if isinstance(maps, str) or any(0 in v.shape[2:] for v in maps.values()):
+            why = maps if isinstance(maps, str) else "a feature map is empty"
+            p = self.preprocess.size
+            raise UnitlensError(f"{self.spec} does not take {size}x{size} images up to {', '.join(names)} "
+                                f"({why}); its input size is {p}x{p}. Use --size {p}, or leave --size out.")
 
     def normalize(self, images: torch.Tensor) -> torch.Tensor:
         """uint8 (B,3,H,W) or float in [0,1] -> normalised network input (float32)."""
@@ -396,12 +447,38 @@ def _model_file(path: Path, allow_pickle: bool):
 
 # -- layer table ---------------------------------------------------------------------------
 
-def _layer_table(model: LoadedModel) -> dict[str, LayerInfo]:
+def layer_notes(model: LoadedModel) -> list[str]:
+    """What the layer table leaves out or names specially, in words (printed under `unitlens layers`)."""
+    notes = ["Layers are outputs of modules; a module run several times in one forward pass gives one layer "
+             "per call (name, name_1, name_2, ...). Units are channels; channels-last maps are read along "
+             "their last dim."]
+    from ._extract import function_outputs
+
+    made = function_outputs(model)
+    if made:
+        shown = "; ".join(f"{n} -> {layer}" for n, (layer, _) in list(made.items())[:4])
+        more = f" and {len(made) - 4} more" if len(made) > 4 else ""
+        notes.append(f"Feature maps made by functions (torch.cat, +, F.relu) are not layers; nearest layer "
+                     f"(the block returning it, else the first module applied to it): {shown}{more}.")
+    tokens = model.token_layers()
+    if tokens:
+        first, (t, c) = next(iter(tokens.items()))
+        notes.append(f"Not listed: {len(tokens)} layers output token sequences (N x T x C, e.g. {first}: "
+                     f"{t} x {c}); unitlens reads {SUPPORTED} only.")
+    return notes
+
+
+def _layer_table(model: LoadedModel) -> tuple[dict[str, LayerInfo], dict[str, tuple[int, int]]]:
+    """({layer: LayerInfo} for 4-D outputs, {layer: (T, C)} for token sequences), in execution order."""
+    from ._calls import Calls
     from ._extract import observe_shapes
     from .geometry import receptive_fields
 
     size = model.preprocess.size
-    shapes = observe_shapes(model, size)  # {name: ((C,H,W), is_block)} in execution order
+    shapes = observe_shapes(model, size)  # {layer: (shape without batch, is_block)} in execution order
+    # Spatial dims follow the input size, channels do not: a second, larger input tells them apart
+    # where the receptive-field trace cannot (after attention, as in Swin).
+    grown = observe_shapes(model, size + _GROW, partial=True)
     try:
         # Squeeze-excitation gates are global, but where a unit fires is decided locally: treat
         # them like normalisation statistics, or every crop after the first gate is the whole image.
@@ -409,10 +486,36 @@ def _layer_table(model: LoadedModel) -> dict[str, LayerInfo]:
     except UnitlensError as e:
         warnings.warn(f"receptive fields unavailable: {e}")
         fields = {}
-    return {
-        name: LayerInfo(name, c, h, w, block, fields.get(name))
-        for name, ((c, h, w), block) in shapes.items()
-    }
+    calls = Calls(n for n, _ in _observable(model).named_modules())
+    table, tokens = {}, {}
+    for name, (shape, block) in shapes.items():
+        if len(shape) == 3:
+            layout = _layout(shape, fields.get(name), grown.get(name, (None,))[0])
+            c, h, w = (shape[2], shape[0], shape[1]) if layout == "NHWC" else shape
+            module, call = calls.split(name) or (name, 0)
+            table[name] = LayerInfo(name, c, h, w, block, fields.get(name), layout, module, call)
+        else:
+            tokens[name] = shape
+    return table, tokens
+
+
+_GROW = 32  # px added for the second input: one more position at stride 32
+
+
+def _layout(shape: tuple[int, int, int], field, grown: tuple[int, ...] | None) -> str:
+    """'NCHW' or 'NHWC' for a 4-D output of per-image `shape`, '?' when nothing tells."""
+    if field is not None:  # the trace followed the spatial axes through every permute
+        return "NHWC" if field.channels_last else "NCHW"
+    moved = {i for i in range(3) if grown is not None and len(grown) == 3 and grown[i] != shape[i]}
+    if moved and moved <= {1, 2} and 2 in moved:
+        return "NCHW"
+    if moved and moved <= {0, 1} and 0 in moved:
+        return "NHWC"
+    if not moved and shape[1:] == (1, 1):  # a pooled vector: only one reading has channels
+        return "NCHW"
+    if not moved and shape[:2] == (1, 1):
+        return "NHWC"
+    return "?"
 
 
 def _observable(model: LoadedModel) -> nn.Module:

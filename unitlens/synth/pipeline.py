@@ -36,6 +36,7 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
     size = config.size or model.preprocess.size
     for lu in layers:  # everything checked before the first step
         objective.check(model, lu.layer, lu.units)
+    model.check_size(size, sorted({term.layer or lu.layer for lu in layers}))
 
     run = Run(out)
     g = dist.group()  # one process, or this rank of a torchrun job: it takes every world-th unit of a layer
@@ -49,7 +50,10 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
     settings = {"config": config.describe(size), "objective": objective.describe(), "colour": used.describe()}
     old = manifest.get("synth")
     if old and old.get("settings") != settings:
-        if not force:
+        # a start that finished no unit (e.g. stopped in its first batch) has nothing to lose
+        started = any(st.get("done") for st in old.get("layers", {}).values()) \
+            or any((run.path / "synth").glob("*/unit-*.png"))
+        if not force and started:
             raise UnitlensError(f"{run.path} already holds synthesised images with other settings "
                                 f"({_diff(old.get('settings'), settings)}). Use --force to redo them, "
                                 "or another --out folder.")
