@@ -26,7 +26,7 @@ import torch
 
 from unitlens import load_model
 from unitlens.synth import SynthConfig, optimise_units
-from unitlens.synth.optimise import _Batch, _Engine, _Unit
+from unitlens.synth.loop import _Batch, _Engine, _Unit
 
 
 def load(arch: str, size: int):

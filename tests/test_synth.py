@@ -12,9 +12,9 @@ from unitlens import UnitlensError, load_model, parse_layers
 from unitlens.synth import (ColourBasis, PixelImage, SpectralImage, SynthConfig, TransformSpec, channel, direction,
                             diversity, negative, neuron, optimise_units, pixel_norm, synthesize, total_variation,
                             unit_images)
-from unitlens.synth.objectives import Context
-from unitlens.synth.param import DEFAULT_CORR, DEFAULT_STD, default_covariance
-from unitlens.synth.transforms import warp
+from unitlens.synth.goal import Context
+from unitlens.synth.bases import DEFAULT_CORR, DEFAULT_STD, default_covariance
+from unitlens.synth.warps import warp
 from unitlens.store import Run
 
 PLANTED = f"{TESTS / 'planted.py'}"
@@ -155,7 +155,7 @@ def test_objective_terms_against_plain_torch():
     assert (channel() + neuron()).unit_term() is None
     import doctest
 
-    from unitlens.synth import objectives
+    from unitlens.synth import goal as objectives
 
     assert doctest.testmod(objectives).failed == 0  # the module's own example runs
 
@@ -275,7 +275,7 @@ def test_early_stop_is_per_image_and_others_keep_going(digits_model):
 
 
 def test_batch_halves_when_memory_runs_out_and_results_do_not_change(digits_model, monkeypatch):
-    from unitlens.synth import optimise
+    from unitlens.synth import loop as optimise
 
     cfg = SynthConfig(steps=12, batch_size=8, **QUICK)
     want = optimise_units(digits_model, "7", range(10), SynthConfig(steps=12, batch_size=2, **QUICK))
@@ -296,7 +296,7 @@ def test_batch_halves_when_memory_runs_out_and_results_do_not_change(digits_mode
 
 
 def test_batch_size_estimate_grows_with_memory_per_image(digits_model):
-    from unitlens.synth.optimise import _Engine
+    from unitlens.synth.loop import _Engine
 
     small, large = (_Engine(digits_model, "5", range(32), SynthConfig(size=s, max_batch=10**6), None, None)
                     for s in (16, 48))
@@ -466,7 +466,7 @@ def test_a_unit_silent_at_its_start_gets_new_starts(tmp_path, monkeypatch):
         with torch.no_grad():
             return float(ex(model.normalize(torch.from_numpy(r.images[0]).permute(2, 0, 1)[None]))["1"].max())
 
-    import unitlens.synth.optimise as opt
+    import unitlens.synth.loop as opt
 
     monkeypatch.setattr(opt, "MAX_REDRAWS", 0)
     assert reached() == 0.0  # the plain start is dead

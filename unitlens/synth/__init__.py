@@ -14,12 +14,12 @@ from .._lazy import lazy_exports
 
 _EXPORTS = {
     "synthesize": "pipeline", "model_from_run": "pipeline", "unit_images": "results", "trace_of": "results",
-    "SynthConfig": "optimise", "optimise_units": "optimise", "iter_units": "optimise", "UnitResult": "optimise",
-    "TransformSpec": "transforms",
-    "ColourBasis": "param", "SpectralImage": "param", "PixelImage": "param",
-    "Objective": "objectives", "channel": "objectives", "neuron": "objectives", "direction": "objectives",
-    "negative": "objectives", "diversity": "objectives", "total_variation": "objectives",
-    "pixel_norm": "objectives",
+    "SynthConfig": "loop", "optimise_units": "loop", "iter_units": "loop", "UnitResult": "loop",
+    "TransformSpec": "warps",
+    "ColourBasis": "bases", "SpectralImage": "bases", "PixelImage": "bases",
+    "Objective": "goal", "channel": "goal", "neuron": "goal", "direction": "goal",
+    "negative": "goal", "diversity": "goal", "total_variation": "goal",
+    "pixel_norm": "goal",
 }
 __all__ = list(_EXPORTS)
 

@@ -21,8 +21,8 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-from .optimise import seed_for
-from .transforms import TransformSpec, warp
+from .loop import seed_for
+from .warps import TransformSpec, warp
 
 
 def assess(model, layer: str, images: torch.Tensor, targets, unit_term, sign: float, spec: TransformSpec,

@@ -11,9 +11,9 @@ from ..errors import UnitlensError
 from ..store import Run, _atomic, read_json, write_json, write_npz
 from ..facets import NaturalNeighbours, synth_neighbours
 from .evidence import assess
-from .objectives import Objective, channel
-from .optimise import SynthConfig, iter_units
-from .param import ColourBasis
+from .goal import Objective, channel
+from .loop import SynthConfig, iter_units
+from .bases import ColourBasis
 from .results import best_exemplars, same_model
 
 

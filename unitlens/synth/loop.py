@@ -27,9 +27,9 @@ import numpy as np
 import torch
 
 from ..errors import UnitlensError
-from .objectives import Context, Objective, channel
-from .param import ColourBasis, make_param
-from .transforms import TransformSpec, warp
+from .goal import Context, Objective, channel
+from .bases import ColourBasis, make_param
+from .warps import TransformSpec, warp
 
 MAX_REDRAWS = 4  # new random starts for a unit silent at its start (contrast x3 each time)
 BETAS = (0.9, 0.999)
