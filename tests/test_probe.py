@@ -277,13 +277,13 @@ def test_readme_probe_examples_run(tmp_path):
 def test_synth_on_request_follows_the_runs_own_settings(corpus, tmp_path):
     # a run whose unit 6 was synthesised one way: probing unit 5 with synth=True adds its image the same way
     from unitlens import MineConfig, ProbeConfig, load_model, mine, open_corpus, parse_layers, probe
-    from unitlens.synth import SynthConfig, synthesize
+    from unitlens.synth import Goal, SynthConfig, synthesize
 
     model = load_model(MODEL, str(corpus / "w.pth"), size=SIZE)
     run = tmp_path / "run"
     mine(model, open_corpus(corpus / "digits"), parse_layers(model, [f"{LAYER}:5-6"]), run,
          MineConfig(top_k=3, workers=0))
-    synthesize(model, parse_layers(model, [f"{LAYER}:6"]), run, SynthConfig(steps=3, size=24, checks=2))
+    synthesize(model, Goal(f"{LAYER}:6"), run, SynthConfig(steps=3, size=24, checks=2))
     s = probe(str(run), f"{LAYER}:{UNIT}", config=ProbeConfig(attribute=1, methods=("gxi",)))
     assert s["synth"] == []  # not asked: a run is only read
     s = probe(str(run), f"{LAYER}:{UNIT}", config=ProbeConfig(attribute=1, methods=("gxi",), synth=True))

@@ -1,298 +1,264 @@
-"""What to maximise: terms with weights, combined with ordinary Python arithmetic.
+"""What to synthesise: a goal, stated once as plain fields, and the per-image score it defines.
 
-Every term gives one number per image of the batch (higher is better), so one backward pass
-serves B images with B different targets. Image i's target is ``ctx.targets[i]`` (a channel, or a
-row of a direction matrix); images of the same unit share ``ctx.groups[i]``.
+A goal says which units (the unit grammar of units.py, e.g. ``layer3:0-63,100``), how the feature
+map of each image becomes one number (``reduce``), which way to push it (``drive``), and the
+weights of the diversity term and of the two penalties. The command line and Python build it with
+the same constructor, which checks the syntax; ``layers`` resolves the units and validates the
+whole goal against a model before the first step; ``record`` gives the plain fields a run's
+manifest keeps (the units are kept per layer there), and ``Goal(units, **record)`` builds it again.
 
-    >>> from unitlens.synth import channel, diversity, total_variation
-    >>> objective = channel() + 0.5 * diversity() - 0.05 * total_variation()
-    >>> off = -channel()    # the negative: what turns the unit off
-    >>> objective
-    1*channel + 0.5*diversity + -0.05*total_variation
+    >>> from unitlens.synth import Goal
+    >>> g = Goal("layer3:0-3", reduce="at:2,5", drive="down", smoothness=0.05)
+    >>> g.reduce, g.position, g.drive
+    ('at', (2, 5), 'down')
 
-A term's ``layer`` of None means "the layer being synthesised".
+How the feature map f (C, H, W) of image i, whose target is t, becomes one number:
+  mean       spatial mean of channel t (what most published visualisations use)
+  centre     channel t at the centre position (H // 2, W // 2)
+  at:Y,X     channel t at position (Y, X)
+  direction  spatial mean of the projection of f onto a unit vector over channels: one vector
+             for every image, or one row per target ((K, C): target t takes row t)
+
+The loop maximises, per image,
+  s * reduce(f)  +  diversity * D  -  smoothness * TV  -  grey_pull * G
+with s = +1 to drive the unit up and -1 to drive it down; D the diversity term of Olah et al. 2017
+(Feature Visualization, Distill) against the other images of the same unit, TV the total variation
+of Mahendran & Vedaldi 2015 with exponent ``tv_beta``, and G the mean |pixel - 0.5|^grey_power.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+import math
+from dataclasses import dataclass, fields
+from pathlib import Path
 
 import torch
 
 from ..errors import UnitlensError
 
+REDUCTIONS = ("mean", "centre", "at:Y,X", "direction")
+DRIVES = ("up", "down")
+
+
+@dataclass(frozen=True)
+class Goal:
+    """What to synthesise (see the module docstring). Bad syntax raises UnitlensError here."""
+
+    units: tuple[str, ...] = ()  # unit grammar, one item per layer ("layer3:0-63,100" or "layer3")
+    channels: str | None = None  # channels for layers named without any, e.g. "0-63"
+    reduce: str = "mean"  # "mean", "centre", "at" (with position; "at:Y,X" parses), "direction"
+    position: tuple[int, int] | None = None  # (y, x) for reduce "at"
+    direction: tuple[tuple[float, ...], ...] | None = None  # (K, C) rows, or a .npy file, for "direction"
+    drive: str = "up"  # "up": make the unit fire; "down": turn it off
+    diversity: float = 0.0  # weight of the diversity term between a unit's images
+    diversity_layer: str | None = None  # the layer whose Gram matrices are compared; None: the unit's
+    smoothness: float = 0.0  # weight of the total-variation penalty
+    tv_beta: float = 2.0
+    grey_pull: float = 0.0  # weight of the mean |pixel - 0.5|^grey_power penalty
+    grey_power: float = 2.0
+
+    def __post_init__(self):
+        put = lambda k, v: object.__setattr__(self, k, v)  # noqa: E731  (normalising a frozen instance)
+        units = (self.units,) if isinstance(self.units, str) or hasattr(self.units, "layer") else self.units or ()
+        put("units", tuple(_unit_text(u) for u in units))
+        reduce, pos = str(self.reduce).strip().lower(), self.position
+        if reduce.startswith("at:"):
+            pos = _position(reduce[3:], self.reduce)
+            reduce = "at"
+        reduce = {"center": "centre"}.get(reduce, reduce)
+        if reduce not in ("mean", "centre", "at", "direction"):
+            raise UnitlensError(f"Unknown reduction '{self.reduce}'; valid: {', '.join(REDUCTIONS)}.")
+        if reduce == "at":
+            if pos is None:
+                raise UnitlensError("reduce 'at' needs a position: write it as at:Y,X, e.g. at:3,4.")
+            pos = tuple(int(v) for v in pos)
+            if len(pos) != 2:
+                raise UnitlensError(f"A position is two numbers (row, column), got {list(pos)}.")
+        elif pos is not None:
+            raise UnitlensError(f"A position applies to reduce 'at' only, not '{reduce}'.")
+        put("reduce", reduce)
+        put("position", pos)
+        if (reduce == "direction") != (self.direction is not None):
+            raise UnitlensError("reduce 'direction' and the direction vectors go together: give both "
+                                "(e.g. Goal(units, reduce='direction', direction=vectors)) or neither.")
+        if self.direction is not None:
+            put("direction", _vectors(self.direction))
+        if self.drive not in DRIVES:
+            raise UnitlensError(f"drive must be up or down, got '{self.drive}'.")
+        for name in ("diversity", "smoothness", "grey_pull", "tv_beta", "grey_power"):
+            v = float(getattr(self, name))
+            if not math.isfinite(v) or v < 0 or (v == 0 and name in ("tv_beta", "grey_power")):
+                raise UnitlensError(f"{name} must be a finite number >= 0 (> 0 for an exponent), got {v}.")
+            put(name, v)
+
+    # -- against a model --------------------------------------------------------------------
+    def layers(self, model, manifest: dict | None = None):
+        """The units as LayerUnits, the whole goal checked against the model. Given a run's manifest,
+        a layer named without channels gets the channels mined (or synthesised) there, and no units
+        at all means all of those."""
+        if manifest is not None:
+            from .pipeline import run_layers
+
+            layers = run_layers(model, manifest, list(self.units), self.channels)
+        else:
+            from ..units import parse_layers
+
+            layers = parse_layers(model, list(self.units), self.channels)
+        for lu in layers:
+            self.check(model, lu.layer, lu.units)
+        return layers
+
+    def check(self, model, layer: str, targets) -> None:
+        """Raise UnitlensError if the goal cannot apply to `targets` of `layer` (before any step)."""
+        info = model.layer(layer)
+        if self.reduce == "direction" and len(self.direction) > 1:
+            bad = [t for t in targets if not 0 <= t < len(self.direction)]
+            if bad:
+                raise UnitlensError(f"Target {bad[0]} has no direction (there are {len(self.direction)}).")
+        elif self.reduce != "direction":
+            bad = [t for t in targets if not 0 <= t < info.channels]
+            if bad:
+                raise UnitlensError(f"Channel {bad[0]} is out of range for {layer} (0-{info.channels - 1}).")
+        if self.reduce == "at":
+            for name, v, n in zip(("y", "x"), self.position, (info.height, info.width)):
+                if not 0 <= v < n:
+                    raise UnitlensError(f"Position {name}={v} is outside {layer}'s feature map "
+                                        f"({info.height}x{info.width}); valid: 0-{n - 1}.")
+        if self.direction is not None and len(self.direction[0]) != info.channels:
+            raise UnitlensError(f"A direction needs {info.channels} numbers for {layer}, got {len(self.direction[0])}.")
+        if self.diversity_layer is not None:
+            model.layer(self.diversity_layer)  # names the closest layers if it is misspelt
+
+    def record(self) -> dict:
+        """The plain fields a manifest keeps (all but the units)."""
+        d = {f.name: getattr(self, f.name) for f in fields(self) if f.name not in ("units", "channels")}
+        d["position"] = list(self.position) if self.position else None
+        d["direction"] = [list(r) for r in self.direction] if self.direction else None
+        return d
+
+    def scorer(self, layer: str) -> Scorer:
+        return Scorer(self, layer)
+
+
+def _unit_text(u) -> str:
+    if hasattr(u, "layer"):  # a LayerUnits already resolved
+        from .pipeline import ranges_text
+
+        return f"{u.layer}:{ranges_text(u.units)}"
+    if not isinstance(u, str) or not u.strip():
+        raise UnitlensError(f"Units are written like layer3:0-63,100 or layer3, got {u!r}.")
+    return u.strip()
+
+
+def _position(text: str, whole) -> tuple[int, int]:
+    try:
+        y, x = (int(v) for v in text.split(","))
+    except ValueError:
+        raise UnitlensError(f"reduce '{whole}' needs a row and a column, e.g. at:3,4.") from None
+    return y, x
+
+
+def _vectors(v) -> tuple[tuple[float, ...], ...]:
+    import numpy as np
+
+    if isinstance(v, (str, Path)):
+        try:
+            v = np.load(v, allow_pickle=False)
+        except (OSError, ValueError) as e:
+            raise UnitlensError(f"Cannot read direction vectors from {v} ({e}); give a .npy file of (C,) or (K, C).") from None
+    a = np.asarray(v.detach().cpu() if isinstance(v, torch.Tensor) else v, dtype=np.float64)
+    a = a.reshape(1, -1) if a.ndim == 1 else a
+    if a.ndim != 2 or a.size == 0 or not np.isfinite(a).all():
+        raise UnitlensError(f"Direction vectors are (C,) or (K, C) finite numbers, got shape {list(a.shape)}.")
+    return tuple(tuple(float(x) for x in row) for row in a)
+
 
 @dataclass
 class Context:
-    """What terms see besides the feature maps."""
+    """What the score sees besides the feature maps."""
 
     layer: str  # the layer being synthesised
     targets: torch.Tensor  # (B,) long
     groups: torch.Tensor  # (B,) long: images with the same value optimise the same unit
-    pixels: torch.Tensor  # (B, 3, H, W) the images in [0, 1], before the random transforms
+    pixels: torch.Tensor  # (B, 3, H, W) the images in [0, 1], before the random warps
 
 
-class Term:
-    layer: str | None = None
-    unit = False  # True for terms that read one channel per image (they can rank channels)
+class Scorer:
+    """A goal made into a function of one layer's batch: (feats, Context) -> (B,) to maximise."""
 
-    def value(self, feats: dict, ctx: Context) -> torch.Tensor:  # (B,)
-        raise NotImplementedError
+    def __init__(self, goal: Goal, layer: str):
+        self.goal, self.layer = goal, layer
+        self.sign = 1.0 if goal.drive == "up" else -1.0
+        self.vectors = None
+        if goal.direction is not None:
+            v = torch.tensor(goal.direction, dtype=torch.float32)  # (K, C)
+            self.vectors = v / v.norm(dim=1, keepdim=True).clamp(min=1e-12)
 
-    def check(self, model, layer: str, targets) -> None:
-        """Raise UnitlensError if this term cannot apply to `targets` of `layer` (before any step)."""
+    def layers(self) -> list[str]:
+        """The feature maps the score reads (for the truncated forward)."""
+        extra = [self.goal.diversity_layer] if self.goal.diversity and self.goal.diversity_layer else []
+        return list(dict.fromkeys([self.layer, *extra]))
 
-    def describe(self) -> dict:
-        return {"term": type(self).__name__.lower()}
-
-    def __repr__(self) -> str:
-        return f"{self.describe()}"
-
-    def _fmap(self, feats: dict, ctx: Context) -> torch.Tensor:
-        return feats[self.layer or ctx.layer]
-
-    # a bare term does arithmetic like a one-term Objective
-    def __add__(self, o): return Objective.of(self) + o
-    def __radd__(self, o): return Objective.of(o) + self
-    def __sub__(self, o): return Objective.of(self) - o
-    def __rsub__(self, o): return Objective.of(o) - self
-    def __mul__(self, k): return Objective.of(self) * k
-    def __rmul__(self, k): return Objective.of(self) * k
-    def __neg__(self): return -Objective.of(self)
-
-
-class Channel(Term):
-    """Spatial mean of the target channel (the objective of most published visualisations)."""
-
-    unit = True
-
-    def __init__(self, layer: str | None = None):
-        self.layer = layer
-
-    def all_channels(self, fmap: torch.Tensor) -> torch.Tensor:  # (B, C, H, W) -> (B, C)
-        return fmap.mean((2, 3))
-
-    def value(self, feats, ctx):
-        f = self._fmap(feats, ctx)
-        return f[torch.arange(len(f)), ctx.targets].mean((1, 2))
-
-    def check(self, model, layer, targets):
-        c = model.layer(self.layer or layer).channels
-        bad = [t for t in targets if not 0 <= t < c]
-        if bad:
-            raise UnitlensError(f"Channel {bad[0]} is out of range for {self.layer or layer} (0-{c - 1}).")
-
-    def describe(self):
-        return {"term": "channel", "layer": self.layer}
-
-
-class Neuron(Channel):
-    """The target channel at one spatial position (y, x) of the feature map; the centre by default."""
-
-    def __init__(self, layer: str | None = None, y: int | None = None, x: int | None = None):
-        self.layer, self.y, self.x = layer, y, x
-
-    def _where(self, fmap):
+    def _where(self, fmap) -> tuple[int, int]:
         H, W = fmap.shape[2:]
-        return (H // 2 if self.y is None else self.y), (W // 2 if self.x is None else self.x)
+        return self.goal.position if self.goal.reduce == "at" else (H // 2, W // 2)
 
-    def all_channels(self, fmap):
-        y, x = self._where(fmap)
-        return fmap[:, :, y, x]
+    def per_channel(self, fmap: torch.Tensor) -> torch.Tensor:
+        """(B, C, H, W) -> (B, C): the reduction of every channel (to rank the target among them)."""
+        if self.goal.reduce == "mean":
+            return fmap.mean((2, 3))
+        if self.goal.reduce in ("centre", "at"):
+            y, x = self._where(fmap)
+            return fmap[:, :, y, x]
+        raise UnitlensError("A direction goal has no per-channel value to rank.")
 
-    def value(self, feats, ctx):
-        f = self._fmap(feats, ctx)
-        y, x = self._where(f)
-        return f[torch.arange(len(f)), ctx.targets, y, x]
-
-    def check(self, model, layer, targets):
-        super().check(model, layer, targets)
-        info = model.layer(self.layer or layer)
-        for name, v, n in (("y", self.y, info.height), ("x", self.x, info.width)):
-            if v is not None and not 0 <= v < n:
-                raise UnitlensError(f"Neuron {name}={v} is outside {info.name}'s feature map "
-                                    f"({info.height}x{info.width}); valid: 0-{n - 1}.")
-
-    def describe(self):
-        return {"term": "neuron", "layer": self.layer, "y": self.y, "x": self.x}
-
-
-class Direction(Term):
-    """Spatial mean of the projection of the feature vector onto a direction over channels.
-
-    `vectors` is (C,) for one direction, or (K, C): then the target of each image picks a row.
-    """
-
-    def __init__(self, vectors, layer: str | None = None):
-        v = torch.as_tensor(vectors, dtype=torch.float32)
-        self.vectors = (v.view(1, -1) if v.dim() == 1 else v)
-        self.vectors = self.vectors / self.vectors.norm(dim=1, keepdim=True).clamp(min=1e-12)  # (K, C)
-        self.layer = layer
-
-    def value(self, feats, ctx):
-        f = self._fmap(feats, ctx)  # (B, C, H, W)
-        rows = ctx.targets if len(self.vectors) > 1 else torch.zeros_like(ctx.targets)
-        d = self.vectors[rows]  # (B, C)
-        return torch.einsum("bchw,bc->bhw", f, d).mean((1, 2))
-
-    def check(self, model, layer, targets):
-        c = model.layer(self.layer or layer).channels
-        if self.vectors.shape[1] != c:
-            raise UnitlensError(f"A direction needs {c} numbers for {self.layer or layer}, got {self.vectors.shape[1]}.")
-        if len(self.vectors) > 1:
-            bad = [t for t in targets if not 0 <= t < len(self.vectors)]
-            if bad:
-                raise UnitlensError(f"Target {bad[0]} has no direction (there are {len(self.vectors)}).")
-
-    def describe(self):
-        return {"term": "direction", "layer": self.layer, "count": len(self.vectors)}
-
-
-class Diversity(Term):
-    """-mean over the other images b of the same unit of cos(vec G_a, vec G_b), G the channel Gram
-    matrix of the layer: Olah et al. 2017 (Feature Visualization, Distill) sum this over pairs; the
-    mean keeps its weight independent of the number of images per unit. 0 for a single image."""
-
-    def __init__(self, layer: str | None = None):
-        self.layer = layer
-
-    def value(self, feats, ctx):
-        f = self._fmap(feats, ctx).flatten(2)  # (B, C, HW)
-        g = (f @ f.transpose(1, 2)).flatten(1) / f.shape[2]  # (B, C*C)
-        g = g / g.norm(dim=1, keepdim=True).clamp(min=1e-12)
-        cos = g @ g.T  # (B, B)
-        same = (ctx.groups.view(-1, 1) == ctx.groups.view(1, -1)) & ~torch.eye(len(g), dtype=torch.bool)
-        n = same.sum(1).clamp(min=1)
-        return -(cos * same).sum(1) / n
-
-    def describe(self):
-        return {"term": "diversity", "layer": self.layer}
-
-
-class TotalVariation(Term):
-    """mean over pixels of ((dx)^2 + (dy)^2)^(beta/2) on the [0, 1] image (Mahendran & Vedaldi 2015).
-    A penalty: subtract it."""
-
-    def __init__(self, beta: float = 2.0):
-        self.beta = float(beta)
-
-    def value(self, feats, ctx):
-        p = ctx.pixels
-        dx = p[:, :, :-1, 1:] - p[:, :, :-1, :-1]
-        dy = p[:, :, 1:, :-1] - p[:, :, :-1, :-1]
-        s = dx * dx + dy * dy
-        s = s if self.beta == 2 else (s + 1e-8) ** (self.beta / 2)
-        return s.flatten(1).mean(1)
-
-    def describe(self):
-        return {"term": "total_variation", "beta": self.beta}
-
-
-class PixelNorm(Term):
-    """mean over pixels of |x - 0.5|^p (p = 1 or 2): L1/L2 size of the image. A penalty: subtract it."""
-
-    def __init__(self, p: float = 2.0):
-        self.p = float(p)
-
-    def value(self, feats, ctx):
-        return (ctx.pixels - 0.5).abs().pow(self.p).flatten(1).mean(1)
-
-    def describe(self):
-        return {"term": "pixel_norm", "p": self.p}
-
-
-class Objective:
-    """A weighted sum of terms. Build with the functions below and + - * ; call to evaluate."""
-
-    def __init__(self, terms):
-        self.terms = tuple((float(w), t) for w, t in terms)
-
-    @staticmethod
-    def of(x) -> Objective:
-        if isinstance(x, Objective):
-            return x
-        if isinstance(x, Term):
-            return Objective([(1.0, x)])
-        raise TypeError(f"not an objective: {type(x).__name__}")
-
-    def __add__(self, other):
-        if isinstance(other, (int, float)) and other == 0:  # sum([...]) starts from 0
-            return self
-        return Objective(self.terms + Objective.of(other).terms)
-
-    __radd__ = __add__
-
-    def __mul__(self, k: float):
-        return Objective([(w * float(k), t) for w, t in self.terms])
-
-    __rmul__ = __mul__
-
-    def __neg__(self):
-        return self * -1.0
-
-    def __sub__(self, other):
-        return self + (-Objective.of(other))
+    def unit_value(self, fmap: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
+        """(B, C, H, W), targets (B,) -> (B,) the reduced target, before the sign."""
+        rows = torch.arange(len(fmap))
+        if self.goal.reduce == "mean":
+            return fmap[rows, targets].mean((1, 2))
+        if self.goal.reduce in ("centre", "at"):
+            y, x = self._where(fmap)
+            return fmap[rows, targets, y, x]
+        d = self.vectors[targets if len(self.vectors) > 1 else torch.zeros_like(targets)]  # (B, C)
+        return torch.einsum("bchw,bc->bhw", fmap, d).mean((1, 2))
 
     def __call__(self, feats: dict, ctx: Context) -> torch.Tensor:
-        """(B,) value per image: sum of weight * term."""
-        total = 0
-        for w, t in self.terms:
-            if w:
-                total = total + w * t.value(feats, ctx)
-        return total
-
-    def layers(self, default: str) -> list[str]:
-        return list(dict.fromkeys(t.layer or default for _, t in self.terms
-                                  if not isinstance(t, (TotalVariation, PixelNorm))))
-
-    def check(self, model, layer: str, targets) -> None:
-        for _, t in self.terms:
-            t.check(model, layer, targets)
-
-    def unit_term(self) -> tuple[float, Term] | None:
-        """(sign, term) of the single channel/neuron term, or None if there is not exactly one."""
-        found = [(w, t) for w, t in self.terms if t.unit and w]
-        if len(found) != 1:
-            return None
-        w, t = found[0]
-        return (1.0 if w > 0 else -1.0), t
-
-    def describe(self) -> list[dict]:
-        return [{"weight": w, **t.describe()} for w, t in self.terms]
-
-    def __repr__(self) -> str:
-        return " + ".join(f"{w:g}*{t.describe()['term']}" for w, t in self.terms)
+        g = self.goal
+        score = self.sign * self.unit_value(feats[self.layer], ctx.targets)  # (B,)
+        if g.diversity:
+            score = score + g.diversity * diversity(feats[g.diversity_layer or self.layer], ctx.groups)
+        if g.smoothness:
+            score = score - g.smoothness * total_variation(ctx.pixels, g.tv_beta)
+        if g.grey_pull:
+            score = score - g.grey_pull * grey_distance(ctx.pixels, g.grey_power)
+        return score
 
 
-def channel(layer: str | None = None) -> Objective:
-    """Maximise the spatial mean of each image's target channel."""
-    return Objective.of(Channel(layer))
+# -- the published terms, as plain functions of tensors ------------------------------------------
+
+def diversity(fmap: torch.Tensor, groups: torch.Tensor) -> torch.Tensor:
+    """-mean over the other images b of the same group of cos(vec G_a, vec G_b), G the channel Gram
+    matrix: Olah et al. 2017 (Feature Visualization, Distill) sum this over pairs; the mean keeps
+    its weight independent of the number of images per unit. 0 for a single image.
+    fmap (B, C, H, W), groups (B,) -> (B,)."""
+    f = fmap.flatten(2)  # (B, C, HW)
+    g = (f @ f.transpose(1, 2)).flatten(1) / f.shape[2]  # (B, C*C)
+    g = g / g.norm(dim=1, keepdim=True).clamp(min=1e-12)
+    cos = g @ g.T  # (B, B)
+    same = (groups.view(-1, 1) == groups.view(1, -1)) & ~torch.eye(len(g), dtype=torch.bool)
+    n = same.sum(1).clamp(min=1)
+    return -(cos * same).sum(1) / n
 
 
-def neuron(layer: str | None = None, y: int | None = None, x: int | None = None) -> Objective:
-    """Maximise the target channel at one position of the feature map (centre by default)."""
-    return Objective.of(Neuron(layer, y, x))
+def total_variation(pixels: torch.Tensor, beta: float = 2.0) -> torch.Tensor:
+    """mean over pixels of ((dx)^2 + (dy)^2)^(beta/2) (Mahendran & Vedaldi 2015). (B, 3, H, W) -> (B,)."""
+    dx = pixels[:, :, :-1, 1:] - pixels[:, :, :-1, :-1]
+    dy = pixels[:, :, 1:, :-1] - pixels[:, :, :-1, :-1]
+    s = dx * dx + dy * dy
+    s = s if beta == 2 else (s + 1e-8) ** (beta / 2)
+    return s.flatten(1).mean(1)
 
 
-def direction(vectors, layer: str | None = None) -> Objective:
-    """Maximise the projection onto a direction in channel space ((C,) or one row per target (K, C))."""
-    return Objective.of(Direction(vectors, layer))
-
-
-def negative(objective) -> Objective:
-    """Minimise instead of maximise."""
-    return -Objective.of(objective)
-
-
-def diversity(layer: str | None = None) -> Objective:
-    """Push the images of one unit apart (Gram-matrix cosine); weight it, e.g. 0.5 * diversity()."""
-    return Objective.of(Diversity(layer))
-
-
-def total_variation(beta: float = 2.0) -> Objective:
-    """Total variation of the image; subtract it with a weight to smooth, e.g. - 0.05 * total_variation()."""
-    return Objective.of(TotalVariation(beta))
-
-
-def pixel_norm(p: float = 2.0) -> Objective:
-    """Mean |pixel - 0.5|^p; subtract it with a weight to keep images mid-grey."""
-    return Objective.of(PixelNorm(p))
+def grey_distance(pixels: torch.Tensor, power: float = 2.0) -> torch.Tensor:
+    """mean over pixels of |x - 0.5|^power: how far the image strays from mid grey. (B, 3, H, W) -> (B,)."""
+    return (pixels - 0.5).abs().pow(power).flatten(1).mean(1)
