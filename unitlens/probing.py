@@ -223,7 +223,8 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
     if (config.synth if config.synth is not None else fresh) and not summary["synth"]:
         from .synth import synthesize
 
-        synthesize(model, *_synth_goal_config(run, model, lu, config), progress=progress)
+        goal, synth_config = _synth_goal_config(run, model, lu, config)
+        synthesize(model, goal, run.path, synth_config, progress=progress)
         summary = unit_summary(run, layer, channel)
     summary["exemplars"] = summary["exemplars"][:config.top_k]
     summary["model"] = model.spec
@@ -243,7 +244,7 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
 
 
 def _synth_goal_config(run: Run, model, lu, config: ProbeConfig):
-    """(goal, run folder, settings) of the quick synthesis of `lu`; in a run that already holds
+    """(goal, settings) of the quick synthesis of `lu`; in a run that already holds
     synthesised images, the run's own goal and settings (one folder holds images made one way)."""
     from .synth import Goal, SynthConfig, Warps
 
@@ -252,9 +253,9 @@ def _synth_goal_config(run: Run, model, lu, config: ProbeConfig):
     old = ((run.manifest().get("synth") or {}).get("settings") or {})
     d = old.get("config")
     if not d:
-        return Goal(lu), run.path, quick
+        return Goal(lu), quick
     keep = {k: v for k, v in d.items() if k in SynthConfig.__dataclass_fields__ and k not in ("warps", "size")}
-    return Goal(lu, **(old.get("goal") or {})), run.path, SynthConfig(
+    return Goal(lu, **(old.get("goal") or {})), SynthConfig(
         **keep, size=d.get("size"), batch_size=1, warps=Warps.none() if d.get("warps") is None else Warps())
 
 
