@@ -176,6 +176,10 @@ def test_goal_syntax_is_refused_at_once():
         (dict(tv_beta=0), "tv_beta must be"),
         (dict(direction=[[1, 2], [3]]), "go together"),
         (dict(reduce="direction", direction=[[1.0, float("nan")]]), "finite numbers"),
+        (dict(reduce="at", position=(1, None)), "two whole numbers"),
+        (dict(reduce="direction", direction=[[1.0, 2.0], [3.0]]), "every row as long as the others"),
+        (dict(reduce="direction", direction="no-such.npy"), "Cannot read direction vectors from no-such.npy"),
+        (dict(diversity="lots"), "diversity must be a finite number >= 0 (> 0 for an exponent), got 'lots'"),
     ]
     for fields, message in cases:
         with pytest.raises(UnitlensError, match=re.escape(message)):

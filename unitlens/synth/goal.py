@@ -70,9 +70,12 @@ class Goal:
         if reduce == "at":
             if pos is None:
                 raise UnitlensError("reduce 'at' needs a position: write it as at:Y,X, e.g. at:3,4.")
-            pos = tuple(int(v) for v in pos)
+            try:
+                pos = tuple(int(v) for v in pos)
+            except (TypeError, ValueError):
+                pos = ()
             if len(pos) != 2:
-                raise UnitlensError(f"A position is two numbers (row, column), got {list(pos)}.")
+                raise UnitlensError(f"A position is two whole numbers (row, column), got {self.position!r}.")
         elif pos is not None:
             raise UnitlensError(f"A position applies to reduce 'at' only, not '{reduce}'.")
         put("reduce", reduce)
@@ -85,9 +88,13 @@ class Goal:
         if self.drive not in DRIVES:
             raise UnitlensError(f"drive must be up or down, got '{self.drive}'.")
         for name in ("diversity", "smoothness", "grey_pull", "tv_beta", "grey_power"):
-            v = float(getattr(self, name))
+            try:
+                v = float(getattr(self, name))
+            except (TypeError, ValueError):
+                v = math.nan
             if not math.isfinite(v) or v < 0 or (v == 0 and name in ("tv_beta", "grey_power")):
-                raise UnitlensError(f"{name} must be a finite number >= 0 (> 0 for an exponent), got {v}.")
+                raise UnitlensError(f"{name} must be a finite number >= 0 (> 0 for an exponent), "
+                                    f"got {getattr(self, name)!r}.")
             put(name, v)
 
     # -- against a model --------------------------------------------------------------------
@@ -165,7 +172,11 @@ def _vectors(v) -> tuple[tuple[float, ...], ...]:
             v = np.load(v, allow_pickle=False)
         except (OSError, ValueError) as e:
             raise UnitlensError(f"Cannot read direction vectors from {v} ({e}); give a .npy file of (C,) or (K, C).") from None
-    a = np.asarray(v.detach().cpu() if isinstance(v, torch.Tensor) else v, dtype=np.float64)
+    try:
+        a = np.asarray(v.detach().cpu() if isinstance(v, torch.Tensor) else v, dtype=np.float64)
+    except (TypeError, ValueError):  # ragged rows, words
+        raise UnitlensError("Direction vectors are (C,) or (K, C) numbers, every row as long as the others; "
+                            f"got {str(v)[:60]}.") from None
     a = a.reshape(1, -1) if a.ndim == 1 else a
     if a.ndim != 2 or a.size == 0 or not np.isfinite(a).all():
         raise UnitlensError(f"Direction vectors are (C,) or (K, C) finite numbers, got shape {list(a.shape)}.")
