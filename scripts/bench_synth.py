@@ -4,12 +4,12 @@
     python scripts/bench_synth.py --quick    # a smaller version of every table
 
 1. overhead: image-steps/s of the synthesis loop against a bare forward+backward through the same
-   truncated network, at the same batch and size (the loop adds the parameterisation, transforms,
-   objective and Adam; target ratio >= 0.9)
+   truncated network, at the same batch and size (the loop adds the image basis, warps,
+   goal and Adam; target ratio >= 0.9)
 2. units/hour for ResNet-18 layer3 and ResNet-50 layer3 at 128 px and 256 steps, estimated from a
    short timed run (no early stop, robustness checks not counted)
 3. wall time of whole runs against steps, image size and layer depth
-4. spectral vs pixel parameterisation: steps each needs to reach the same activation
+4. spectral vs pixel image basis: steps each needs to reach the same activation
 
 All networks have random weights (nothing can be downloaded here), so the images mean nothing;
 timings do not depend on the weights.
@@ -25,8 +25,8 @@ import numpy as np
 import torch
 
 from unitlens import load_model
-from unitlens.synth import SynthConfig, optimise_units
-from unitlens.synth.optimise import _Batch, _Engine, _Unit
+from unitlens.synth import Goal, SynthConfig, optimise_units
+from unitlens.synth.loop import _Batch, _Engine, _Unit
 
 
 def load(arch: str, size: int):
@@ -44,7 +44,7 @@ def bare_step(model, extract, layer, x):
 def overhead(arch: str, layer: str, size: int, batch: int, reps: int) -> dict:
     """Alternating single steps; the fastest of `reps` is the estimate least disturbed by other work
     on the machine. Also times the loop with the network replaced by the identity: what the loop
-    itself adds (parameterisation, transforms, normalisation, objective, their backward, Adam)."""
+    itself adds (image basis, warps, normalisation, goal, their backward, Adam)."""
     model = load(arch, size)
     extract = model.extractor([layer])
     x = torch.rand(batch, 3, size, size)
@@ -86,7 +86,7 @@ def units_per_hour(arch: str, layer: str, size: int, batch: int, steps: int, tim
 
 def wall(model, layer, units, steps) -> float:
     t = time.perf_counter()
-    optimise_units(model, layer, list(range(units)), SynthConfig(steps=steps, stop_gain=None, checks=0))
+    optimise_units(model, Goal(f"{layer}:0-{units - 1}"), SynthConfig(steps=steps, stop_gain=None, checks=0))
     return time.perf_counter() - t
 
 
@@ -99,8 +99,8 @@ def steps_to_reach(trace: np.ndarray, target: float, window: int = 4) -> int | N
 
 def spectral_vs_pixel(arch, layer, size, units, steps) -> list[tuple]:
     model = load(arch, size)
-    runs = {p: optimise_units(model, layer, list(range(units)), SynthConfig(steps=steps, param=p, stop_gain=None,
-                                                                            checks=0, decorrelate=p == "spectral"))
+    runs = {p: optimise_units(model, Goal(f"{layer}:0-{units - 1}"), SynthConfig(steps=steps, basis=p, stop_gain=None,
+                                                                                checks=0, whiten_colour=p == "spectral"))
             for p in ("spectral", "pixel")}
     rows = []
     for u in range(units):
@@ -167,7 +167,7 @@ def main():
     print()
 
     units, steps = (3, 24) if q else (4, 48)
-    print(f"4. Spectral (1/f, decorrelated colour) vs pixel parameterisation, resnet18 layer2, 64 px, {steps} steps:")
+    print(f"4. Spectral (1/f, whitened colour) vs pixel image basis, resnet18 layer2, 64 px, {steps} steps:")
     print("   steps until the running mean (4 steps) of the objective reaches 90% of the lower of the two maxima")
     print(f"   {'unit':>4} {'target':>8} {'spectral':>9} {'pixel':>7} {'final spectral':>15} {'final pixel':>12}")
     rows = spectral_vs_pixel("resnet18", "layer2", 64, units, steps)

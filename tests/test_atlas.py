@@ -44,7 +44,7 @@ def tiny(tmp_path_factory):
     """A real run: swatches + hostile names, mined with a small net (layers 3: ReLU, 6: goes negative),
     synthesised for a few units of layer 6 and for layer 1, which was never mined."""
     from unitlens.demo.swatches import write_corpus
-    from unitlens.synth import SynthConfig, synthesize
+    from unitlens.synth import Goal, SynthConfig, synthesize
 
     d = tmp_path_factory.mktemp("tiny")
     corpus = d / "corpus"
@@ -58,7 +58,7 @@ def tiny(tmp_path_factory):
     model = load_model(f"{TESTS / 'nets.py'}:digits_net", size=32)
     run = mine(model, open_corpus(corpus, labels="folders"), parse_layers(model, ["3", "6"]), d / "run",
                MineConfig(top_k=5, workers=0, thumb=32))
-    synthesize(model, parse_layers(model, ["6:0-2", "1:0-1"]), d / "run", SynthConfig(steps=8, checks=2, per_unit=2))
+    synthesize(model, Goal(("6:0-2", "1:0-1")), d / "run", SynthConfig(steps=8, checks=2, per_unit=2))
     index = render_atlas(run)
     return SimpleNamespace(run=run, atlas=index.parent, index=index)
 

@@ -31,7 +31,7 @@ HOSTILE = "<img src=x onerror=alert(1)>"  # a corpus file name
 @pytest.fixture(scope="module")
 def cmp(tmp_path_factory):
     from unitlens.demo.swatches import write_corpus
-    from unitlens.synth import SynthConfig, synthesize
+    from unitlens.synth import Goal, SynthConfig, synthesize
 
     d = tmp_path_factory.mktemp("cmp")
     write_corpus(d / "corpus", count=18, size=48)
@@ -50,7 +50,7 @@ def cmp(tmp_path_factory):
     for name in ("base", "tuned"):
         m = load_model(SPEC, str(d / f"{name}.pth"), size=32)
         runs[name] = mine(m, corpus, parse_layers(m, ["3:0-11", "6"]), d / name, MineConfig(top_k=5, workers=0, thumb=32))
-        synthesize(m, parse_layers(m, ["6:0-2"]), d / name, SynthConfig(steps=8, checks=2, per_unit=1))
+        synthesize(m, Goal("6:0-2"), d / name, SynthConfig(steps=8, checks=2, per_unit=1))
         render_atlas(runs[name])
     r = run_cli("compare", runs["base"].path, runs["tuned"].path, "--bootstrap", 20, "--workers", 0, "--threads", 1)
     run_dir = runs["base"].path / "compare" / "tuned"

@@ -170,7 +170,7 @@ def test_dedupe_keeps_one_of_each_planted_group_and_off_keeps_the_exact_top_k(tm
 def faceted_run(tmp_path_factory):
     """14 red images and 14 black-and-white vertical stripe images, each with its own noise;
     the faceted net mined and synthesised, then the atlas drawn."""
-    from unitlens.synth import SynthConfig, synthesize
+    from unitlens.synth import Goal, SynthConfig, synthesize
 
     root = tmp_path_factory.mktemp("faceted")
     d = root / "corpus"
@@ -188,7 +188,7 @@ def faceted_run(tmp_path_factory):
     model = load_model(FACETED, size=SIZE)
     corpus = open_corpus(d)
     run = mine(model, corpus, parse_layers(model, ["2"]), root / "run", MineConfig(top_k=8, workers=0))
-    synthesize(model, parse_layers(model, ["2:2"]), root / "run", SynthConfig(steps=8, checks=2))
+    synthesize(model, Goal("2:2"), root / "run", SynthConfig(steps=8, checks=2))
     return model, corpus, run, render_atlas(run)
 
 

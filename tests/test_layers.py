@@ -273,13 +273,13 @@ def build():
 
 def test_synthesis_checks_the_input_size_first(tmp_path, monkeypatch):
     import unitlens.synth.pipeline as pipeline
-    from unitlens import parse_layers, synthesize
-    from unitlens.synth import SynthConfig
+    from unitlens import synthesize
+    from unitlens.synth import Goal, SynthConfig
 
     code = tmp_path / "fixed.py"
     code.write_text(FIXED)
     model = load_model(f"{code}:build")
-    chosen = parse_layers(model, ["conv:0-1"])
+    chosen = Goal("conv:0-1")
     out = tmp_path / "run"
     with pytest.raises(UnitlensError, match=r"does not take 48x48 images.*Wrong image width.*--size 32"):
         synthesize(model, chosen, out, SynthConfig(size=48, steps=2, checks=0))
@@ -292,7 +292,7 @@ def test_synthesis_checks_the_input_size_first(tmp_path, monkeypatch):
     def dies(*_a, **_k):
         raise RuntimeError("stopped in the first batch")
 
-    monkeypatch.setattr(pipeline, "iter_units", dies)
+    monkeypatch.setattr(pipeline, "iter_layer", dies)
     with pytest.raises(RuntimeError):
         synthesize(model, chosen, out, SynthConfig(steps=3, checks=0))
     monkeypatch.undo()

@@ -275,19 +275,22 @@ def test_readme_probe_examples_run(tmp_path):
 
 
 def test_synth_on_request_follows_the_runs_own_settings(corpus, tmp_path):
-    # a run whose unit 6 was synthesised one way: probing unit 5 with synth=True adds its image the same way
+    # a run whose unit 6 was synthesised one way (a goal with its own reduction and penalty): probing
+    # unit 5 with synth=True adds its image the same way
     from unitlens import MineConfig, ProbeConfig, load_model, mine, open_corpus, parse_layers, probe
-    from unitlens.synth import SynthConfig, synthesize
+    from unitlens.synth import Goal, SynthConfig, synthesize
 
     model = load_model(MODEL, str(corpus / "w.pth"), size=SIZE)
     run = tmp_path / "run"
     mine(model, open_corpus(corpus / "digits"), parse_layers(model, [f"{LAYER}:5-6"]), run,
          MineConfig(top_k=3, workers=0))
-    synthesize(model, parse_layers(model, [f"{LAYER}:6"]), run, SynthConfig(steps=3, size=24, checks=2))
+    synthesize(model, Goal(f"{LAYER}:6", reduce="centre", smoothness=0.2), run, SynthConfig(steps=3, size=24, checks=2))
     s = probe(str(run), f"{LAYER}:{UNIT}", config=ProbeConfig(attribute=1, methods=("gxi",)))
     assert s["synth"] == []  # not asked: a run is only read
     s = probe(str(run), f"{LAYER}:{UNIT}", config=ProbeConfig(attribute=1, methods=("gxi",), synth=True))
     assert len(s["synth"]) == 1 and Image.open(s["synth"][0]["image"]).size == (24, 24)
     assert s["synth"][0]["steps"] <= 3
+    goal = json.loads((run / "manifest.json").read_text())["synth"]["settings"]["goal"]
+    assert goal["reduce"] == "centre" and goal["smoothness"] == 0.2  # a different goal would have been refused
     with pytest.raises(UnitlensError, match="run folder, which holds its corpus"):
         probe(str(run), f"{LAYER}:{UNIT}", corpus=corpus / "digits")

@@ -1,6 +1,7 @@
-"""Pass 2 (unitlens/synth): parameterisations, transforms, objectives, the batched loop, the run folder."""
+"""Pass 2 (unitlens/synth): image bases, warps, goals, the batched loop, the run folder."""
 import json
 import math
+import re
 import sys
 
 import numpy as np
@@ -8,25 +9,25 @@ import pytest
 import torch
 
 from conftest import TESTS, cli, run_cli
-from unitlens import UnitlensError, load_model, parse_layers
-from unitlens.synth import (ColourBasis, PixelImage, SpectralImage, SynthConfig, TransformSpec, channel, direction,
-                            diversity, negative, neuron, optimise_units, pixel_norm, synthesize, total_variation,
-                            unit_images)
-from unitlens.synth.objectives import Context
-from unitlens.synth.param import DEFAULT_CORR, DEFAULT_STD, default_covariance
-from unitlens.synth.transforms import warp
+from unitlens import UnitlensError, load_model
+from unitlens.synth import (ColourBasis, Goal, PixelBasis, SpectralBasis, SynthConfig, Warps, optimise_units,
+                            synthesize, unit_images)
+from unitlens.synth.goal import Context, diversity
+from unitlens.synth.bases import DEFAULT_CORR, DEFAULT_STD, default_covariance
+from unitlens.synth.warps import warp
 from unitlens.store import Run
 
 PLANTED = f"{TESTS / 'planted.py'}"
 NETS = f"{TESTS / 'nets.py'}"
 QUICK = dict(stop_gain=None, checks=0)  # fixed step counts, no robustness check
+NO_WARPS = Warps.none()
 
 
 # -- parameterisations ---------------------------------------------------------------------
 
 @pytest.mark.parametrize("size", [32, 33])
 def test_spectral_image_matches_numpy_fft(size):
-    p = SpectralImage(size, ColourBasis.default())
+    p = SpectralBasis(size, ColourBasis.default())
     params = torch.randn(2, *p.shape, generator=torch.Generator().manual_seed(0))
     # reference: numpy.fft on the same coefficients and scale
     c = params[..., 0].double().numpy() + 1j * params[..., 1].double().numpy()
@@ -42,7 +43,7 @@ def test_spectral_image_matches_numpy_fft(size):
 @pytest.mark.parametrize("decay", [1.0, 1.5])
 def test_spectral_scale_gives_the_intended_amplitude_slope(decay):
     S = 64
-    p = SpectralImage(S, ColourBasis.default(), decay=decay)
+    p = SpectralBasis(S, ColourBasis.default(), falloff=decay)
     z = p.whitened(torch.randn(16, *p.shape, generator=torch.Generator().manual_seed(1))).numpy()
     amp = np.abs(np.fft.fft2(z)).mean((0, 1))  # (S, S), numpy as the reference FFT
     f = np.hypot(*np.meshgrid(np.fft.fftfreq(S), np.fft.fftfreq(S), indexing="ij"))
@@ -77,12 +78,12 @@ def test_colour_factor_whitens_the_corpus_colours():
 def test_blur_matches_a_periodic_gaussian_filter():
     from scipy.ndimage import gaussian_filter  # reference implementation
 
-    for cls in (SpectralImage, PixelImage):
+    for cls in (SpectralBasis, PixelBasis):
         p = cls(32, ColourBasis.plain())
         params = torch.randn(1, *p.shape, generator=torch.Generator().manual_seed(2))
         got = p.whitened(p.blur(params, 1.5)).numpy()
         want = gaussian_filter(p.whitened(params).numpy(), sigma=(0, 0, 1.5, 1.5), mode="wrap", truncate=4)
-        edge = slice(None) if cls is SpectralImage else slice(8, -8)  # the pixel blur pads at the border
+        edge = slice(None) if cls is SpectralBasis else slice(8, -8)  # the pixel blur pads at the border
         np.testing.assert_allclose(got[..., edge, edge], want[..., edge, edge], atol=2e-3, err_msg=cls.__name__)
 
 
@@ -108,9 +109,9 @@ def test_transforms_against_numpy_shifts_and_rotations():
     out = warp(img, draw(3, 0), 4, fill, "reflect").numpy()
     np.testing.assert_allclose(out[..., :3], img.numpy()[..., 1:4][..., ::-1], atol=1e-5)
     # pixel amounts scale with the image below the 224 px reference, not above
-    assert TransformSpec().at(112) == TransformSpec(8, 8, fine_jitter=4)
-    assert TransformSpec().at(448) == TransformSpec()
-    assert TransformSpec().at(16).fine_jitter == 1
+    assert Warps().at(112) == Warps(8, 8, fine_jitter=4)
+    assert Warps().at(448) == Warps()
+    assert Warps().at(16).fine_jitter == 1
     # differentiable, and each image of a batch has its own transform
     x = img.repeat(2, 1, 1, 1).requires_grad_(True)
     y = warp(x, torch.cat([draw(a=3), draw(a=-4, s=1.05)]), 4, fill)
@@ -119,9 +120,9 @@ def test_transforms_against_numpy_shifts_and_rotations():
     assert x.grad.abs().sum() > 0
 
 
-# -- objectives ----------------------------------------------------------------------------
+# -- goals ---------------------------------------------------------------------------------
 
-def test_objective_terms_against_plain_torch():
+def test_goal_scores_against_plain_torch():
     g = torch.Generator().manual_seed(0)
     f = torch.randn(4, 6, 5, 7, generator=g)
     px = torch.rand(4, 3, 8, 8, generator=g)
@@ -129,35 +130,66 @@ def test_objective_terms_against_plain_torch():
     groups = torch.tensor([0, 0, 1, 1])
     ctx = Context("L", t, groups, px)
     feats = {"L": f}
+    mean_t = torch.stack([f[i, t[i]].mean() for i in range(4)])
+    tv = torch.stack([((px[i, :, :-1, 1:] - px[i, :, :-1, :-1]) ** 2
+                       + (px[i, :, 1:, :-1] - px[i, :, :-1, :-1]) ** 2).mean() for i in range(4)])
     cases = [
-        (channel(), torch.stack([f[i, t[i]].mean() for i in range(4)])),
-        (neuron(), torch.stack([f[i, t[i], 2, 3] for i in range(4)])),
-        (neuron(y=4, x=0), torch.stack([f[i, t[i], 4, 0] for i in range(4)])),
-        (negative(channel()), -torch.stack([f[i, t[i]].mean() for i in range(4)])),
-        (direction(torch.eye(6)[1] * 3), f[:, 1].mean((1, 2))),
-        (direction(torch.eye(6)), torch.stack([f[i, t[i]].mean() for i in range(4)])),
-        (2 * channel() - 0.5 * total_variation(),
-         2 * torch.stack([f[i, t[i]].mean() for i in range(4)])
-         - 0.5 * torch.stack([((px[i, :, :-1, 1:] - px[i, :, :-1, :-1]) ** 2
-                               + (px[i, :, 1:, :-1] - px[i, :, :-1, :-1]) ** 2).mean() for i in range(4)])),
-        (pixel_norm(1), (px - 0.5).abs().flatten(1).mean(1)),
+        (Goal("L"), mean_t),
+        (Goal("L", reduce="centre"), torch.stack([f[i, t[i], 2, 3] for i in range(4)])),
+        (Goal("L", reduce="at:4,0"), torch.stack([f[i, t[i], 4, 0] for i in range(4)])),
+        (Goal("L", drive="down"), -mean_t),
+        (Goal("L", reduce="direction", direction=torch.eye(6)[1] * 3), f[:, 1].mean((1, 2))),
+        (Goal("L", reduce="direction", direction=torch.eye(6)), mean_t),
+        (Goal("L", smoothness=0.5), mean_t - 0.5 * tv),
+        (Goal("L", smoothness=0.5, tv_beta=1.0),
+         mean_t - 0.5 * torch.stack([((px[i, :, :-1, 1:] - px[i, :, :-1, :-1]) ** 2
+                                      + (px[i, :, 1:, :-1] - px[i, :, :-1, :-1]) ** 2 + 1e-8).sqrt().mean()
+                                     for i in range(4)])),
+        (Goal("L", grey_pull=2.0, grey_power=1.0), mean_t - 2 * (px - 0.5).abs().flatten(1).mean(1)),
     ]
-    for obj, expect in cases:
-        torch.testing.assert_close(obj(feats, ctx), expect, msg=repr(obj))
+    for goal, expect in cases:
+        torch.testing.assert_close(goal.scorer("L")(feats, ctx), expect, msg=repr(goal))
     # diversity: minus the mean Gram cosine with the other images of the same unit (brute force in numpy)
     a = f.flatten(2).numpy()
     gram = [(x @ x.T).ravel() for x in a]
     cos = lambda u, v: u @ v / np.linalg.norm(u) / np.linalg.norm(v)
     expect = [-cos(gram[0], gram[1]), -cos(gram[1], gram[0]), -cos(gram[2], gram[3]), -cos(gram[3], gram[2])]
-    np.testing.assert_allclose(diversity()(feats, ctx).numpy(), expect, rtol=1e-5)
-    assert (channel() + 0.5 * diversity()).unit_term()[1].__class__.__name__ == "Channel"
-    assert negative(channel()).unit_term()[0] == -1.0
-    assert (channel() + neuron()).unit_term() is None
+    np.testing.assert_allclose(diversity(f, groups).numpy(), expect, rtol=1e-5)
+    both = Goal("L", diversity=0.5).scorer("L")(feats, ctx) - mean_t
+    np.testing.assert_allclose(both.numpy(), 0.5 * np.array(expect), rtol=1e-5)
     import doctest
 
-    from unitlens.synth import objectives
+    from unitlens.synth import goal
 
-    assert doctest.testmod(objectives).failed == 0  # the module's own example runs
+    assert doctest.testmod(goal).failed == 0  # the module's own example runs
+
+
+def test_goal_syntax_is_refused_at_once():
+    cases = [
+        (dict(reduce="max"), "Unknown reduction 'max'; valid: mean, centre, at:Y,X, direction"),
+        (dict(reduce="at:3"), "needs a row and a column"),
+        (dict(reduce="at"), "needs a position"),
+        (dict(reduce="mean", position=(1, 2)), "applies to reduce 'at' only"),
+        (dict(reduce="direction"), "go together"),
+        (dict(drive="sideways"), "drive must be up or down"),
+        (dict(smoothness=-1), "smoothness must be a finite number >= 0"),
+        (dict(tv_beta=0), "tv_beta must be"),
+        (dict(direction=[[1, 2], [3]]), "go together"),
+        (dict(reduce="direction", direction=[[1.0, float("nan")]]), "finite numbers"),
+        (dict(reduce="at", position=(1, None)), "two whole numbers"),
+        (dict(reduce="direction", direction=[[1.0, 2.0], [3.0]]), "every row as long as the others"),
+        (dict(reduce="direction", direction="no-such.npy"), "Cannot read direction vectors from no-such.npy"),
+        (dict(diversity="lots"), "diversity must be a finite number >= 0 (> 0 for an exponent), got 'lots'"),
+    ]
+    for fields, message in cases:
+        with pytest.raises(UnitlensError, match=re.escape(message)):
+            Goal("layer3", **fields)
+    # the same goal from its record (what a manifest keeps) and from text
+    g = Goal("layer3:0-3", reduce="at:2,5", drive="down", diversity=0.5, smoothness=0.1)
+    assert Goal("layer3:0-3", **g.record()) == g and g.position == (2, 5) and g.reduce == "at"
+    assert json.loads(json.dumps(g.record())) == g.record()  # plain fields
+    with pytest.raises(TypeError):  # no arithmetic on goals
+        g + g  # noqa: B018
 
 
 # -- the loop, against analytic and planted optima -----------------------------------------
@@ -166,16 +198,21 @@ def test_linear_unit_under_a_norm_reaches_the_cauchy_schwarz_optimum():
     # max w . x subject to ||x|| = r is x = r w / ||w|| (Cauchy-Schwarz), value r ||w||
     m = load_model(f"{PLANTED}:linear_unit", size=16, mean=(0, 0, 0), std=(1, 1, 1))
     w = m.module[0].weight[0].permute(1, 2, 0).numpy()  # (16, 16, 3), like the images
-    base = dict(steps=100, param="pixel", decorrelate=False, squash="none", transforms=TransformSpec.none(),
-                norm=4.0, **QUICK)
+    base = dict(steps=100, basis="pixel", whiten_colour=False, squash="none", warps=NO_WARPS, norm=4.0, **QUICK)
     plain = ColourBasis.plain((0, 0, 0))  # image = z: what the norm constrains is the input itself
-    r = optimise_units(m, "0", [0], SynthConfig(optimizer="gradient", **base), colour=plain)[0]
+    r = optimise_units(m, Goal("0:0"), SynthConfig(optimizer="gradient", **base), colour=plain)[0]
     x = r.images[0]
     assert np.corrcoef(x.ravel(), w.ravel())[0, 1] >= 0.95
     assert np.linalg.norm(x) == pytest.approx(4.0, rel=1e-4)
     assert r.traces[0][-1] == pytest.approx(4.0 * np.linalg.norm(w), rel=1e-3)
+    # driven down, along a direction (one channel, scaled: the same unit vector), the optimum is
+    # x = -r w / ||w||, where the score (minus the projection) is again r ||w||
+    down = Goal("0:0", reduce="direction", direction=[[2.5]], drive="down")
+    r = optimise_units(m, down, SynthConfig(optimizer="gradient", **base), colour=plain)[0]
+    assert np.corrcoef(r.images[0].ravel(), w.ravel())[0, 1] <= -0.95
+    assert r.traces[0][-1] == pytest.approx(4.0 * np.linalg.norm(w), rel=1e-3)
     # Adam's step on a linear objective is lr * sign(gradient), so it converges to sign(w) instead
-    r = optimise_units(m, "0", [0], SynthConfig(**base), colour=plain)[0]
+    r = optimise_units(m, Goal("0:0"), SynthConfig(**base), colour=plain)[0]
     assert np.corrcoef(r.images[0].ravel(), np.sign(w).ravel())[0, 1] >= 0.99
 
 
@@ -196,7 +233,7 @@ def test_planted_gabor_detectors_get_gratings_at_their_orientation():
     from planted import ORIENTATIONS
 
     m = load_model(f"{PLANTED}:gabor_net", size=32)
-    results = optimise_units(m, "1", range(len(ORIENTATIONS)), SynthConfig(steps=80, checks=0))  # defaults otherwise
+    results = optimise_units(m, Goal(f"1:0-{len(ORIENTATIONS) - 1}"), SynthConfig(steps=80, checks=0))  # defaults otherwise
     for r, planted in zip(results, ORIENTATIONS):
         found = _orientation(r.images[0])
         err = abs((found - planted + 90) % 180 - 90)
@@ -210,8 +247,8 @@ def r18(r18_weights):
 
 def test_a_unit_gives_the_same_image_in_a_batch_of_16_as_alone(r18):
     cfg = SynthConfig(steps=16, **QUICK)
-    batch = optimise_units(r18, "layer2", list(range(16)), SynthConfig(batch_size=16, steps=16, **QUICK))
-    alone = optimise_units(r18, "layer2", [5], cfg)[0]
+    batch = optimise_units(r18, Goal("layer2:0-15"), SynthConfig(batch_size=16, steps=16, **QUICK))
+    alone = optimise_units(r18, Goal("layer2:5"), cfg)[0]
     assert batch[5].target == 5
     # batched convolutions round differently; over 16 Adam steps that stays below 1e-3 of the pixel range
     np.testing.assert_allclose(batch[5].images, alone.images, atol=1e-3)
@@ -241,8 +278,7 @@ def test_each_digit_logit_image_beats_every_natural_digit(digits_model):
     ex = digits_model.extractor(["7"])
     with torch.no_grad():
         natural = ex(digits_model.normalize(images))["7"].flatten(1)  # (N, 10)
-    results = optimise_units(digits_model, "7", range(10),
-                             SynthConfig(checks=0, stop_gain=None, transforms=TransformSpec.none()))
+    results = optimise_units(digits_model, Goal("7:0-9"), SynthConfig(checks=0, stop_gain=None, warps=NO_WARPS))
     synth = torch.from_numpy(np.stack([np.round(r.images[0] * 255) for r in results])).permute(0, 3, 1, 2)
     with torch.no_grad():
         got = ex(digits_model.normalize(synth.to(torch.uint8)))["7"].flatten(1)  # as saved: 8-bit
@@ -254,20 +290,19 @@ def test_diversity_spreads_the_images_of_a_unit(digits_model):
     ex = digits_model.extractor(["4"])
 
     def gram_cosine(weight):  # mean pairwise cosine of the images' Gram matrices, what diversity lowers
-        obj = channel() + weight * diversity()
-        r = optimise_units(digits_model, "4", [3], SynthConfig(per_unit=3, steps=40, **QUICK), obj)[0]
+        goal = Goal("4:3", diversity=weight)
+        r = optimise_units(digits_model, goal, SynthConfig(per_unit=3, steps=40, **QUICK))[0]
         x = torch.from_numpy(r.images).permute(0, 3, 1, 2)
         with torch.no_grad():
             f = ex(digits_model.normalize(x))
-        ctx = Context("4", torch.tensor([3, 3, 3]), torch.zeros(3, dtype=torch.long), x)
-        return float(-diversity()(f, ctx).mean())
+        return float(-diversity(f["4"], torch.zeros(3, dtype=torch.long)).mean())
 
     assert gram_cosine(1.0) < gram_cosine(0.0) - 0.2
 
 
 def test_early_stop_is_per_image_and_others_keep_going(digits_model):
     cfg = SynthConfig(steps=200, stop_window=8, stop_gain=0.05, checks=0, batch_size=10)
-    results = optimise_units(digits_model, "7", range(10), cfg)
+    results = optimise_units(digits_model, Goal("7:0-9"), cfg)
     steps = [r.steps[0] for r in results]
     assert min(steps) < 200 and len(set(steps)) > 1, steps
     for r in results:
@@ -275,10 +310,10 @@ def test_early_stop_is_per_image_and_others_keep_going(digits_model):
 
 
 def test_batch_halves_when_memory_runs_out_and_results_do_not_change(digits_model, monkeypatch):
-    from unitlens.synth import optimise
+    from unitlens.synth import loop as optimise
 
     cfg = SynthConfig(steps=12, batch_size=8, **QUICK)
-    want = optimise_units(digits_model, "7", range(10), SynthConfig(steps=12, batch_size=2, **QUICK))
+    want = optimise_units(digits_model, Goal("7:0-9"), SynthConfig(steps=12, batch_size=2, **QUICK))
     real = optimise._Engine.values_and_grads
     seen = []
 
@@ -289,14 +324,14 @@ def test_batch_halves_when_memory_runs_out_and_results_do_not_change(digits_mode
         return real(self, params, *a)
 
     monkeypatch.setattr(optimise._Engine, "values_and_grads", tight)
-    got = optimise_units(digits_model, "7", range(10), cfg)
+    got = optimise_units(digits_model, Goal("7:0-9"), cfg)
     assert seen[0] == 8 and max(seen[-5:]) <= 2
     for a, b in zip(want, got):
         np.testing.assert_allclose(a.images, b.images, atol=1e-5)
 
 
 def test_batch_size_estimate_grows_with_memory_per_image(digits_model):
-    from unitlens.synth.optimise import _Engine
+    from unitlens.synth.loop import _Engine
 
     small, large = (_Engine(digits_model, "5", range(32), SynthConfig(size=s, max_batch=10**6), None, None)
                     for s in (16, 48))
@@ -308,16 +343,19 @@ def test_batch_size_estimate_grows_with_memory_per_image(digits_model):
 
 def test_bad_targets_fail_before_the_first_step(r18):
     cases = [
-        (lambda: optimise_units(r18, "layer2", [128], SynthConfig()), "Channel 128 is out of range for layer2"),
-        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(), neuron(y=9)), "outside layer2"),
-        (lambda: optimise_units(r18, "layer9", [0], SynthConfig()), "Unknown layer 'layer9'"),
-        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(param="wavelet")), "Unknown parameterisation"),
-        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(batch_size=1, per_unit=2)), "cannot hold"),
-        (lambda: optimise_units(r18, "layer2", [0], SynthConfig(), direction(torch.ones(5))), "needs 128 numbers"),
+        (Goal("layer2:128"), SynthConfig(), "Channel 128 is out of range for layer2"),
+        (Goal("layer2:0", reduce="at:9,0"), SynthConfig(), "outside layer2"),
+        (Goal("layer9:0"), SynthConfig(), "Unknown layer 'layer9'"),
+        (Goal("layer2:0"), SynthConfig(basis="wavelet"), "Unknown image basis"),
+        (Goal("layer2:0"), SynthConfig(batch_size=1, per_unit=2), "cannot hold"),
+        (Goal("layer2:0", reduce="direction", direction=torch.ones(5)), SynthConfig(), "needs 128 numbers"),
+        (Goal("layer2:0-3", reduce="direction", direction=torch.ones(2, 128)), SynthConfig(), "Target 2 has no direction"),
+        (Goal("layer2:0", diversity=1, diversity_layer="layer7"), SynthConfig(), "Unknown layer 'layer7'"),
+        (Goal(), SynthConfig(), "No layers given"),
     ]
-    for call, message in cases:
+    for goal, config, message in cases:
         with pytest.raises(UnitlensError, match=message):
-            call()
+            optimise_units(r18, goal, config)
 
 
 # -- the run folder and the command ---------------------------------------------------------
@@ -370,7 +408,9 @@ def test_bad_names_give_one_line_errors(mined, capsys):
         (["--layers", "layer3:0-999"], "Channel 999 is out of range for layer3 (0-255)"),
         (["--units", "x"], "'x' is not a channel or range"),
         (["--weights", "w.pth"], "apply only when TARGET is a model"),
-        (["--objective", "class"], "--objective must be channel or neuron"),
+        (["--reduce", "class"], "Unknown reduction 'class'; valid: mean, centre, at:Y,X"),
+        (["--reduce", "at:9,9"], "Position y=9 is outside layer3's feature map (2x2)"),
+        (["--drive", "sideways"], "drive must be up or down, got 'sideways'"),
     ]
     for extra, message in cases:
         code, out, err = cli(capsys, "synth", mined, "--steps", "2", *extra)
@@ -395,23 +435,95 @@ def test_synth_from_a_model_without_a_run(tmp_path, capsys):
     assert code == 1 and "--out" in err
 
 
+def test_a_goal_from_python_and_from_the_command_line_gives_the_same_images(tmp_path, capsys):
+    code = tmp_path / "gabor.py"  # the planted net with its own input size, so no size option is needed
+    code.write_text(f"import sys\nsys.path.insert(0, {str(TESTS)!r})\nfrom planted import gabor_net  # noqa\n"
+                    "PREPROCESS = {'size': 32, 'mean': (0.5, 0.5, 0.5), 'std': (0.25, 0.25, 0.25)}\n")
+    c, _, err = cli(capsys, "synth", f"{code}:gabor_net", "--layers", "1:0,3", "--steps", "5", "--per-unit", "2",
+                    "--reduce", "at:3,4", "--drive", "up", "--diversity", "0.5", "--smoothness", "0.1",
+                    "--grey-pull", "0.05", "--out", tmp_path / "cli")
+    assert c == 0, err
+    goal = Goal("1:0,3", reduce="at:3,4", drive="up", diversity=0.5, smoothness=0.1, grey_pull=0.05)
+    synthesize(load_model(f"{code}:gabor_net"), goal, tmp_path / "py", SynthConfig(steps=5, per_unit=2))
+    from PIL import Image
+
+    settings = [json.loads((tmp_path / k / "manifest.json").read_text())["synth"]["settings"] for k in ("cli", "py")]
+    assert settings[0] == settings[1] and settings[0]["goal"] == goal.record()
+    assert settings[0]["goal"]["position"] == [3, 4] and settings[0]["goal"]["smoothness"] == 0.1
+    files = sorted(p.name for p in (tmp_path / "py" / "synth" / "1").glob("unit-*.png"))
+    assert files == ["unit-0000-0.png", "unit-0000-1.png", "unit-0003-0.png", "unit-0003-1.png"]
+    for f in files:
+        a, b = (np.asarray(Image.open(tmp_path / k / "synth" / "1" / f)) for k in ("cli", "py"))
+        assert np.array_equal(a, b), f
+    a, b = (np.asarray(Image.open(tmp_path / "py" / "synth" / "1" / f)) for f in files[:2])
+    assert not np.array_equal(a, b)  # two different images of one unit: the comparison can tell images apart
+
+
+def test_a_run_folder_written_with_the_old_setting_names_opens_shows_and_redraws(mined, tmp_path, capsys):
+    import shutil
+
+    from unitlens import render_atlas
+    from unitlens.synth import model_from_run
+
+    run = tmp_path / "old"
+    shutil.copytree(mined, run)
+    shutil.rmtree(run / "synth", ignore_errors=True)
+    m = json.loads((run / "manifest.json").read_text())
+    m.pop("synth", None)
+    (run / "manifest.json").write_text(json.dumps(m))
+    synthesize(model_from_run(run), Goal("layer3:0-1", smoothness=0.1), run, SynthConfig(steps=3))
+    m = json.loads((run / "manifest.json").read_text())
+    # what format 1 wrote for these settings, by hand: the old names and the weighted terms
+    m["format"] = 1
+    m["synth"]["settings"] = {
+        "config": {"steps": 3, "size": 32, "per_unit": 1, "seed": 0, "lr": 0.05, "optimizer": "adam",
+                   "param": "spectral", "decorrelate": True, "decay": 1.0, "init_std": 0.1, "squash": "sigmoid",
+                   "transforms": {"pad": 2, "jitter": 2, "scales": [1.0, 0.975, 1.025, 0.95, 1.05],
+                                  "degrees": [-5, -4, -3, -2, -1, 0, 1, 2, 3, 4, 5], "fine_jitter": 1,
+                                  "pad_mode": "constant",
+                                  "note": "pixel amounts for 32 px images (given for 224 px, scaled down below it)"},
+                   "norm": None, "blur_every": 0, "blur_sigma": 0.5, "stop_window": 32, "stop_gain": 0.01,
+                   "checks": 32},
+        "objective": [{"weight": 1.0, "term": "channel", "layer": None},
+                      {"weight": -0.1, "term": "total_variation", "beta": 2.0}],
+        "colour": m["synth"]["colour"]}
+    (run / "manifest.json").write_text(json.dumps(m))
+    stamps = {p.name: p.stat().st_mtime_ns for p in (run / "synth" / "layer3").glob("unit-*")}
+
+    code, out, err = cli(capsys, "show", run, "layer3:1", "--json")  # shows
+    assert code == 0, err
+    assert len(json.loads(out)["synth"]) == 1
+    page = render_atlas(run).read_text()  # draws, under today's names
+    for label in ("basis", "whiten_colour", "blur_period", "warps.jitter", "goal.reduce", "goal.smoothness"):
+        assert f">{label}<" in page, label
+    for label in ("param", "decorrelate", "blur_every", "transforms.jitter", "objective"):
+        assert f">{label}<" not in page, label
+    # the same settings stated today resume the folder: nothing is redone, and the manifest moves on
+    code, _, err = cli(capsys, "synth", run, "--layers", "layer3:0-1", "--steps", "3", "--smoothness", "0.1")
+    assert code == 0, err
+    assert {p.name: p.stat().st_mtime_ns for p in (run / "synth" / "layer3").glob("unit-*")} == stamps
+    m = json.loads((run / "manifest.json").read_text())
+    assert m["format"] == 2 and m["synth"]["settings"]["goal"]["smoothness"] == 0.1
+    assert "objective" not in m["synth"]["settings"] and m["synth"]["settings"]["config"]["basis"] == "spectral"
+
+
 def test_a_killed_synthesis_resumes_without_redoing_finished_units(tmp_path, digits_model, monkeypatch):
     from unitlens.synth import pipeline
 
-    layers = parse_layers(digits_model, ["7:0-5"])
+    layers = Goal("7:0-5")
     cfg = SynthConfig(steps=10, batch_size=2, **QUICK)
     whole = synthesize(digits_model, layers, tmp_path / "whole", cfg)
-    real = pipeline.iter_units
+    real = pipeline.iter_layer
 
     def killed(*a, **k):
         it = real(*a, **k)
         yield next(it)
         raise KeyboardInterrupt  # like Ctrl-C after the first batch
 
-    monkeypatch.setattr(pipeline, "iter_units", killed)
+    monkeypatch.setattr(pipeline, "iter_layer", killed)
     with pytest.raises(UnitlensError, match="Interrupted after 2 of 6 units"):
         synthesize(digits_model, layers, tmp_path / "cut", cfg)
-    monkeypatch.setattr(pipeline, "iter_units", real)
+    monkeypatch.setattr(pipeline, "iter_layer", real)
     d = Run(tmp_path / "cut").layer_dir("7", "synth")
     stamps = {p.name: p.stat().st_mtime_ns for p in d.glob("*.png")}
     assert len(stamps) == 2
@@ -441,15 +553,15 @@ def test_a_unit_silent_at_its_start_gets_new_starts(tmp_path, monkeypatch):
         "        conv.bias.fill_(-2.0)\n"
         "    return torch.nn.Sequential(conv, torch.nn.ReLU())\n")
     model = load_model(f"{code}:build", size=32, mean=(0.5,) * 3, std=(0.25,) * 3)
-    cfg = SynthConfig(steps=24, checks=0, param="pixel", transforms=TransformSpec.none())
+    cfg = SynthConfig(steps=24, checks=0, basis="pixel", warps=NO_WARPS)
     ex = model.extractor(["1"])
 
     def reached():
-        r = optimise_units(model, "1", [0], cfg)[0]
+        r = optimise_units(model, Goal("1:0"), cfg)[0]
         with torch.no_grad():
             return float(ex(model.normalize(torch.from_numpy(r.images[0]).permute(2, 0, 1)[None]))["1"].max())
 
-    import unitlens.synth.optimise as opt
+    import unitlens.synth.loop as opt
 
     monkeypatch.setattr(opt, "MAX_REDRAWS", 0)
     assert reached() == 0.0  # the plain start is dead
@@ -460,30 +572,32 @@ def test_a_unit_silent_at_its_start_gets_new_starts(tmp_path, monkeypatch):
 def test_synth_refuses_a_run_whose_mining_is_unfinished(tmp_path, smooth_corpus, r18):
     from unitlens import MineConfig, mine, open_corpus
 
+    from unitlens import parse_layers
+
     layers = parse_layers(r18, ["layer2:0-1"])
     mine(r18, open_corpus(smooth_corpus), layers, tmp_path / "r", MineConfig(top_k=2, workers=0, batch_size=4),
          _stop_after=8)
     with pytest.raises(UnitlensError, match=r"Mining in .* is not finished \(8 of 24 images\).*Finish mining first"):
-        synthesize(r18, layers, tmp_path / "r", SynthConfig(steps=2, **QUICK))
+        synthesize(r18, Goal("layer2:0-1"), tmp_path / "r", SynthConfig(steps=2, **QUICK))
     assert not (tmp_path / "r" / "synth").exists() and "synth" not in Run(tmp_path / "r").manifest()
 
 
 def test_resumed_synthesis_leaves_no_temporary_files_and_force_keeps_foreign_ones(tmp_path, digits_model, monkeypatch):
     from unitlens.synth import pipeline
 
-    layers = parse_layers(digits_model, ["7:0-3"])
+    layers = Goal("7:0-3")
     cfg = SynthConfig(steps=4, batch_size=2, **QUICK)
-    real = pipeline.iter_units
+    real = pipeline.iter_layer
 
     def killed(*a, **k):
         it = real(*a, **k)
         yield next(it)
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(pipeline, "iter_units", killed)
+    monkeypatch.setattr(pipeline, "iter_layer", killed)
     with pytest.raises(UnitlensError, match="Interrupted after 2 of 4 units"):
         synthesize(digits_model, layers, tmp_path / "r", cfg)
-    monkeypatch.setattr(pipeline, "iter_units", real)
+    monkeypatch.setattr(pipeline, "iter_layer", real)
     d = Run(tmp_path / "r").layer_dir("7", "synth")
     (d / ".unit-0002-0.png.k9x.tmp").write_bytes(b"\x89PNG half")  # what a SIGKILL mid-write leaves
     synthesize(digits_model, layers, tmp_path / "r", cfg)
@@ -501,7 +615,7 @@ def test_synthesis_is_refused_up_front_when_its_images_do_not_fit_on_the_disk(tm
 
     real = shutil.disk_usage
     monkeypatch.setattr(shutil, "disk_usage", lambda p: real(p)._replace(free=50_000))
-    layers = parse_layers(r18, ["layer2:0-7"])  # 8 units of 32x32 RGB: about 8 x (3 KB + 64 KB)
+    layers = Goal("layer2:0-7")  # 8 units of 32x32 RGB: about 8 x (3 KB + 64 KB)
     with pytest.raises(UnitlensError, match=r"Not enough free space for this synthesis .* needs about 5\d\d KB, "
                                             r"and the disk has 50 KB free"):
         synthesize(r18, layers, tmp_path / "r", SynthConfig(steps=2, **QUICK))

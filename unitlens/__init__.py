@@ -17,6 +17,7 @@ _EXPORTS = {
     "unit_summary": "summary",
     "synthesize": "synth",
     "SynthConfig": "synth",
+    "Goal": "synth",
     "compare": "comparison",
     "CompareConfig": "comparison",
     "render_atlas": "atlas",

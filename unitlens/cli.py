@@ -243,13 +243,14 @@ def synth(
     size: Optional[int] = typer.Option(None, "--size", help="Image size in px (default: the model's input size; for a MODEL also its input size)."),
     per_unit: int = typer.Option(1, "--per-unit", min=1, help="Images per unit."),
     seed: int = typer.Option(0, "--seed", help="Seed; a unit's images depend only on it, the layer, the channel and the image number."),
-    param: str = typer.Option("spectral", "--param", help="spectral (1/f Fourier coefficients, decorrelated colour) or pixel (plain RGB)."),
-    objective: str = typer.Option("channel", "--objective", help="channel (spatial mean) or neuron (the centre position)."),
+    basis: str = typer.Option("spectral", "--basis", help="What the optimiser moves: spectral (Fourier coefficients scaled 1/f, whitened colour) or pixel (plain RGB)."),
+    reduce: str = typer.Option("mean", "--reduce", help="How a unit's feature map becomes one number: mean (over positions), centre (the centre position) or at:Y,X (one position)."),
+    drive: str = typer.Option("up", "--drive", help="up: make the unit fire; down: find what turns it off."),
     diversity: float = typer.Option(0.0, "--diversity", min=0.0, help="Weight of the diversity term between a unit's images (e.g. 0.5 with --per-unit 4)."),
-    tv: float = typer.Option(0.0, "--tv", min=0.0, help="Weight of a total-variation penalty (off by default)."),
-    l2: float = typer.Option(0.0, "--l2", min=0.0, help="Weight of an L2 pixel penalty (off by default)."),
-    blur_every: int = typer.Option(0, "--blur-every", min=0, help="Blur the image every N steps (0: never)."),
-    no_transforms: bool = typer.Option(False, "--no-transforms", help="No random transforms (images turn to high-frequency noise)."),
+    smoothness: float = typer.Option(0.0, "--smoothness", min=0.0, help="Weight of a total-variation penalty that smooths the image (off by default)."),
+    grey_pull: float = typer.Option(0.0, "--grey-pull", min=0.0, help="Weight of a penalty on the squared distance of pixels from mid grey (off by default)."),
+    blur_period: int = typer.Option(0, "--blur-period", min=0, help="Blur the image once every N steps (0: never)."),
+    no_warps: bool = typer.Option(False, "--no-warps", help="No random warps (images turn to high-frequency noise)."),
     early_stop: bool = typer.Option(True, "--early-stop/--no-early-stop", help="Stop an image once its objective stops improving."),
     lr: float = typer.Option(0.05, "--lr", help="Adam learning rate."),
     batch_size: Optional[int] = typer.Option(None, "--batch-size", min=1, help="Images per pass (default: from free memory, at most 32)."),
@@ -262,11 +263,14 @@ def synth(
     """Pass 2: synthesise images that drive each unit, many units per batch."""
     import torch
 
-    from . import SynthConfig, parse_layers, synthesize
+    from . import Goal, SynthConfig, synthesize
     from .errors import UnitlensError
-    from .synth import TransformSpec, channel, diversity as diversity_term, neuron, pixel_norm, total_variation
-    from .synth.pipeline import model_from_run, run_layers
+    from .store import Run
+    from .synth import Warps
+    from .synth.pipeline import model_from_run
 
+    goal = Goal(tuple(layers or ()), units, reduce=reduce, drive=drive, diversity=diversity, smoothness=smoothness,
+                grey_pull=grey_pull)  # its syntax is checked here, before the model loads
     if threads:
         torch.set_num_threads(threads)
     run_dir = Path(target)
@@ -277,10 +281,7 @@ def synth(
         if given:
             raise UnitlensError(f"{target} is a run folder, whose manifest names the model; {', '.join(given)} "
                                 "apply only when TARGET is a model.")
-        from .store import Run
-
         m = model_from_run(run_dir, allow_pickle)
-        chosen = run_layers(m, Run(run_dir).manifest(), layers, units)
     else:
         if out is None or not layers:
             raise UnitlensError(f"'{target}' is not a run folder. To synthesise from a model, give --layers and --out "
@@ -289,25 +290,16 @@ def synth(
 
         check_folder(out)  # before the model loads
         m = _load(target, weights, size, mean, std, allow_pickle, arch_option)
-        chosen = parse_layers(m, layers, units)
         run_dir = out
+    chosen = goal.layers(m, Run(run_dir).manifest() if Run(run_dir).exists() else None)
     place(m, device)
-    if objective not in ("channel", "neuron"):
-        raise UnitlensError(f"--objective must be channel or neuron, got '{objective}'.")
-    obj = channel() if objective == "channel" else neuron()
-    if diversity:
-        obj = obj + diversity * diversity_term()
-    if tv:
-        obj = obj - tv * total_variation()
-    if l2:
-        obj = obj - l2 * pixel_norm(2)
-    config = SynthConfig(steps=steps, size=size, per_unit=per_unit, seed=seed, lr=lr, param=param,
-                         transforms=TransformSpec.none() if no_transforms else TransformSpec(),
-                         blur_every=blur_every, stop_gain=SynthConfig.stop_gain if early_stop else None,
+    config = SynthConfig(steps=steps, size=size, per_unit=per_unit, seed=seed, lr=lr, basis=basis,
+                         warps=Warps.none() if no_warps else Warps(),
+                         blur_period=blur_period, stop_gain=SynthConfig.stop_gain if early_stop else None,
                          batch_size=batch_size)
     n_units = sum(len(lu.units) for lu in chosen)
     print(f"Synthesising {n_units} units in {len(chosen)} layer(s), {steps} steps at most -> {run_dir}", file=sys.stderr)
-    run = synthesize(m, chosen, run_dir, config, obj, progress=sys.stderr.isatty(), force=force)
+    run = synthesize(m, goal, run_dir, config, progress=sys.stderr.isatty(), force=force)
     print(run.path)
 
 

@@ -223,7 +223,8 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
     if (config.synth if config.synth is not None else fresh) and not summary["synth"]:
         from .synth import synthesize
 
-        synthesize(model, (lu,), run.path, _synth_config(run, model, config), progress=progress)
+        goal, synth_config = _synth_goal_config(run, model, lu, config)
+        synthesize(model, goal, run.path, synth_config, progress=progress)
         summary = unit_summary(run, layer, channel)
     summary["exemplars"] = summary["exemplars"][:config.top_k]
     summary["model"] = model.spec
@@ -242,24 +243,20 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
     return summary
 
 
-def _synth_config(run: Run, model, config: ProbeConfig):
-    """The quick synthesis settings; in a run that already holds synthesised images, the run's own
-    (one folder holds images made one way), as far as a plain channel objective can repeat them."""
-    from .synth import SynthConfig, TransformSpec, channel
+def _synth_goal_config(run: Run, model, lu, config: ProbeConfig):
+    """(goal, settings) of the quick synthesis of `lu`; in a run that already holds
+    synthesised images, the run's own goal and settings (one folder holds images made one way)."""
+    from .synth import Goal, SynthConfig, Warps
 
     quick = SynthConfig(steps=config.synth_steps, seed=config.seed, checks=8, batch_size=1,
                         size=min(config.synth_size, model.preprocess.size))
     old = ((run.manifest().get("synth") or {}).get("settings") or {})
     d = old.get("config")
     if not d:
-        return quick
-    if old.get("objective") != channel().describe():
-        raise UnitlensError(f"{run.path} holds images synthesised for another objective ({old.get('objective')}); "
-                            f"synthesise this unit with `unitlens synth {run.path} --layers LAYER:CHANNEL` and "
-                            "the options used before.")
-    keep = {k: v for k, v in d.items() if k in SynthConfig.__dataclass_fields__ and k not in ("transforms", "size")}
-    return SynthConfig(**keep, size=d.get("size"), batch_size=1,
-                       transforms=TransformSpec.none() if d.get("transforms") is None else TransformSpec())
+        return Goal(lu), quick
+    keep = {k: v for k, v in d.items() if k in SynthConfig.__dataclass_fields__ and k not in ("warps", "size")}
+    return Goal(lu, **(old.get("goal") or {})), SynthConfig(
+        **keep, size=d.get("size"), batch_size=1, warps=Warps.none() if d.get("warps") is None else Warps())
 
 
 def _settings(config: ProbeConfig) -> dict:

@@ -26,7 +26,7 @@ import numpy as np
 
 from .errors import UnitlensError, shown
 
-FORMAT = 1
+FORMAT = 2  # 2: synthesis settings under the names of synth/ (goal, basis, warps); 1 is read by _from_format_1
 _UMASK = os.umask(0)
 os.umask(_UMASK)
 
@@ -195,11 +195,12 @@ class Run:
             )
         if m.get("format", 0) > FORMAT:
             raise UnitlensError(f"{self.path} was written by a newer unitlens (format {m['format']}).")
-        return m
+        return _current(m)
 
     def save_manifest(self, m: dict) -> None:
         from . import __version__
 
+        m.update(_current(m))  # a manifest read as a plain file is written back under today's names
         m["format"] = FORMAT
         m["unitlens"] = __version__
         m.setdefault("created", now())
@@ -254,3 +255,44 @@ class Run:
                 f"Layer '{layer}' has not been mined in {self.path}. Mined: {', '.join(mined) or 'none'}."
             )
         return read_npz(path)
+
+
+# Format 1 named the synthesis settings otherwise; every reader of a manifest goes through
+# Run.manifest, so this is the one place that maps them.
+_CONFIG_1 = {"param": "basis", "blur_every": "blur_period", "decorrelate": "whiten_colour", "decay": "falloff",
+             "transforms": "warps"}
+
+
+def _current(m: dict) -> dict:
+    return _from_format_1(m) if m.get("format", FORMAT) < 2 else m
+
+
+def _from_format_1(m: dict) -> dict:
+    """A format-1 manifest with its synthesis settings under today's names (a copy; the file is left as it is)."""
+    settings = (m.get("synth") or {}).get("settings")
+    if not settings or "objective" not in settings:
+        return m
+    config = {_CONFIG_1.get(k, k): v for k, v in (settings.get("config") or {}).items()}
+    new = {"config": config, "goal": _goal_from_terms(settings.get("objective") or []),
+           **{k: v for k, v in settings.items() if k not in ("config", "objective")}}
+    return {**m, "synth": {**m["synth"], "settings": new}}
+
+
+def _goal_from_terms(terms: list[dict]) -> dict:
+    """Format 1's weighted terms as the plain fields of a goal (synth/goal.py, Goal.record)."""
+    g = {"reduce": "mean", "position": None, "direction": None, "drive": "up", "diversity": 0.0,
+         "diversity_layer": None, "smoothness": 0.0, "tv_beta": 2.0, "grey_pull": 0.0, "grey_power": 2.0}
+    for t in terms:
+        w, kind = float(t.get("weight", 1.0)), t.get("term")
+        if kind in ("channel", "neuron") and w:
+            g["drive"] = "up" if w > 0 else "down"
+            if kind == "neuron":
+                y, x = t.get("y"), t.get("x")
+                g.update(reduce="centre") if y is None and x is None else g.update(reduce="at", position=[y, x])
+        elif kind == "diversity":
+            g.update(diversity=w, diversity_layer=t.get("layer"))
+        elif kind == "total_variation":
+            g.update(smoothness=-w, tv_beta=float(t.get("beta", 2.0)))
+        elif kind == "pixel_norm":
+            g.update(grey_pull=-w, grey_power=float(t.get("p", 2.0)))
+    return g

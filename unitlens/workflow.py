@@ -139,7 +139,7 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
     from .atlas import render_atlas
     from .mining import mine
     from .store import Run
-    from .synth import synthesize
+    from .synth import Goal, synthesize
 
     g = dist.group()  # under torchrun: every rank mines and synthesises its shard, rank 0 draws
     say = (log or (lambda msg: print(msg, file=sys.stderr))) if g.main else (lambda msg: None)
@@ -182,7 +182,7 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
     for k, lu in enumerate(layers, 1):
         say(f"[2/3] synthesis, layer {k}/{len(layers)} ({lu.layer}, {len(lu.units)} units); "
             f"{done}/{n_units} units done overall, {_eta(t0, done, n_units)}")
-        synthesize(model, (lu,), out, synth_config, progress=progress)
+        synthesize(model, Goal(lu), out, synth_config, progress=progress)
         done += len(lu.units)
         say(f"[3/3] atlas redrawn after {lu.layer}")
         draw(run)

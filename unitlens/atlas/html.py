@@ -190,7 +190,7 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
                                   "colour statistics": (mine.get("colour") or {}).get("source")})]
     ss = synth.get("settings") or {}
     if ss:
-        params.append(_params("Synthesis", {**(ss.get("config") or {}), "objective": ss.get("objective"),
+        params.append(_params("Synthesis", {**(ss.get("config") or {}), "goal": ss.get("goal"),
                                             "colour": (synth.get("colour") or {}).get("source") or ss.get("colour")}))
     params_s = tag("section", tag("h2", "Parameters"), *params, class_="panel wide")
     prov_s = tag("section", tag("h2", "Provenance"), _dl([

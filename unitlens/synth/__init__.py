@@ -1,9 +1,9 @@
 """Pass 2: synthesise images that drive units, many units of one layer per batch, on CPU.
 
-  param.py       spectral (1/f, colour-decorrelated) and pixel parameterisations
-  transforms.py  the random transforms applied at every step
-  objectives.py  channel, neuron, direction, diversity, regularisers; combined with + - *
-  optimise.py    the batched Adam loop, early stop, batch size from memory
+  goal.py        Goal: which units, how their feature maps are reduced, which way, penalty weights
+  bases.py       the image bases: spectral (1/f, colour-whitened) and pixel
+  warps.py       the random warps applied at every step
+  loop.py        the batched Adam loop, early stop, batch size from memory
   evidence.py    checks stored beside each image (robustness, rank, activation vs exemplars)
   pipeline.py    the run folder: validate, synthesise layer by layer, write, resume
   results.py     the on-disk layout, read back (for `show`, the atlas) without torch
@@ -14,12 +14,8 @@ from .._lazy import lazy_exports
 
 _EXPORTS = {
     "synthesize": "pipeline", "model_from_run": "pipeline", "unit_images": "results", "trace_of": "results",
-    "SynthConfig": "optimise", "optimise_units": "optimise", "iter_units": "optimise", "UnitResult": "optimise",
-    "TransformSpec": "transforms",
-    "ColourBasis": "param", "SpectralImage": "param", "PixelImage": "param",
-    "Objective": "objectives", "channel": "objectives", "neuron": "objectives", "direction": "objectives",
-    "negative": "objectives", "diversity": "objectives", "total_variation": "objectives",
-    "pixel_norm": "objectives",
+    "Goal": "goal", "SynthConfig": "loop", "optimise_units": "loop", "iter_layer": "loop", "UnitResult": "loop",
+    "Warps": "warps", "ColourBasis": "bases", "SpectralBasis": "bases", "PixelBasis": "bases",
 }
 __all__ = list(_EXPORTS)
 

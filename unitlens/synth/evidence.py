@@ -4,14 +4,14 @@ Synthetic references help people less than natural exemplars (Borowski et al., I
 network can be built to show one unit's visualisation for another (Geirhos et al. 2024), and an
 explanation must at least change when the weights do (Adebayo et al. 2018). So each image gets:
 
-  activation      the unit's objective statistic (channel: spatial mean) on the saved 8-bit image
+  activation      the unit's reduced value under the goal (e.g. the spatial mean) on the saved 8-bit image
   max_activation  the spatial maximum of the channel, the statistic mining ranks exemplars by,
                   on the image as mining would see it (resized to the model's input size if the
                   synthesis size differs, then normalised the same way)
   robustness      the activation under `checks` fresh random transforms: mean, std, and mean /
                   activation; a value far below 1 means the image works only as it stands
-  rank            where the target channel stands among all channels of the layer on this image
-                  (1 = the image drives this unit more than any other channel)
+  rank            where the target channel stands among all channels of the layer on this image, in
+                  the goal's direction (1 = the image drives this unit further than any other channel)
 
 Everything is computed from the 8-bit image that is written to disk, i.e. what a reader sees.
 """
@@ -21,23 +21,23 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-from .optimise import seed_for
-from .transforms import TransformSpec, warp
+from .loop import seed_for
+from .warps import Warps, warp
 
 
-def assess(model, layer: str, images: torch.Tensor, targets, unit_term, sign: float, spec: TransformSpec,
+def assess(model, layer: str, images: torch.Tensor, targets, scorer, spec: Warps,
            fill, seed: int, ms, checks: int = 32, extract=None) -> list[dict]:
     """images (N, 3, S, S) uint8; targets (N,) channels; ms (N,) image numbers within their unit.
 
-    `extract` is an extractor that returns the unit term's layer (made here if not given).
+    `scorer` is the goal's Scorer for `layer`; `extract` an extractor that returns `layer` (made here if not given).
     """
-    name = unit_term.layer or layer
+    name, sign = layer, scorer.sign
     extract = extract or model.extractor([name])
     x = images.float() / 255.0
     size = model.preprocess.size
     out = []
     with torch.no_grad():
-        stat = unit_term.all_channels(extract(model.normalize(x))[name])  # (N, C)
+        stat = scorer.per_channel(extract(model.normalize(x))[name])  # (N, C)
         xm = x if x.shape[-1] == size else F.interpolate(x, size=(size, size), mode="bilinear",
                                                          antialias=True, align_corners=False)
         # the resize gives floats; round to 8 bits like a decoded corpus image
@@ -53,7 +53,7 @@ def assess(model, layer: str, images: torch.Tensor, targets, unit_term, sign: fl
                 rng = np.random.default_rng(seed_for(seed, layer, t, int(m), "check"))
                 draws = torch.from_numpy(np.stack([spec.draw(rng) for _ in range(checks)]))
                 warped = warp(x[i:i + 1].expand(checks, -1, -1, -1), draws, spec.pad, fill, spec.pad_mode)
-                v = unit_term.all_channels(extract(model.normalize(warped))[name])[:, t].double()
+                v = scorer.per_channel(extract(model.normalize(warped))[name])[:, t].double()
                 mean, std = float(v.mean()), float(v.std(unbiased=False))
                 rec["robustness"] = {"n": checks, "mean": mean, "std": std,
                                      "relative": mean / act if abs(act) > 1e-12 else None}

@@ -11,43 +11,40 @@ from ..errors import UnitlensError, interrupted
 from ..store import Run, _atomic, disk_bytes, read_json, space_for, write_json, write_npz
 from ..facets import NaturalNeighbours, synth_neighbours
 from .evidence import assess
-from .objectives import Objective, channel
-from .optimise import SynthConfig, iter_units
-from .param import ColourBasis
+from .bases import ColourBasis
+from .goal import Goal
+from .loop import SynthConfig, iter_layer
 from .results import best_exemplars, same_model
 
 
-def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objective: Objective | None = None,
-               *, progress: bool = False, force: bool = False) -> Run:
-    """Synthesise images for `layers` (LayerUnits from parse_layers) into the run folder `out`.
+def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, progress: bool = False,
+               force: bool = False) -> Run:
+    """Synthesise images for the units of `goal` into the run folder `out`. In a run folder, a
+    layer named without channels means the channels mined there, and a goal without units all of them.
 
     Resumes: units already in the folder with the same settings are not redone.
 
-    >>> m = load_model("torchvision:resnet18", size=128)                               # doctest: +SKIP
-    >>> synthesize(m, parse_layers(m, ["layer3:0-15"]), "runs/r18", SynthConfig(steps=128))  # doctest: +SKIP
+    >>> m = load_model("torchvision:resnet18", size=128)                                 # doctest: +SKIP
+    >>> synthesize(m, Goal("layer3:0-15", diversity=0.5), "runs/r18", SynthConfig(steps=128))  # doctest: +SKIP
     """
     config.validate()
-    objective = objective if objective is not None else channel()
-    unit = objective.unit_term()
-    if unit is None:
-        raise UnitlensError("Run-folder synthesis needs an objective with exactly one channel or neuron term "
-                            f"(got {objective!r}); for other objectives use optimise_units.")
-    sign, term = unit
+    if goal.reduce == "direction":
+        raise UnitlensError("A run folder files images under their channel, and a direction goal has none; "
+                            "synthesise directions in memory with optimise_units.")
     size = config.size or model.preprocess.size
-    for lu in layers:  # everything checked before the first step
-        objective.check(model, lu.layer, lu.units)
-    model.check_size(size, sorted({term.layer or lu.layer for lu in layers}))
-
     run = Run(out)
-    g = dist.group()  # one process, or this rank of a torchrun job: it takes every world-th unit of a layer
-    manifest = read_json(run.manifest_path) or {}
+    manifest = run.manifest() if run.exists() else {}
     if manifest.get("model") and not same_model(manifest["model"], model.describe()):
         raise UnitlensError(f"{run.path} was made with another model ({manifest['model']['spec']}, weights "
                             f"{_weights_text(manifest['model'])}). Use another --out folder.")
     _check_mined(run, manifest)
+    layers = goal.layers(model, manifest)  # everything checked before the first step
+    model.check_size(size, sorted({lu.layer for lu in layers}))
+
+    g = dist.group()  # one process, or this rank of a torchrun job: it takes every world-th unit of a layer
     colour = ColourBasis.from_run(manifest)
-    used = colour if config.decorrelate else ColourBasis.plain(colour.mean)
-    settings = {"config": config.describe(size), "objective": objective.describe(), "colour": used.describe()}
+    used = colour if config.whiten_colour else ColourBasis.plain(colour.mean)
+    settings = {"config": config.describe(size), "goal": goal.record(), "colour": used.describe()}
     old = manifest.get("synth")
     if old and old.get("settings") != settings:
         # a start that finished no unit (e.g. stopped in its first batch) has nothing to lose
@@ -76,7 +73,7 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
     with space_for(run.path, max(0, need - sum(disk_bytes(run.layer_dir(lu.layer, "synth")) for lu in layers)),
                    "this synthesis"):
         for lu in layers:
-            _layer(run, model, lu, config, objective, term, sign, colour, size, progress)
+            _layer(run, model, lu, config, goal, colour, size, progress)
     if g.main:  # every rank is past its last write (the barrier closing _layer)
         run.remove_stage("synth", ())  # half-written files of a process killed mid-write (store._atomic)
         m = run.manifest()
@@ -106,7 +103,7 @@ def _check_mined(run: Run, manifest: dict) -> None:
                         "command again; it resumes), then synthesise.")
 
 
-def _layer(run, model, lu, config, objective, term, sign, colour, size, progress) -> None:
+def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
     from .._progress import Progress
 
     d = run.layer_dir(lu.layer, "synth")
@@ -121,14 +118,15 @@ def _layer(run, model, lu, config, objective, term, sign, colour, size, progress
     best = best_exemplars(run, lu.layer)
     bar = Progress(len(lu.units), len(lu.units) - len(todo), f"synth {lu.layer}", "units", per="h") \
         if progress and todo else None
-    spec = config.transforms.at(size)
-    extract = model.extractor([term.layer or lu.layer])
+    spec = config.warps.at(size)
+    scorer = goal.scorer(lu.layer)
+    extract = model.extractor([lu.layer])
     near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
     try:
         if todo:
-            for batch in _interruptible(iter_units(model, lu.layer, todo, config, objective, colour), lu, table):
+            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour), lu, table):
                 for r in batch:
-                    table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, term, sign, spec, colour,
+                    table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, scorer, spec, colour,
                                                                 config, best.get(r.target), extract, near)
                 write_json(own, table)  # the finished batch counts from here on
                 g.check(f"in synthesis of {lu.layer}")
@@ -176,7 +174,7 @@ def _interruptible(batches, lu, table):
                           "Run the same command to resume.") from None
 
 
-def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best, extract, near=None) -> dict:
+def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, extract, near=None) -> dict:
     from PIL import Image
 
     u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
@@ -189,7 +187,7 @@ def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best
     for m, t in enumerate(r.traces):
         trace[m, :len(t)] = t
     write_npz(d / f"unit-{r.target:04d}.npz", trace=trace, steps=np.array(r.steps, dtype=np.int64))
-    checks = assess(model, layer, torch.from_numpy(u8).permute(0, 3, 1, 2), [r.target] * M, term, sign, spec,
+    checks = assess(model, layer, torch.from_numpy(u8).permute(0, 3, 1, 2), [r.target] * M, scorer, spec,
                     colour.mean, config.seed, range(M), config.checks, extract)
     images = []
     for m in range(M):

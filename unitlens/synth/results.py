@@ -14,7 +14,8 @@ Layout, beside the mining pass (every file readable without unitlens):
                                   "nearest": [{index, id, similarity}] the closest corpus images
                                   in the layer's embedding (cosine, facets.py); the record's
                                   "nearest_strip" names their thumbnails (near-0037.jpg)
-  manifest.json["synth"]          settings, colour basis and where it came from, per-layer status
+  manifest.json["synth"]          settings (config, goal: the plain fields of Goal.record, colour),
+                                  colour basis and where it came from, per-layer status
 
 A unit counts as done once it is in units.json (written after its images), so a killed run
 redoes at most the units of the batch in flight. A unit's images depend only on the settings and

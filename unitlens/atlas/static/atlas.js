@@ -400,11 +400,11 @@
       const rows = [];
       if (im.ratio !== null) rows.push(["vs best natural", "×" + fmt(im.ratio, 3), im.ratio < 1 ? "warn" : ""]);
       rows.push(["spatial max", fmt(im.max_activation, 4)]);
-      rows.push(["objective on saved image", fmt(im.activation, 4)]);
+      rows.push(["reduced value on saved image", fmt(im.activation, 4)]);
       if (im.rank) rows.push(["rank among " + (im.channels || "?") + " channels", String(im.rank), im.rank > 1 ? "warn" : ""]);
       if (im.robustness) {
         const r = im.robustness;
-        rows.push(["under " + r.n + " random transforms", fmt(r.mean) + " ± " + fmt(r.std) + (r.relative !== null ? " (" + pct(r.relative) + ")" : ""),
+        rows.push(["under " + r.n + " random warps", fmt(r.mean) + " ± " + fmt(r.std) + (r.relative !== null ? " (" + pct(r.relative) + ")" : ""),
           r.relative !== null && r.relative < 0.5 ? "warn" : ""]);
       }
       rows.push(["steps", String(im.steps)]);
@@ -414,14 +414,14 @@
     });
     const notes = [];
     if (rec.images.some(im => im.rank > 1)) notes.push("a rank above 1 means other channels of the layer respond more strongly to that image");
-    if (rec.images.some(im => im.robustness && im.robustness.relative !== null && im.robustness.relative < 0.5)) notes.push("an image that loses most of its effect under small transforms works only as it stands");
+    if (rec.images.some(im => im.robustness && im.robustness.relative !== null && im.robustness.relative < 0.5)) notes.push("an image that loses most of its effect under small warps works only as it stands");
     if (rec.images.some(im => im.ratio !== null && im.ratio < 1)) notes.push("below ×1 the image excites the unit less than the best natural exemplar");
     if (notes.length) add(sec, "p", "note warn", "Mind: " + notes.join("; ") + ".");
     if (rec.trace && rec.trace.some(t => t.step.length)) {
       const box = add(sec, "div", "plotbox");
       box.dataset.plot = "trace";
       box.appendChild(P.lines({ series: rec.trace.map((t, m) => ({ x: t.step, y: t.value, name: "image " + (m + 1) })),
-        width: 400, height: 170, xlabel: "optimisation step", ylabel: "objective (under that step's transform)", title: "objective per step" }));
+        width: 400, height: 170, xlabel: "optimisation step", ylabel: "goal score (under that step's warp)", title: "goal score per step" }));
     }
   }
 

@@ -27,9 +27,9 @@ import numpy as np
 import torch
 
 from ..errors import UnitlensError
-from .objectives import Context, Objective, channel
-from .param import ColourBasis, make_param
-from .transforms import TransformSpec, warp
+from .bases import ColourBasis, make_basis
+from .goal import Context, Goal, Scorer
+from .warps import Warps, warp
 
 MAX_REDRAWS = 4  # new random starts for a unit silent at its start (contrast x3 each time)
 BETAS = (0.9, 0.999)
@@ -46,14 +46,14 @@ class SynthConfig:
     seed: int = 0
     lr: float = 0.05  # Adam, as in Olah et al. 2017
     optimizer: str = "adam"  # or "gradient": plain ascent p += lr * grad (Erhan et al. 2009)
-    param: str = "spectral"  # or "pixel"
-    decorrelate: bool = True  # colour factor from the corpus covariance; False: plain RGB
-    decay: float = 1.0  # spectral amplitude ~ 1 / f^decay
+    basis: str = "spectral"  # or "pixel" (bases.py)
+    whiten_colour: bool = True  # colour factor from the corpus covariance; False: plain RGB
+    falloff: float = 1.0  # spectral amplitude ~ 1 / f^falloff
     init_std: float = 0.1
-    squash: str = "sigmoid"  # "sigmoid", "clip" or "none" (see param.py)
-    transforms: TransformSpec = field(default_factory=TransformSpec)
+    squash: str = "sigmoid"  # "sigmoid", "clip" or "none" (see bases.py)
+    warps: Warps = field(default_factory=Warps)
     norm: float | None = None  # project each whitened image onto the sphere of this L2 radius
-    blur_every: int = 0  # 0: never; else blur the parameters every n steps (Yosinski et al. 2015)
+    blur_period: int = 0  # 0: never; else blur the parameters once per this many steps (Yosinski et al. 2015)
     blur_sigma: float = 0.5
     stop_window: int = 32  # early stop: compare the mean objective over the last two windows ...
     stop_gain: float | None = 0.01  # ... and stop below this relative gain; None: always run all steps
@@ -64,7 +64,7 @@ class SynthConfig:
     def validate(self) -> None:
         for name, v, lo in (("steps", self.steps, 1), ("per_unit", self.per_unit, 1),
                             ("max_batch", self.max_batch, 1), ("stop_window", self.stop_window, 1),
-                            ("checks", self.checks, 0), ("blur_every", self.blur_every, 0)):
+                            ("checks", self.checks, 0), ("blur_period", self.blur_period, 0)):
             if v < lo:
                 raise UnitlensError(f"{name} must be at least {lo}, got {v}.")
         if self.size is not None and self.size < 16:
@@ -77,10 +77,10 @@ class SynthConfig:
             raise UnitlensError(f"optimizer must be 'adam' or 'gradient', got '{self.optimizer}'.")
 
     def describe(self, size: int) -> dict:
-        d = {k: getattr(self, k) for k in self.__dataclass_fields__ if k not in ("transforms", "batch_size",
+        d = {k: getattr(self, k) for k in self.__dataclass_fields__ if k not in ("warps", "batch_size",
                                                                                    "max_batch")}
         d["size"] = size
-        d["transforms"] = None if self.transforms.identity else self.transforms.describe(size)
+        d["warps"] = None if self.warps.identity else self.warps.describe(size)
         return d
 
 
@@ -93,6 +93,7 @@ class UnitResult:
     images: np.ndarray  # (M, H, W, 3) float32, in [0, 1] unless squash is "none"
     traces: list[np.ndarray]  # M objective traces (value under that step's transform), one per step run
     steps: list[int]  # steps used per image (<= config.steps when stopped early)
+    layer: str = ""
 
 
 def seed_for(seed: int, layer: str, target: int, m: int, purpose: str) -> int:
@@ -108,7 +109,7 @@ class _Unit:
         c, M = engine.config, engine.config.per_unit
         self.index, self.target = index, target
         gens = [torch.Generator().manual_seed(seed_for(c.seed, engine.layer, target, m, "init")) for m in range(M)]
-        self.params = torch.stack([engine.param.init(g) for g in gens])  # (M, *shape)
+        self.params = torch.stack([engine.basis.init(g) for g in gens])  # (M, *shape)
         self.m1 = torch.zeros_like(self.params)
         self.m2 = torch.zeros_like(self.params)
         self.step = torch.zeros(M, dtype=torch.long)
@@ -142,33 +143,34 @@ class _Batch:
 
 
 class _Engine:
-    def __init__(self, model, layer: str, targets, config: SynthConfig, objective: Objective | None,
+    def __init__(self, model, layer: str, targets, config: SynthConfig, goal: Goal | None,
                  colour: ColourBasis | None):
         config.validate()
         self.model, self.layer, self.config = model, layer, config
         self.targets = [int(t) for t in targets]
-        self.objective = objective if objective is not None else channel()
-        self.objective.check(model, layer, self.targets)  # before the first step
+        goal = goal if goal is not None else Goal()
+        goal.check(model, layer, self.targets)  # before the first step
+        self.score: Scorer = goal.scorer(layer)
         self.size = config.size or model.preprocess.size
         mean = colour.mean if colour else ColourBasis.default().mean
-        if not config.decorrelate:
+        if not config.whiten_colour:
             colour = ColourBasis.plain(mean)
         self.colour = colour or ColourBasis.default()
         options = {"squash": config.squash, "init_std": config.init_std}
-        if config.param == "spectral":
-            options["decay"] = config.decay
-        self.param = make_param(config.param, self.size, self.colour, **options)
-        self.spec = config.transforms.at(self.size)
-        self.extract = model.extractor(self.objective.layers(layer))
+        if config.basis == "spectral":
+            options["falloff"] = config.falloff
+        self.basis = make_basis(config.basis, self.size, self.colour, **options)
+        self.spec = config.warps.at(self.size)
+        self.extract = model.extractor(self.score.layers())
 
     # -- one step for a packed batch ------------------------------------------------------
     def values_and_grads(self, params, targets, groups, draws):
         p = params.detach().requires_grad_(True)
         with torch.enable_grad():
-            pixels = self.param.pixels(p)  # (B, 3, S, S)
+            pixels = self.basis.pixels(p)  # (B, 3, S, S)
             x = pixels if draws is None else warp(pixels, draws, self.spec.pad, self.colour.mean, self.spec.pad_mode)
             feats = self.extract(self.model.normalize(x))
-            values = self.objective(feats, Context(self.layer, targets, groups, pixels))  # (B,)
+            values = self.score(feats, Context(self.layer, targets, groups, pixels))  # (B,)
             (grad,) = torch.autograd.grad(-values.sum(), p)
         return values.detach(), grad
 
@@ -200,7 +202,7 @@ class _Engine:
             seen[0] += t.numel() * t.element_size()
             return t
 
-        p = torch.zeros((n, *self.param.shape))
+        p = torch.zeros((n, *self.basis.shape))
         draws = None if self.spec.identity else torch.tensor([[0, 0, 1.0, 0, 0, 0]] * n)
         t = torch.tensor([self.targets[0]] * n)
         with torch.autograd.graph.saved_tensors_hooks(pack, lambda t: t):
@@ -273,7 +275,7 @@ class _Engine:
             b.redraws[i] += 1
             k = int(b.redraws[i])
             gen = torch.Generator().manual_seed(seed_for(self.config.seed, self.layer, int(b.targets[i]), m, f"init-{k}"))
-            b.P[i] = self.param.init(gen) * 3.0**k
+            b.P[i] = self.basis.init(gen) * 3.0**k
         return silent
 
     def _update(self, P, m1, m2, g, step, rows) -> None:
@@ -295,18 +297,18 @@ class _Engine:
             m2.mul_(b2).addcmul_(g, g, value=1 - b2)
             denom = (m2 / (1 - b2**t)).sqrt_().add_(ADAM_EPS)
             P.addcdiv_(m1 * (c.lr / (1 - b1**t)), denom, value=-1.0)
-        if c.blur_every:
-            due = torch.nonzero((step + 1) % c.blur_every == 0).flatten()
+        if c.blur_period:
+            due = torch.nonzero((step + 1) % c.blur_period == 0).flatten()
             if len(due):
-                P[due] = self.param.blur(P[due], c.blur_sigma)
+                P[due] = self.basis.blur(P[due], c.blur_sigma)
         if c.norm is not None:
-            P.copy_(self.param.project(P, c.norm))
+            P.copy_(self.basis.project(P, c.norm))
 
     def _result(self, u: _Unit) -> UnitResult:
         with torch.no_grad():
-            px = self.param.pixels(u.params)  # (M, 3, S, S)
+            px = self.basis.pixels(u.params)  # (M, 3, S, S)
         return UnitResult(u.index, u.target, px.permute(0, 2, 3, 1).numpy().astype(np.float32),
-                          [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step])
+                          [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step], self.layer)
 
 
 def _stalled(trace: list[float], window: int, gain: float | None) -> bool:
@@ -343,23 +345,26 @@ def available_memory() -> int:
     return max(avail, 256 << 20)
 
 
-def iter_units(model, layer: str, targets, config: SynthConfig = SynthConfig(), objective: Objective | None = None,
+def iter_layer(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,
                colour: ColourBasis | None = None):
-    """Optimise one image set per target of `layer`; yield lists of UnitResult as units finish.
-
-    Everything is checked (targets, objective) before the first step.
-    """
-    yield from _Engine(model, layer, targets, config, objective, colour).run()
+    """Optimise one image set per target of `layer` (the goal's units aside); yield lists of
+    UnitResult as units finish. The goal is checked against `targets` before the first step."""
+    yield from _Engine(model, layer, targets, config, goal, colour).run()
 
 
-def optimise_units(model, layer: str, targets, config: SynthConfig = SynthConfig(),
-                   objective: Objective | None = None, colour: ColourBasis | None = None) -> list[UnitResult]:
-    """In-memory synthesis (no run folder): one UnitResult per target, in the order given.
+def optimise_units(model, goal: Goal, config: SynthConfig = SynthConfig(),
+                   colour: ColourBasis | None = None) -> list[UnitResult]:
+    """In-memory synthesis (no run folder): one UnitResult per unit of the goal, layer by layer in
+    the model's order, units in the order given. The whole goal is checked before the first step.
 
-    >>> m = load_model("torchvision:resnet18", size=64)                # doctest: +SKIP
-    >>> r = optimise_units(m, "layer2", [0, 5], SynthConfig(steps=64))  # doctest: +SKIP
-    >>> r[0].images.shape                                              # doctest: +SKIP
+    >>> m = load_model("torchvision:resnet18", size=64)                              # doctest: +SKIP
+    >>> r = optimise_units(m, Goal("layer2:0,5"), SynthConfig(steps=64))             # doctest: +SKIP
+    >>> r[0].images.shape                                                            # doctest: +SKIP
     (1, 64, 64, 3)
     """
-    got = {r.index: r for batch in iter_units(model, layer, targets, config, objective, colour) for r in batch}
-    return [got[i] for i in range(len(got))]
+    layers = goal.layers(model)
+    out = []
+    for lu in layers:
+        got = {r.index: r for batch in iter_layer(model, lu.layer, lu.units, config, goal, colour) for r in batch}
+        out += [got[i] for i in range(len(got))]
+    return out

@@ -1,4 +1,4 @@
-"""Transformation robustness: a fresh random geometric transform of every image at every step.
+"""Random warps (transformation robustness): a fresh random geometric transform of each image at each step.
 
 The default sequence is the one of Olah et al. 2017 (Feature Visualization, Distill):
 pad 16 px, jitter up to 16 px, scale by one of {1, 0.975, 1.025, 0.95, 1.05}, rotate by an
@@ -27,8 +27,8 @@ from ..errors import UnitlensError
 
 
 @dataclass(frozen=True)
-class TransformSpec:
-    """Settings of the random transforms; `TransformSpec.none()` turns them off."""
+class Warps:
+    """Settings of the random warps; `Warps.none()` turns them off."""
 
     pad: int = 16
     jitter: int = 16
@@ -39,7 +39,7 @@ class TransformSpec:
     reference: int = 224
 
     @classmethod
-    def none(cls) -> TransformSpec:
+    def none(cls) -> Warps:
         return cls(pad=0, jitter=0, scales=(1.0,), degrees=(0,), fine_jitter=0)
 
     def __post_init__(self):
@@ -55,14 +55,14 @@ class TransformSpec:
         return (self.pad == self.jitter == self.fine_jitter == 0 and set(self.scales) == {1.0}
                 and set(self.degrees) == {0})
 
-    def at(self, size: int) -> TransformSpec:
+    def at(self, size: int) -> Warps:
         """Pixel amounts for images of `size` px (see the module docstring)."""
         f = min(1.0, size / self.reference)
 
         def px(v: int) -> int:
             return max(1, round(v * f)) if v else 0
 
-        return TransformSpec(px(self.pad), px(self.jitter), self.scales, self.degrees, px(self.fine_jitter),
+        return Warps(px(self.pad), px(self.jitter), self.scales, self.degrees, px(self.fine_jitter),
                              self.pad_mode, self.reference)
 
     def describe(self, size: int) -> dict:
@@ -82,7 +82,7 @@ class TransformSpec:
 
 
 def warp(images: torch.Tensor, draws: torch.Tensor, pad: int, fill, pad_mode: str = "constant") -> torch.Tensor:
-    """Apply one transform per image. images (B, 3, S, S); draws (B, 6) from `TransformSpec.draw`.
+    """Apply one transform per image. images (B, 3, S, S); draws (B, 6) from `Warps.draw`.
 
     Content point u (pixels from the centre) goes to v = R(a) * s * (u + t) + t_fine; each output
     pixel v samples the padded canvas at u = R(-a) (v - t_fine) / s - t.

@@ -1,6 +1,6 @@
-"""Image parameterisations: what the optimiser actually moves, and how it becomes pixels.
+"""Image bases: what the optimiser actually moves, and how it becomes pixels (the parameterisation).
 
-Both parameterisations end the same way:
+Both bases end the same way:
 
     pixels = squash(mean + M @ z)          z (B, 3, H, W), one colour vector per pixel
 
@@ -15,11 +15,11 @@ natural-image default), so z is in whitened colour units, and ``squash`` maps to
 
 They differ in what z is:
 
-  SpectralImage  z = irfft2(scale * c): learnable Fourier coefficients c, white at the start, and a
+  SpectralBasis  z = irfft2(scale * c): learnable Fourier coefficients c, white at the start, and a
                  fixed amplitude scale of 1/f (DC clamped to the lowest frequency), so a step of the
                  same size on every coefficient moves low frequencies most. This is the whitened,
                  preconditioned basis of Olah et al. 2017 (Feature Visualization, Distill).
-  PixelImage     z itself, one number per pixel and channel (the plain baseline).
+  PixelBasis     z itself, one number per pixel and channel (the plain baseline).
 """
 from __future__ import annotations
 
@@ -161,10 +161,10 @@ class _Base:
         return {"kind": self.name, "size": self.size, "squash": self.squash, "init_std": self.init_std}
 
 
-class SpectralImage(_Base):
+class SpectralBasis(_Base):
     """Learnable Fourier coefficients with a 1/f amplitude scale (see the module docstring).
 
-    `decay` is the exponent of the scale: 1 gives a 1/f amplitude spectrum, like natural images
+    `falloff` is the exponent of the scale: 1 gives a 1/f amplitude spectrum, like natural images
     (power ~ 1/f^2; Field 1987). The scale is divided by its root-mean-square over the half
     spectrum, so white coefficients of variance v give pixels of variance about v.
     """
@@ -172,13 +172,13 @@ class SpectralImage(_Base):
     name = "spectral"
 
     def __init__(self, size: int, colour: ColourBasis, squash: str = "sigmoid", init_std: float = 0.1,
-                 decay: float = 1.0):
+                 falloff: float = 1.0):
         super().__init__(size, colour, squash, init_std)
-        self.decay = float(decay)
+        self.falloff = float(falloff)
         h = w = self.size
         self.shape = (3, h, w // 2 + 1, 2)  # real and imaginary parts of the rfft2 half spectrum
         self.freq = frequencies(h, w)  # (H, W//2+1) cycles per pixel
-        s = 1.0 / self.freq.clamp(min=1.0 / max(h, w)) ** self.decay  # DC clamped to the lowest frequency
+        s = 1.0 / self.freq.clamp(min=1.0 / max(h, w)) ** self.falloff  # DC clamped to the lowest frequency
         self.scale = s / s.pow(2).mean().sqrt()  # (H, W//2+1)
 
     def whitened(self, params: torch.Tensor) -> torch.Tensor:
@@ -191,10 +191,10 @@ class SpectralImage(_Base):
         return params * g[..., None]
 
     def describe(self) -> dict:
-        return {**super().describe(), "decay": self.decay, "dc": "clamped to the lowest frequency"}
+        return {**super().describe(), "falloff": self.falloff, "dc": "clamped to the lowest frequency"}
 
 
-class PixelImage(_Base):
+class PixelBasis(_Base):
     """One parameter per pixel and channel."""
 
     name = "pixel"
@@ -220,11 +220,11 @@ def frequencies(h: int, w: int) -> torch.Tensor:
     return torch.sqrt(fy * fy + fx * fx)
 
 
-PARAMS = {"spectral": SpectralImage, "pixel": PixelImage}
+BASES = {"spectral": SpectralBasis, "pixel": PixelBasis}
 
 
-def make_param(kind: str, size: int, colour: ColourBasis, **options):
-    """A parameterisation by name: 'spectral' (default everywhere) or 'pixel'."""
-    if kind not in PARAMS:
-        raise UnitlensError(f"Unknown parameterisation '{kind}'; valid: {', '.join(PARAMS)}.")
-    return PARAMS[kind](size, colour, **options)
+def make_basis(kind: str, size: int, colour: ColourBasis, **options):
+    """An image basis by name: 'spectral' (default everywhere) or 'pixel'."""
+    if kind not in BASES:
+        raise UnitlensError(f"Unknown image basis '{kind}'; valid: {', '.join(BASES)}.")
+    return BASES[kind](size, colour, **options)
