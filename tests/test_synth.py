@@ -2,7 +2,6 @@
 import json
 import math
 import re
-import sys
 
 import numpy as np
 import pytest
