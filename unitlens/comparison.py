@@ -12,7 +12,7 @@ and firing rate (max > 0), the Jaccard overlap of the top-K exemplar sets, and a
 
 Memory: never N x C x H x W. A sweep keeps per chosen layer and model the per-image channel means
 and maxima of all channels, (N, C) float32 each; cross-products are accumulated in float64 over
-row chunks, so run folders' float16 memory maps are read, not copied. Whole-map CKA holds one
+row chunks, so run folders' memory maps are read, not copied. Whole-map CKA holds one
 batch's (B, B) Gram matrix per layer and keeps a few numbers per layer pair per minibatch. The
 pooled-CKA interval reweights (m, m) float64 Gram matrices, m <= bootstrap_images (2048: ~35 MB each).
 The estimators themselves live in `_cka.py`.

@@ -4,7 +4,7 @@ Everything that searches or clusters goes through faiss (imported inside the fun
 importing this module stays cheap); numpy checks the borderline cases exactly.
 
 Embedding of a layer: each image's spatially pooled feature map (the mean of every channel over
-space). A layer of at most EMBED_DIM channels keeps them as they are (float16); a wider one is
+space). A layer of at most EMBED_DIM channels keeps them as they are (float32); a wider one is
 reduced to EMBED_DIM dimensions by PCA fitted on at most PCA_SAMPLE images spread evenly over
 the corpus. When every channel of a narrow layer was mined, mining's means.npy already is the
 embedding and nothing more is written. Search space: the embedding minus its corpus mean,
@@ -147,9 +147,9 @@ def finish_embedding(layer_dir: Path, skipped: np.ndarray) -> dict:
             sample = ok[np.linspace(0, len(ok) - 1, min(len(ok), PCA_SAMPLE)).round().astype(int)] if len(ok) else ok
             mean, comp = _pca(x[sample].astype(np.float64), EMBED_DIM)
             path, tmp = layer_dir / "embed.npy", layer_dir / ".embed.npy.tmp"
-            out = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.float16, shape=(N, comp.shape[0]))
+            out = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.float32, shape=(N, comp.shape[0]))
             for a in range(0, N, 8192):
-                out[a:a + 8192] = np.clip((x[a:a + 8192].astype(np.float64) - mean) @ comp.T, -65504, 65504)
+                out[a:a + 8192] = (x[a:a + 8192].astype(np.float64) - mean) @ comp.T
             out.flush()
             del out, x
             os.replace(tmp, path)
@@ -330,7 +330,7 @@ def facets_of(x: np.ndarray, seed: int = SEED) -> tuple[np.ndarray, float]:
 def top_images(idx: dict, column: np.ndarray | None, u: int, skipped: np.ndarray, n: int,
                groups: np.ndarray | None) -> np.ndarray:
     """Unit u's top-n images: the index's exact top-K in order, then the next ones by per-image
-    maximum (`column`: the unit's column of values.npy, float16; ties by corpus order), one per
+    maximum (`column`: the unit's column of values.npy; ties by corpus order), one per
     near-duplicate group if `groups` is given."""
     N = len(skipped)
     top = [int(i) for i in idx["top_image"][u] if i < N]

@@ -326,10 +326,11 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                         mx, mean = t.update(feats[name], ids, cls)
                         if name in values:
                             rows = g.row(ids.numpy(), config.batch_size)
-                            values[name][0][rows] = _f16(mx)
-                            values[name][1][rows] = _f16(mean)
+                            rows_of = (mx, mean)
                             if len(values[name]) > 2:
-                                values[name][2][rows] = _f16(mean if t.all_units else feats[name].float().mean((2, 3)))
+                                rows_of += (mean if t.all_units else feats[name].float().mean((2, 3)),)
+                            for a, x in zip(values[name], rows_of):
+                                a[rows] = _fit(x, a.dtype)
             next_index = upto
             if bar:
                 bar.advance(next_index)
@@ -365,15 +366,20 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     return run
 
 
-def _f16(t: torch.Tensor) -> np.ndarray:
-    return t.clamp(-65504, 65504).numpy().astype(np.float16)
+def _fit(t: torch.Tensor, dtype) -> np.ndarray:
+    """Rows for a per-image file. float32 keeps activations of any size (float16 read 65504 above its
+    range and 0 below 6e-8); float16 files come from older runs being resumed."""
+    if dtype == np.float16:
+        t = t.clamp(-65504, 65504)
+    return t.numpy().astype(dtype)
 
 
-def _open_values(path: Path, shape, fresh: bool, dtype=np.float16):
+def _open_values(path: Path, shape, fresh: bool, dtype=np.float32):
     if fresh:
         return np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
     a = np.load(path, mmap_mode="r+") if path.is_file() else None
-    if a is None or a.shape != shape or a.dtype != dtype:
+    older = dtype == np.float32 and a is not None and a.dtype == np.float16  # written by an earlier version
+    if a is None or a.shape != shape or (a.dtype != dtype and not older):
         # Resuming over a missing or foreign file would leave zeros in the rows mined before.
         found = "is missing" if a is None else f"holds {a.dtype} {a.shape}, not {np.dtype(dtype)} {tuple(shape)}"
         raise UnitlensError(f"Cannot resume mining: {path} {found}. Use --force to start this run's mining over.")
