@@ -209,3 +209,67 @@ def test_user_code_declares_its_preprocessing(tmp_path):
                     "def build():\n    return torch.nn.Conv2d(3, 4, 3)\n")
     with pytest.raises(UnitlensError, match="keys size, mean, std"):
         load_model(f"{code}:build")
+
+
+def test_torchscript_model_is_recorded_by_its_absolute_path(tmp_path, monkeypatch):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        torch.jit.save(torch.jit.script(nn.Sequential(nn.Conv2d(3, 4, 3))), str(tmp_path / "seq.pt"))
+    monkeypatch.chdir(tmp_path)
+    m = load_model("seq.pt", size=32)
+    assert m.spec == str((tmp_path / "seq.pt").resolve()) and m.describe()["spec"] == m.spec
+    monkeypatch.chdir(TESTS)
+    assert list(load_model(m.spec, size=32).layers()) == ["0"]  # reopened from another directory
+
+
+def test_user_code_imports_the_files_beside_it(tmp_path):
+    import sys
+
+    d = tmp_path / "project"
+    d.mkdir()
+    (d / "blocks_beside.py").write_text("from torch import nn\ndef stem():\n    return nn.Conv2d(3, 5, 3)\n")
+    (d / "net.py").write_text("from torch import nn\nimport blocks_beside\n"
+                              "def build():\n    return nn.Sequential(blocks_beside.stem(), nn.ReLU())\n")
+    before = list(sys.path)
+    m = load_model(f"{d / 'net.py'}:build", size=32)
+    assert m.layer("0").channels == 5
+    assert sys.path == before  # the folder is on the import path only while the file loads
+
+
+def test_a_model_file_that_exits_says_so(tmp_path):
+    code = tmp_path / "script_like.py"
+    code.write_text("import sys\nfrom torch import nn\ndef build():\n    return nn.Conv2d(3, 4, 3)\nsys.exit(3)\n")
+    with pytest.raises(UnitlensError, match=r"called sys.exit\(3\)"):
+        load_model(f"{code}:build")
+    r = run_cli("layers", f"{code}:build", check=False)
+    assert r.returncode == 1 and r.stderr.startswith("Error: ") and "sys.exit(3)" in r.stderr
+    code.write_text("import sys\ndef build():\n    sys.exit('no gpu')\n")
+    with pytest.raises(UnitlensError, match=r"build\(\) called sys.exit\('no gpu'\)"):
+        load_model(f"{code}:build")
+
+
+def test_training_checkpoints_nest_and_prefix_their_weights(tmp_path, capsys):
+    torch.manual_seed(2)
+    net = torchvision.models.resnet18(num_classes=5)
+    # as a training framework saves it: weights under 'state_dict', keys prefixed by the attribute
+    # that held the network, a loss with a weight of its own beside it
+    sd = {f"model.{k}": v for k, v in net.state_dict().items()}
+    torch.save({"epoch": 7, "state_dict": {**sd, "criterion.weight": torch.ones(5)}}, tmp_path / "ckpt.pth")
+    m = load_model("torchvision:resnet18", str(tmp_path / "ckpt.pth"))
+    assert m.module.fc.out_features == 5 and torch.equal(m.module.layer2[1].conv2.weight, net.layer2[1].conv2.weight)
+    err = capsys.readouterr().err
+    assert "prefix 'model.'" in err and "1 other keys left out (first: criterion.weight)" in err
+    # user code: a network held as `self.backbone`, saved under 'model' with an EMA copy beside it
+    code = tmp_path / "small.py"
+    code.write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU())\n")
+    small = nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU())
+    torch.save({"model": {f"backbone.{k}": v for k, v in small.state_dict().items()},
+                "model_ema": {f"backbone.{k}": v * 0 for k, v in small.state_dict().items()}}, tmp_path / "s.pt")
+    m = load_model(f"{code}:build", str(tmp_path / "s.pt"))
+    assert torch.equal(m.module[0].weight, small[0].weight)
+    assert "using 'model'" in capsys.readouterr().err
+    # weights that do not fit user code: no advice about --arch-option, which user code cannot take
+    torch.save({"net.0.weight": torch.zeros(8, 3, 3, 3), "net.0.bias": torch.zeros(8)}, tmp_path / "bad.pt")
+    with pytest.raises(UnitlensError, match="do not fit") as e:
+        load_model(f"{code}:build", str(tmp_path / "bad.pt"))
+    assert "--arch-option" not in str(e.value) and "small.py:build" in str(e.value)

@@ -12,6 +12,7 @@ import importlib.util
 import pickle
 import sys
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -131,7 +132,7 @@ def load_model(
         module, declared = _user_code(spec)
         file, func = spec.rsplit(":", 1)
         spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
-        wdesc = _load_weights_file(module, weights) if weights else {"kind": "none"}
+        wdesc = _load_weights_file(module, weights, f"{file}:{func}") if weights else {"kind": "none"}
         pre = _declared_preprocess(declared, Path(file).name)
     elif Path(spec).is_file():
         if weights:
@@ -140,6 +141,7 @@ def load_model(
                 "torchvision:<arch> or file.py:function."
             )
         module, wdesc = _model_file(Path(spec), allow_pickle)
+        spec = str(Path(spec).resolve())  # like user code and weights: the run opens from any directory
         pre = Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
     else:
         raise UnitlensError(_bad_spec_message(spec))
@@ -223,9 +225,9 @@ def _torchvision(arch: str, weights: str | None, options: dict):
     if not weights:
         return build(), {"kind": "none"}, pre, options
 
-    sd = _read_state_dict(Path(weights))
     # Adapt the constructor to what the checkpoint holds: a fine-tuned head, or no auxiliary heads.
     module = build()
+    sd = _unprefixed(_read_state_dict(Path(weights)), module.state_dict(), Path(weights))
     head = _last_linear(module)
     if head and f"{head}.weight" in sd and "num_classes" not in options:
         n = sd[f"{head}.weight"].shape[0]
@@ -236,7 +238,8 @@ def _torchvision(arch: str, weights: str | None, options: dict):
             options["aux_logits"] = False
     build = _builder(arch, options)
     module = build()
-    return module, _apply_state_dict(module, sd, Path(weights)), pre, options
+    return module, _apply_state_dict(module, sd, Path(weights), "pass constructor options with --arch-option "
+                                     "key=value"), pre, options
 
 
 def _builder(arch: str, options: dict):
@@ -278,16 +281,49 @@ def _read_state_dict(path: Path) -> dict:
         ) from None
     except Exception as e:
         raise UnitlensError(f"Cannot read weights file {path}: {e.__class__.__name__}: {e}") from None
-    if isinstance(obj, dict):
-        for key in ("state_dict", "model_state_dict", "model"):
-            if key in obj and isinstance(obj[key], dict):
-                obj = obj[key]
-                break
-    if not isinstance(obj, dict) or not all(isinstance(v, torch.Tensor) for v in obj.values()):
-        raise UnitlensError(f"{path} is not a state dict (a mapping of names to tensors).")
-    if obj and all(k.startswith("module.") for k in obj):  # saved from DataParallel / DDP
-        obj = {k[len("module."):]: v for k, v in obj.items()}
+    if isinstance(obj, dict) and not _tensors(obj):
+        # A training checkpoint: the weights sit under one entry beside epoch, optimiser state, ...
+        held = [k for k, v in obj.items() if _tensors(v)]
+        held.sort(key=lambda k: _NESTS.index(k) if k in _NESTS else len(_NESTS))
+        if held:
+            if len(held) > 1:
+                print(f"Note: {path} holds several sets of weights ({', '.join(held)}); using '{held[0]}'.",
+                      file=sys.stderr)
+            obj = obj[held[0]]
+    if not _tensors(obj):
+        raise UnitlensError(f"{path} is not a state dict (a mapping of names to tensors), nor a checkpoint "
+                            "holding one (e.g. under 'state_dict' or 'model').")
     return obj
+
+
+# Entries under which training frameworks keep the network's weights, most usual first (common practice).
+_NESTS = ("state_dict", "model_state_dict", "model", "net", "network", "module", "weights", "state_dict_ema",
+          "model_ema")
+
+
+def _tensors(obj) -> bool:
+    return isinstance(obj, dict) and bool(obj) and all(isinstance(v, torch.Tensor) for v in obj.values())
+
+
+def _unprefixed(sd: dict, own: dict, path: Path) -> dict:
+    """The checkpoint's keys with the one prefix removed that makes them the model's own: the attribute
+    that held the network in training (`module.` of DataParallel, `model.`, `net.`, `backbone.`, ...).
+    Keys outside that prefix (a loss, an EMA copy) are left out, and the note says so."""
+    if any(k in own for k in sd):
+        return sd
+    prefixes = dict.fromkeys(".".join(k.split(".")[:n]) + "." for k in sd for n in (1, 2) if k.count(".") >= n)
+    best, hits = None, 0
+    for p in prefixes:
+        n = sum(k[len(p):] in own for k in sd if k.startswith(p))
+        if n > hits:
+            best, hits = p, n
+    if best is None:
+        return sd
+    out = {k[len(best):]: v for k, v in sd.items() if k.startswith(best)}
+    rest = [k for k in sd if not k.startswith(best)]
+    left = f"; {len(rest)} other keys left out (first: {', '.join(rest[:3])})" if rest else ""
+    print(f"Note: loading the weights of {path} under the prefix '{best}' ({len(out)} keys){left}.", file=sys.stderr)
+    return out
 
 
 def _sha256(path: Path) -> str:
@@ -298,8 +334,9 @@ def _sha256(path: Path) -> str:
     return h.hexdigest()
 
 
-def _apply_state_dict(module: nn.Module, sd: dict, path: Path) -> dict:
+def _apply_state_dict(module: nn.Module, sd: dict, path: Path, remedy: str) -> dict:
     own = module.state_dict()
+    sd = _unprefixed(sd, own, path)
     missing = [k for k in own if k not in sd]
     unexpected = [k for k in sd if k not in own]
     wrong = [k for k in own if k in sd and tuple(own[k].shape) != tuple(sd[k].shape)]
@@ -316,15 +353,15 @@ def _apply_state_dict(module: nn.Module, sd: dict, path: Path) -> dict:
                 f"{tuple(own[k].shape)} in the model)"
             )
         raise UnitlensError(
-            f"Weights in {path} do not fit the model: " + "; ".join(parts) + ". "
-            "Check the architecture, or pass constructor options with --arch-option key=value."
+            f"Weights in {path} do not fit the model: " + "; ".join(parts) + f". Check the architecture, or {remedy}."
         )
     module.load_state_dict(sd, strict=True)
     return {"kind": "file", "path": str(path.resolve()), "sha256": _sha256(path)}
 
 
-def _load_weights_file(module: nn.Module, weights: str) -> dict:
-    return _apply_state_dict(module, _read_state_dict(Path(weights)), Path(weights))
+def _load_weights_file(module: nn.Module, weights: str, code: str) -> dict:
+    return _apply_state_dict(module, _read_state_dict(Path(weights)), Path(weights),
+                             f"make {code} build the network the checkpoint was saved from")
 
 
 def _declared_preprocess(declared, file: str) -> Preprocess:
@@ -351,23 +388,44 @@ def _user_code(spec: str) -> tuple[nn.Module, object]:
     mod_spec = importlib.util.spec_from_file_location(name, path)
     mod = importlib.util.module_from_spec(mod_spec)
     sys.modules[name] = mod  # lets dataclasses / pickling inside user code find their module
-    try:
-        mod_spec.loader.exec_module(mod)
-    except Exception as e:
-        raise UnitlensError(f"Importing {file} failed: {e.__class__.__name__}: {e}") from None
-    fn = getattr(mod, func, None)
-    if not callable(fn):
-        found = [n for n in dir(mod) if callable(getattr(mod, n)) and not n.startswith("_")]
-        near = closest(func, found)
-        hint = f" Closest: {', '.join(near)}." if near else ""
-        raise UnitlensError(f"{file} has no function '{func}'.{hint}")
-    try:
-        module = fn()
-    except Exception as e:
-        raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
+    with _beside(path):
+        try:
+            mod_spec.loader.exec_module(mod)
+        except SystemExit as e:
+            raise UnitlensError(f"Importing {file} called sys.exit({e.code!r}), so no model was built. Keep "
+                                "script code under `if __name__ == \"__main__\":` in that file.") from None
+        except Exception as e:
+            raise UnitlensError(f"Importing {file} failed: {e.__class__.__name__}: {e}") from None
+        fn = getattr(mod, func, None)
+        if not callable(fn):
+            found = [n for n in dir(mod) if callable(getattr(mod, n)) and not n.startswith("_")]
+            near = closest(func, found)
+            hint = f" Closest: {', '.join(near)}." if near else ""
+            raise UnitlensError(f"{file} has no function '{func}'.{hint}")
+        try:
+            module = fn()
+        except SystemExit as e:
+            raise UnitlensError(f"{spec}() called sys.exit({e.code!r}) instead of returning a model.") from None
+        except Exception as e:
+            raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
     if not isinstance(module, nn.Module):
         raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
     return module, getattr(mod, "PREPROCESS", None)
+
+
+@contextmanager
+def _beside(path: Path):
+    """The code file's folder on the import path while it loads, so it can import the files beside it
+    (as `python file.py` would)."""
+    folder = str(path.resolve().parent)
+    added = folder not in sys.path
+    if added:
+        sys.path.insert(0, folder)
+    try:
+        yield
+    finally:
+        if added and folder in sys.path:
+            sys.path.remove(folder)
 
 
 def _model_file(path: Path, allow_pickle: bool):
