@@ -49,3 +49,22 @@ def extreme_net() -> nn.Module:
         net[0].bias.fill_(0.0)
         net[2].weight.uniform_(0.5, 1.0).mul_(1e-14)
     return net
+
+
+def grey_net() -> nn.Module:
+    """A seeded random network on one input channel, as for X-ray, microscopy or document images."""
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Conv2d(1, 8, 3, padding=1), nn.ReLU(), nn.Conv2d(8, 6, 3, stride=2, padding=1), nn.ReLU())
+
+
+class Carried(nn.Sequential):
+    """A network that carries its own data configuration, as timm models do (`pretrained_cfg`)."""
+
+    def __init__(self):
+        super().__init__(nn.Conv2d(3, 4, 3), nn.ReLU())
+        self.pretrained_cfg = {"input_size": (3, 40, 56), "mean": (0.5, 0.4, 0.3), "std": (0.2, 0.25, 0.3),
+                               "interpolation": "bicubic", "crop_pct": 0.9}
+
+
+def carried() -> nn.Module:
+    return Carried()

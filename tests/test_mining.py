@@ -24,7 +24,7 @@ def _brute_force(model, corpus, layer, units):
     h = model.module.get_submodule(layer).register_forward_hook(lambda m, i, o: seen.append(o[:, units]))
     ids = []
     with torch.no_grad():
-        for b in batches(corpus, model.preprocess.size, batch_size=5, workers=0):
+        for b in batches(corpus, model.preprocess.frame, batch_size=5, workers=0):
             model.module(model.normalize(b.images))
             ids.append(b.indices)
     h.remove()

@@ -36,10 +36,11 @@ def _not_observable(spec: str) -> UnitlensError:
     )
 
 
-def observe_shapes(model, size: int) -> dict[str, tuple[tuple[int, int, int], bool]]:
+def observe_shapes(model, size: int | tuple[int, int]) -> dict[str, tuple[tuple[int, int, int], bool]]:
     """{name: ((C, H, W), is_block)} for every submodule whose output is 4-D, in the order produced."""
     module = model.module
-    x = torch.zeros(1, 3, size, size)
+    h, w = (size, size) if isinstance(size, int) else size
+    x = torch.zeros(1, model.preprocess.channels, h, w)
     seen: dict[str, tuple[tuple[int, int, int], bool]] = {}
     seq = script_sequence(module)
     if isinstance(module, torch.jit.ScriptModule) and seq is None:

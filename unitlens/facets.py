@@ -44,7 +44,7 @@ PAD = 2**62  # as in mining: an empty slot
 # -- near-duplicates ---------------------------------------------------------------------------
 
 def thumbnails(images: torch.Tensor) -> np.ndarray:
-    """uint8 (B, 3, H, W) network inputs -> uint8 (B, 3*THUMB*THUMB) area-averaged thumbnails."""
+    """uint8 (B, C, H, W) network inputs -> uint8 (B, C*THUMB*THUMB) area-averaged thumbnails."""
     t = torch.nn.functional.adaptive_avg_pool2d(images.float(), THUMB)  # pixel sums are exact in float32
     return t.round().clamp(0, 255).to(torch.uint8).reshape(len(images), -1).numpy()
 
@@ -411,7 +411,7 @@ NEAR_THUMB = 64  # their thumbnails (the network's view of the whole image) in a
 
 def synth_neighbours(near: NaturalNeighbours, model, layer: str, u8: np.ndarray, extract, out_dir: Path,
                      stem: str) -> tuple[list[list[dict]], str]:
-    """Nearest corpus images of synthesised images u8 (M, H, W, 3) in the layer's embedding.
+    """Nearest corpus images of synthesised images u8 (M, H, W, C) in the layer's embedding.
 
     The images are brought to the network's input size and 8 bits first, as a corpus image is.
     Writes `<stem>.jpg`: row m holds image m's neighbours, best first, NEAR_THUMB px each.
@@ -421,10 +421,10 @@ def synth_neighbours(near: NaturalNeighbours, model, layer: str, u8: np.ndarray,
     from .corpus import CorpusDataset
     from .store import _atomic
 
-    size = model.preprocess.size
+    size = model.preprocess.size  # (H, W)
     x = torch.from_numpy(u8).permute(0, 3, 1, 2).float() / 255.0
-    if x.shape[-1] != size:
-        x = torch.nn.functional.interpolate(x, size=(size, size), mode="bilinear", antialias=True, align_corners=False)
+    if tuple(x.shape[-2:]) != size:
+        x = torch.nn.functional.interpolate(x, size=size, mode="bilinear", antialias=True, align_corners=False)
     x = (x * 255).round().clamp(0, 255) / 255.0
     with torch.no_grad():
         f = extract(model.normalize(x))

@@ -166,8 +166,9 @@ def _merge(val, img, pos, new_val, new_img, new_pos, k, largest, groups=None):
 
 
 def colour_moments(images: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, int]:
-    """Sums for the RGB mean and covariance of uint8 images (B,3,H,W): (sum (3,), sum xx^T (3,3), n)."""
-    x = images.permute(1, 0, 2, 3).reshape(3, -1).float() / 255.0  # (3, pixels)
+    """Sums for the colour mean and covariance of uint8 images (B,C,H,W): (sum (C,), sum xx^T (C,C), n)."""
+    C = images.shape[1]
+    x = images.permute(1, 0, 2, 3).reshape(C, -1).float() / 255.0  # (C, pixels)
     return x.sum(1, dtype=torch.float64), (x @ x.T).double(), x.shape[1]  # no float64 copy of every pixel
 
 
@@ -238,7 +239,8 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     infos = {lu.layer: model.layer(lu.layer) for lu in layers}
     tallies = {lu.layer: LayerTally(lu.units, infos[lu.layer].channels, infos[lu.layer].width,
                                     config.top_k, n_classes) for lu in layers}
-    colour = [torch.zeros(3, dtype=torch.float64), torch.zeros(3, 3, dtype=torch.float64), 0]
+    C = model.preprocess.channels
+    colour = [torch.zeros(C, dtype=torch.float64), torch.zeros(C, C, dtype=torch.float64), 0]
     skipped: list[tuple[str, str]] = []
     start = 0
     state_path, meta_path = g.part(mdir / "state.npz"), g.part(mdir / "state.json")
@@ -276,7 +278,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
                 values[lu.layer] += (rows_file(d / "pooled.npy", infos[lu.layer].channels),)
     dedupe = None
     if config.dedupe:
-        dedupe = NearDuplicates(_open_values(mdir / "thumbs.npy", (N, 3 * THUMB * THUMB), start == 0, np.uint8),
+        dedupe = NearDuplicates(_open_values(mdir / "thumbs.npy", (N, C * THUMB * THUMB), start == 0, np.uint8),
                                 config.dedupe_threshold)
         dedupe.extend(start)  # groups of the images before a resume point are recomputed from their thumbnails
         for t in tallies.values():
@@ -305,7 +307,7 @@ def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config:
     next_index = start
     interrupted = False
     try:
-        for batch in batches(corpus, model.preprocess.size, start=start, batch_size=config.batch_size,
+        for batch in batches(corpus, model.preprocess.frame, start=start, batch_size=config.batch_size,
                              workers=config.workers, indices=shard):
             for i, reason in batch.failures:
                 skipped.append((corpus.files[i], reason))
@@ -420,7 +422,7 @@ def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progre
     m = run.manifest()
     m["corpus"] = _corpus_summary(corpus, skipped)
     m["mine"]["colour"] = {"mean": mu.tolist(), "cov": cov.tolist(), "pixels": colour[2],
-                           "source": "measured on this run's corpus (network inputs, RGB in [0, 1])"}
+                           "source": f"measured on this run's corpus (network inputs, {'RGB' if len(mu) == 3 else 'grey'} in [0, 1])"}
     m["mine"]["config"] = asdict(config)
     run.save_manifest(m)
     for name, entry in finish_layers(run, corpus, layers, skipped, groups).items():

@@ -27,12 +27,35 @@ IMAGENET_STD = (0.229, 0.224, 0.225)
 
 @dataclass(frozen=True)
 class Preprocess:
-    """How an image becomes a network input: shorter side resized to `size`, centre crop, normalised."""
+    """How an image becomes a network input: scaled to cover `size` = (height, width), centre crop,
+    `len(mean)` channels (3: RGB, 1: grey), normalised per channel."""
 
-    size: int
-    mean: tuple[float, float, float]
-    std: tuple[float, float, float]
+    size: tuple[int, int]
+    mean: tuple[float, ...]
+    std: tuple[float, ...]
     source: str  # where these numbers came from, shown in the manifest and the atlas
+    interpolation: str = "bilinear"
+
+    @property
+    def channels(self) -> int:
+        return len(self.mean)
+
+    @property
+    def frame(self):
+        """The corpus.Frame images are decoded to."""
+        from .corpus import Frame
+
+        return Frame(*self.size, self.channels, self.interpolation)
+
+    @property
+    def side(self) -> int:
+        """The longer side: synthesised images are squares of this size unless told otherwise."""
+        return max(self.size)
+
+    def size_text(self) -> str:
+        """'224' for a square input, '96x160' (height x width) otherwise."""
+        h, w = self.size
+        return str(h) if h == w else f"{h}x{w}"
 
 
 @dataclass(frozen=True)
@@ -87,21 +110,25 @@ class LoadedModel:
         return lambda x: {k: v.to(x.device) for k, v in run(x.to(self.device, non_blocking=True)).items()}
 
     def normalize(self, images: torch.Tensor) -> torch.Tensor:
-        """uint8 (B,3,H,W) or float in [0,1] -> normalised network input (float32)."""
+        """uint8 (B,C,H,W) or float in [0,1] -> normalised network input (float32)."""
         x = images.float()
         if images.dtype == torch.uint8:
             x = x / 255.0
-        mean = torch.tensor(self.preprocess.mean, dtype=x.dtype, device=x.device).view(1, 3, 1, 1)
-        std = torch.tensor(self.preprocess.std, dtype=x.dtype, device=x.device).view(1, 3, 1, 1)
+        mean = torch.tensor(self.preprocess.mean, dtype=x.dtype, device=x.device).view(1, -1, 1, 1)
+        std = torch.tensor(self.preprocess.std, dtype=x.dtype, device=x.device).view(1, -1, 1, 1)
         return (x - mean) / std
 
     def describe(self) -> dict:
         p = self.preprocess
+        h, w = p.size
+        pre = {"size": h if h == w else [h, w], "mean": list(p.mean), "std": list(p.std), "source": p.source}
+        if p.interpolation != "bilinear":  # recorded only when it differs, so older manifests still match
+            pre["interpolation"] = p.interpolation
         return {
             "spec": self.spec,
             "weights": self.weights,
             "arch_options": self.arch_options,
-            "preprocess": {"size": p.size, "mean": list(p.mean), "std": list(p.std), "source": p.source},
+            "preprocess": pre,
         }
 
 
@@ -111,9 +138,9 @@ def load_model(
     spec: str,
     weights: str | None = None,
     *,
-    size: int | None = None,
-    mean: tuple[float, float, float] | None = None,
-    std: tuple[float, float, float] | None = None,
+    size: int | tuple[int, int] | None = None,
+    mean: tuple[float, ...] | None = None,
+    std: tuple[float, ...] | None = None,
     allow_pickle: bool = False,
     arch_options: dict | None = None,
 ) -> LoadedModel:
@@ -133,7 +160,7 @@ def load_model(
         file, func = spec.rsplit(":", 1)
         spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
         wdesc = _load_weights_file(module, weights, f"{file}:{func}") if weights else {"kind": "none"}
-        pre = _declared_preprocess(declared, Path(file).name)
+        pre = _declared_preprocess(declared, Path(file).name) or _carried_preprocess(module) or _DEFAULT
     elif Path(spec).is_file():
         if weights:
             raise UnitlensError(
@@ -142,29 +169,107 @@ def load_model(
             )
         module, wdesc = _model_file(Path(spec), allow_pickle)
         spec = str(Path(spec).resolve())  # like user code and weights: the run opens from any directory
-        pre = Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+        pre = _DEFAULT
     else:
         raise UnitlensError(_bad_spec_message(spec))
 
     overridden = [k for k, v in (("size", size), ("mean", mean), ("std", std)) if v is not None]
     if overridden:
         pre = Preprocess(
-            size or pre.size,
+            _height_width(size) if size is not None else pre.size,
             tuple(mean) if mean else pre.mean,
             tuple(std) if std else pre.std,
             pre.source + f"; overridden: {', '.join(overridden)}",
+            pre.interpolation,
         )
-    if pre.size < 16:
-        raise UnitlensError(f"Input size {pre.size} is too small (at least 16 px).")
-    for name, v in (("mean", pre.mean), ("std", pre.std)):
-        if len(v) != 3:
-            raise UnitlensError(f"--{name} needs three numbers (R,G,B), got {len(v)}.")
-    if any(s <= 0 for s in pre.std):
-        raise UnitlensError(f"--std values must be positive, got {list(pre.std)}.")
+    pre = _check_preprocess(pre, _input_channels(module), given={k for k in ("mean", "std") if k in overridden})
     module.eval()
     for p in module.parameters():
         p.requires_grad_(False)
     return LoadedModel(spec, module, pre, wdesc, arch_options)
+
+
+_DEFAULT = Preprocess((224, 224), IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+# Decoding makes grey (1 channel) or RGB (3 channels) images; other channel counts have no image to come from.
+_DECODED = {1: "grey", 3: "RGB"}
+# The largest feature map of common architectures is about 21 times the input (VGG's first convolution:
+# 64 channels at full resolution for 3 input channels) [E]; 32 leaves room for the rest of the pass.
+_MEMORY_PER_INPUT = 32
+
+
+def _height_width(size) -> tuple[int, int]:
+    if isinstance(size, int):
+        return (size, size)
+    h, w = size
+    return (int(h), int(w))
+
+
+def _input_channels(module: nn.Module) -> int | None:
+    """Channels the network's first convolution takes (its first 4-D weight), None if it has none."""
+    for p in module.parameters():
+        if p.dim() == 4:
+            return int(p.shape[1])
+    return None
+
+
+def _check_preprocess(pre: Preprocess, channels: int | None, given: set) -> Preprocess:
+    """One mean and std per input channel (default statistics averaged for a grey model), a size that
+    is large enough and fits in memory, a known interpolation."""
+    from ._memory import available_memory
+    from .corpus import RESAMPLING
+
+    h, w = pre.size
+    if min(h, w) < 16:
+        raise UnitlensError(f"Input size {pre.size_text()} is too small (at least 16 px a side).")
+    want = channels or len(pre.mean)
+    if want not in _DECODED:
+        raise UnitlensError(f"The model's first convolution takes {want} input channels; images decode to 1 (grey) "
+                            "or 3 (RGB) channels, so it cannot be fed from image files.")
+    if len(pre.mean) != len(pre.std):
+        raise UnitlensError(f"--mean has {len(pre.mean)} numbers and --std {len(pre.std)}; give one per input "
+                            f"channel ({want} for this model).")
+    if len(pre.mean) != want:
+        if want == 1 and len(pre.mean) == 3 and not given:
+            # common practice for a grey model with RGB statistics: their average over the channels
+            pre = Preprocess(pre.size, (sum(pre.mean) / 3,), (sum(pre.std) / 3,),
+                             pre.source + ", averaged over R,G,B for a 1-channel model", pre.interpolation)
+        else:
+            names = "R,G,B" if want == 3 else "grey"
+            raise UnitlensError(f"--mean and --std need {want} number(s) ({names}): the model's first convolution "
+                                f"takes {want} input channel(s); got {len(pre.mean)}.")
+    if any(s <= 0 for s in pre.std):
+        raise UnitlensError(f"--std values must be positive, got {list(pre.std)}.")
+    if pre.interpolation not in RESAMPLING:
+        raise UnitlensError(f"Unknown interpolation '{pre.interpolation}'; valid: {', '.join(RESAMPLING)}.")
+    need, free = _MEMORY_PER_INPUT * 4 * want * h * w, available_memory()
+    if need > free:
+        raise UnitlensError(f"Input size {pre.size_text()} needs about {need / 2**30:.1f} GiB for one image's feature "
+                            f"maps; {free / 2**30:.1f} GiB are free. Give a smaller --size (this model's usual "
+                            "inputs are a few hundred pixels a side).")
+    return pre
+
+
+def _carried_preprocess(module: nn.Module) -> Preprocess | None:
+    """The data configuration a module carries (timm models: `pretrained_cfg`, older ones `default_cfg`,
+    a dict with input_size (C, H, W), mean, std, interpolation), or None."""
+    from .corpus import RESAMPLING
+
+    for attr in ("pretrained_cfg", "default_cfg"):
+        cfg = getattr(module, attr, None)
+        if not isinstance(cfg, dict) or "input_size" not in cfg:
+            continue
+        try:
+            _c, h, w = (int(v) for v in cfg["input_size"])
+            mean = tuple(float(v) for v in cfg.get("mean", IMAGENET_MEAN))
+            std = tuple(float(v) for v in cfg.get("std", IMAGENET_STD))
+        except (TypeError, ValueError):
+            raise UnitlensError(f"The model's {attr} has an input_size, mean or std that are not numbers: "
+                                f"{ {k: cfg.get(k) for k in ('input_size', 'mean', 'std')} }.") from None
+        interp = str(cfg.get("interpolation", "bilinear"))
+        used = interp if interp in RESAMPLING else "bilinear"
+        note = "" if used == interp else f" (its interpolation '{interp}' is not one we have: bilinear)"
+        return Preprocess((h, w), mean, std, f"the model's {attr} (input_size, mean, std, interpolation){note}", used)
+    return None
 
 
 def _bad_spec_message(spec: str) -> str:
@@ -213,12 +318,12 @@ def _torchvision(arch: str, weights: str | None, options: dict):
                 f"on a machine with internet and pass the file: --weights /path/to/{Path(w.url).name}"
             ) from None
         t = w.transforms()
-        pre = Preprocess(int(t.crop_size[0]), tuple(t.mean), tuple(t.std), f"torchvision metadata of {w}")
+        pre = Preprocess(_height_width(int(t.crop_size[0])), tuple(t.mean), tuple(t.std), f"torchvision metadata of {w}")
         return module, {"kind": "torchvision", "name": str(w), "url": w.url}, pre, options
 
     t = enum.DEFAULT.transforms()
     pre = Preprocess(
-        int(t.crop_size[0]), tuple(t.mean), tuple(t.std),
+        _height_width(int(t.crop_size[0])), tuple(t.mean), tuple(t.std),
         f"torchvision metadata of {enum.DEFAULT} (the architecture's default recipe)",
     )
     build = _builder(arch, options)
@@ -364,18 +469,20 @@ def _load_weights_file(module: nn.Module, weights: str, code: str) -> dict:
                              f"make {code} build the network the checkpoint was saved from")
 
 
-def _declared_preprocess(declared, file: str) -> Preprocess:
-    """A user's code file may declare its input: PREPROCESS = {"size": 96, "mean": (..), "std": (..)}."""
+def _declared_preprocess(declared, file: str) -> Preprocess | None:
+    """A user's code file may declare its input: PREPROCESS = {"size": 96 or (96, 160), "mean": (..),
+    "std": (..)}, one mean and std per input channel."""
     if declared is None:
-        return Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+        return None
     if not isinstance(declared, dict) or not set(declared) <= {"size", "mean", "std"}:
         raise UnitlensError(f"PREPROCESS in {file} must be a dict with keys size, mean, std; got {declared!r}.")
     try:
-        return Preprocess(int(declared.get("size", 224)), tuple(float(v) for v in declared.get("mean", IMAGENET_MEAN)),
+        return Preprocess(_height_width(declared.get("size", 224)),
+                          tuple(float(v) for v in declared.get("mean", IMAGENET_MEAN)),
                           tuple(float(v) for v in declared.get("std", IMAGENET_STD)), f"PREPROCESS in {file}")
     except (TypeError, ValueError):
-        raise UnitlensError(f"PREPROCESS in {file} needs an integer size and three numbers each for mean and std; "
-                            f"got {declared!r}.") from None
+        raise UnitlensError(f"PREPROCESS in {file} needs a size (an integer, or height and width) and one number "
+                            f"per input channel for mean and std; got {declared!r}.") from None
 
 
 def _user_code(spec: str) -> tuple[nn.Module, object]:
@@ -458,12 +565,12 @@ def _layer_table(model: LoadedModel) -> dict[str, LayerInfo]:
     from ._extract import observe_shapes
     from .geometry import receptive_fields
 
-    size = model.preprocess.size
-    shapes = observe_shapes(model, size)  # {name: ((C,H,W), is_block)} in execution order
+    p = model.preprocess
+    shapes = observe_shapes(model, p.size)  # {name: ((C,H,W), is_block)} in execution order
     try:
         # Squeeze-excitation gates are global, but where a unit fires is decided locally: treat
         # them like normalisation statistics, or every crop after the first gate is the whole image.
-        fields = receptive_fields(_observable(model), (size, size), global_context=False)
+        fields = receptive_fields(_observable(model), p.size, global_context=False)
     except UnitlensError as e:
         warnings.warn(f"receptive fields unavailable: {e}")
         fields = {}

@@ -33,7 +33,7 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
         raise UnitlensError("Run-folder synthesis needs an objective with exactly one channel or neuron term "
                             f"(got {objective!r}); for other objectives use optimise_units.")
     sign, term = unit
-    size = config.size or model.preprocess.size
+    size = config.size or model.preprocess.side
     for lu in layers:  # everything checked before the first step
         objective.check(model, lu.layer, lu.units)
 
@@ -43,7 +43,7 @@ def synthesize(model, layers, out, config: SynthConfig = SynthConfig(), objectiv
     if manifest.get("model") and not same_model(manifest["model"], model.describe()):
         raise UnitlensError(f"{run.path} was made with another model ({manifest['model']['spec']}, weights "
                             f"{_weights_text(manifest['model'])}). Use another --out folder.")
-    colour = ColourBasis.from_run(manifest)
+    colour = ColourBasis.from_run(manifest, model.preprocess.channels)
     used = colour if config.decorrelate else ColourBasis.plain(colour.mean)
     settings = {"config": config.describe(size), "objective": objective.describe(), "colour": used.describe()}
     old = manifest.get("synth")
@@ -152,11 +152,11 @@ def _interruptible(batches, lu, table):
 def _write_unit(d: Path, model, layer, r, term, sign, spec, colour, config, best, extract, near=None) -> dict:
     from PIL import Image
 
-    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
+    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, C)
     M = len(u8)
     files = [f"unit-{r.target:04d}-{m}.png" for m in range(M)]
-    for f, a in zip(files, u8):
-        _atomic(d / f, lambda fh, a=a: Image.fromarray(a).save(fh, format="PNG"))
+    for f, a in zip(files, u8):  # a grey image (H, W, 1) is saved as an 8-bit grey PNG
+        _atomic(d / f, lambda fh, a=a: Image.fromarray(a[..., 0] if a.shape[-1] == 1 else a).save(fh, format="PNG"))
     T = max(len(t) for t in r.traces)
     trace = np.full((M, T), np.nan, dtype=np.float32)
     for m, t in enumerate(r.traces):
