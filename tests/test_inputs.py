@@ -68,7 +68,7 @@ def grey_corpus(tmp_path_factory):
 def test_a_grey_model_mines_synthesises_and_draws_its_atlas(tmp_path, grey_corpus):
     out = tmp_path / "run"
     run_cli("mine", f"{NETS}:grey_net", "--size", 24, "--mean", "0.5", "--std", "0.25", "--corpus", grey_corpus,
-            "--layers", "3", "--top", 4, "--workers", 0, "--out", out)
+            "--layers", "3:0-1", "--top", 50, "--workers", 0, "--out", out)  # every image is an exemplar
     manifest = json.loads((out / "manifest.json").read_text())
     assert manifest["model"]["preprocess"]["mean"] == [0.5] and manifest["model"]["preprocess"]["std"] == [0.25]
     files = json.loads((out / "corpus.json").read_text())["files"]
@@ -76,12 +76,12 @@ def test_a_grey_model_mines_synthesises_and_draws_its_atlas(tmp_path, grey_corpu
     from nets import grey_net
 
     net = grey_net().eval()
-    values = np.load(out / "mine" / "3" / "values.npy")
+    values = np.load(out / "mine" / "3" / "values.npy")  # units 0 and 1
     digits = [i for i, f in enumerate(files) if f.startswith("digit")]
     x = torch.stack([torch.from_numpy(np.asarray(Image.open(grey_corpus / files[i]), dtype=np.float32))
                      for i in digits])[:, None] / 255.0  # (N, 1, 24, 24)
     with torch.no_grad():
-        want = net((x - 0.5) / 0.25).flatten(2).amax(2).numpy()
+        want = net((x - 0.5) / 0.25)[:, :2].flatten(2).amax(2).numpy()
     np.testing.assert_allclose(values[digits], want, rtol=1e-5, atol=1e-6)
     # the colour image was decoded to ITU-R 601 luma like PIL's own conversion: compare its statistics
     colour = manifest["mine"]["colour"]
@@ -95,6 +95,11 @@ def test_a_grey_model_mines_synthesises_and_draws_its_atlas(tmp_path, grey_corpu
     p = np.concatenate(pixels)
     assert colour["mean"][0] == pytest.approx(p.mean(), abs=2e-3)
     assert colour["cov"][0][0] == pytest.approx(p.var(), rel=2e-2)
+
+    # crops show what the grey network saw: the astronaut's colours are gone from the sheet
+    sheet = np.asarray(Image.open(out / "mine" / "3" / "sheet-000.jpg"), dtype=np.int16)  # (H, W, 3)
+    assert np.abs(sheet[..., 0] - sheet[..., 1]).max() <= 3 and np.abs(sheet[..., 2] - sheet[..., 1]).max() <= 3
+    assert "photo-astronaut.png" in [e["id"] for e in json.loads(run_cli("show", out, "3:0", "--json").stdout)["exemplars"]]
 
     run_cli("synth", out, "--layers", "3:0-1", "--steps", 12, "--size", 24, "--batch-size", 2)
     units = json.loads((out / "synth" / "3" / "units.json").read_text())["units"]

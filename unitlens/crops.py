@@ -57,8 +57,9 @@ def image_cells(path: Path, entries, size, thumb: int):
     draft gives different pixels, so entries are grouped by the draft their `need` selects and the
     image is decoded once per group: once in all for formats without drafts, and in practice once
     for a JPEG unless its crops differ a lot in size. Returns (boxes, cells, reason)."""
-    from .corpus import ImageProblem, decode_original, placement
+    from .corpus import ImageProblem, as_frame, decode_original, placement
 
+    grey = as_frame(size).channels == 1  # a grey model's crops show what it saw, not the file's colours
     needs = sorted({n for *_, n in entries})
     key = {n: n for n in needs} if len(needs) == 1 else _draft_sizes(path, needs)
     boxes: list = [None] * len(entries)
@@ -69,6 +70,8 @@ def image_cells(path: Path, entries, size, thumb: int):
             img, (W, H), (rx, ry) = decode_original(path, size=max(entries[j][1] for j in group))
         except ImageProblem as e:
             return None, None, e.reason
+        if grey:
+            img = img.convert("L").convert("RGB")
         place = placement(W, H, size)
         for j in group:
             b = place.to_original(entries[j][0])
