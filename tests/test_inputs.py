@@ -44,6 +44,8 @@ def test_crop_boxes_of_a_non_square_input_land_on_a_planted_feature(tmp_path):
         assert sx0 - 1 <= x0 < x1 <= sx1 + 1 and sy0 - 1 <= y0 < y1 <= sy1 + 1, (e["id"], e["box"], squares[e["id"]])
     sheet = Image.open(next((out / "mine" / "relu").glob("sheet-*.jpg")))
     assert sheet.size[1] >= 16  # the crops were cut
+    run_cli("atlas", out)
+    assert f"3 × {H} × {W} px" in (out / "atlas" / "index.html").read_text()
 
 
 @pytest.fixture(scope="module")
@@ -118,6 +120,6 @@ def test_a_grey_model_mines_synthesises_and_draws_its_atlas(tmp_path, grey_corpu
     assert basis["factor"] == [[pytest.approx(np.sqrt(colour["cov"][0][0]))]]
     index = run_cli("atlas", out).stdout.strip()
     html = (out / "atlas" / "index.html").read_text()
-    assert index.endswith("index.html") and "3" in html
+    assert index.endswith("index.html") and "1 × 24 × 24 px" in html and "mean (0.5), std (0.25)" in html
     pages = list((out / "atlas").rglob("*.html"))
     assert len(pages) > 1

@@ -308,6 +308,9 @@ def test_input_channels_follow_the_model(tmp_path):
             load_model(f"{NETS}:grey_net", **kw)
     with pytest.raises(UnitlensError, match=r"need 3 number\(s\) \(R,G,B\)"):
         load_model("torchvision:resnet18", mean=(0.5,), std=(0.5,))
+    code = tmp_path / "depthwise.py"  # a grouped first convolution: its weight holds 1 of the 3 channels
+    code.write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.Conv2d(3, 6, 3, groups=3))\n")
+    assert load_model(f"{code}:build", size=24).preprocess.channels == 3
     code = tmp_path / "four.py"
     code.write_text("from torch import nn\ndef build():\n    return nn.Conv2d(4, 2, 3)\n")
     with pytest.raises(UnitlensError, match="takes 4 input channels; images decode to 1"):

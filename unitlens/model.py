@@ -205,10 +205,12 @@ def _height_width(size) -> tuple[int, int]:
 
 
 def _input_channels(module: nn.Module) -> int | None:
-    """Channels the network's first convolution takes (its first 4-D weight), None if it has none."""
-    for p in module.parameters():
-        if p.dim() == 4:
-            return int(p.shape[1])
+    """Channels the network's first convolution takes (the first module with a 4-D weight), None if
+    it has none. A grouped convolution's weight holds in_channels / groups of them."""
+    for m in module.modules():
+        w = getattr(m, "weight", None)
+        if isinstance(w, torch.Tensor) and w.dim() == 4:
+            return int(getattr(m, "in_channels", None) or w.shape[1] * int(getattr(m, "groups", 1)))
     return None
 
 
