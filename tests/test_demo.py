@@ -33,7 +33,7 @@ def model():
 
 def test_shipped_weights_are_small_and_classify_fresh_swatches(model):
     assert net.WEIGHTS.stat().st_size <= 5 * 2**20
-    assert model.preprocess.size == net.INPUT_SIZE and model.preprocess.source == "PREPROCESS in net.py"
+    assert model.preprocess.size == (net.INPUT_SIZE,) * 2 and model.preprocess.source == "PREPROCESS in net.py"
     # Seed 9 was used neither in training (1), in its held-out check (2) nor by the demo corpus (0).
     fresh = [swatches.sample(i, seed=9) for i in range(240)]
     with torch.no_grad():

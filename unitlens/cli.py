@@ -17,9 +17,9 @@ app = typer.Typer(
 
 # -- shared options ------------------------------------------------------------------------
 Weights = typer.Option(None, "--weights", help="State-dict file, or a torchvision weights name (DEFAULT, IMAGENET1K_V2).")
-Size = typer.Option(None, "--size", help="Input size in pixels (default: from the weights' metadata).")
-Mean = typer.Option(None, "--mean", help="Normalisation mean, R,G,B (e.g. 0.5,0.5,0.5).")
-Std = typer.Option(None, "--std", help="Normalisation std, R,G,B.")
+Size = typer.Option(None, "--size", help="Input size in pixels, N (square) or HxW, e.g. 96x160 (default: from the weights' metadata).")
+Mean = typer.Option(None, "--mean", help="Normalisation mean, one per input channel: R,G,B (e.g. 0.5,0.5,0.5) or one for grey.")
+Std = typer.Option(None, "--std", help="Normalisation std, one per input channel.")
 AllowPickle = typer.Option(False, "--allow-pickle", help="Allow a whole pickled module as MODEL (runs code from the file).")
 ArchOption = typer.Option(None, "--arch-option", help="Constructor option for torchvision models, key=value (repeatable).")
 Json = typer.Option(False, "--json", help="Print JSON instead of a table.")
@@ -28,18 +28,27 @@ Dedupe = typer.Option(False, "--dedupe", help="Near-identical images (thumbnail 
                                              "unit's exemplars; off: the exact top-K.")
 
 
-def _triple(text: Optional[str], name: str):
+def _numbers(text: Optional[str], name: str):
     if text is None:
         return None
     from .errors import UnitlensError
 
     try:
-        vals = tuple(float(v) for v in text.split(","))
+        return tuple(float(v) for v in text.split(","))
     except ValueError:
-        raise UnitlensError(f"--{name} takes three numbers like 0.485,0.456,0.406, got '{text}'.") from None
-    if len(vals) != 3:
-        raise UnitlensError(f"--{name} takes three numbers (R,G,B), got {len(vals)}.")
-    return vals
+        raise UnitlensError(f"--{name} takes one number per input channel, like 0.485,0.456,0.406 (RGB) or 0.5 "
+                            f"(grey), got '{text}'.") from None
+
+
+def _size(text):
+    if text is None or isinstance(text, int):
+        return text
+    from .errors import UnitlensError
+
+    parts = text.lower().split("x")
+    if len(parts) > 2 or not all(p.strip().isdigit() for p in parts):
+        raise UnitlensError(f"--size takes N (a square input) or HxW (height x width, e.g. 96x160), got '{text}'.")
+    return int(parts[0]) if len(parts) == 1 else (int(parts[0]), int(parts[1]))
 
 
 def _arch_options(items: Optional[list[str]]) -> dict:
@@ -64,7 +73,7 @@ def place(model, device: str):
 def _load(model, weights, size, mean, std, allow_pickle, arch_option):
     from . import load_model
 
-    return load_model(model, weights, size=size, mean=_triple(mean, "mean"), std=_triple(std, "std"),
+    return load_model(model, weights, size=_size(size), mean=_numbers(mean, "mean"), std=_numbers(std, "std"),
                       allow_pickle=allow_pickle, arch_options=_arch_options(arch_option))
 
 
@@ -87,7 +96,7 @@ def _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_opt
 @app.command()
 def layers(
     model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
     as_json: bool = Json,
 ):
@@ -110,7 +119,7 @@ def layers(
         print(json.dumps(rows, indent=1))
         return
     p = m.preprocess
-    print(f"{m.spec}  input 3x{p.size}x{p.size}  ({p.source})")
+    print(f"{m.spec}  input {p.channels}x{p.size[0]}x{p.size[1]}  ({p.source})")
     print(f"{'layer':<34} {'C x H x W':>16} {'field':>9} {'stride':>7} {'offset':>8}  kind")
     reused = {r["module"] for r in rows if r["call"]}
     for r in rows:
@@ -141,7 +150,7 @@ def mine_cmd(
     force: bool = typer.Option(False, "--force", help="Start the run folder's mining over."),
     checkpoint_every: float = typer.Option(5.0, "--checkpoint-every", min=0.0, help="Seconds between saved checkpoints."),
     dedupe: bool = Dedupe, device: str = Device,
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Pass 1: find each unit's top- and bottom-activating images and their crops."""
@@ -217,7 +226,7 @@ def run_cmd(
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
     dedupe: bool = Dedupe, device: str = Device,
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Mine, synthesise and draw the atlas in one resumable command (kill it and run it again)."""
@@ -319,7 +328,7 @@ def compare_cmd(
     batch_size: int = typer.Option(64, "--batch-size", min=1, help="Images per forward pass (the minibatch of --full-maps)."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
-    size: Optional[int] = typer.Option(None, "--size", help="Input size of both models (default: from the weights' metadata)."),
+    size: Optional[str] = typer.Option(None, "--size", help="Input size of both models, N or HxW (default: from the weights' metadata)."),
     mean: Optional[str] = typer.Option(None, "--mean", help="Normalisation mean of both models, R,G,B."),
     std: Optional[str] = typer.Option(None, "--std", help="Normalisation std of both models, R,G,B."),
     allow_pickle: bool = AllowPickle, as_json: bool = Json, device: str = Device,
@@ -398,7 +407,7 @@ def probe_cmd(
     labels: Optional[str] = typer.Option(None, "--labels", help="'folders': class labels from first-level subfolders."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
     as_json: bool = Json,
 ):

@@ -56,7 +56,7 @@ def _timed(fn, repeats: int = 2) -> float:
 def calibrate(model, layers, batch: int, size: int) -> dict:
     """Seconds per mined image and per synthesis step of a full batch, measured on this machine."""
     ext = model.extractor([lu.layer for lu in layers])
-    x = torch.rand(batch, 3, model.preprocess.size, model.preprocess.size)
+    x = torch.rand(batch, model.preprocess.channels, *model.preprocess.size)
 
     def forward():
         with torch.inference_mode():
@@ -66,7 +66,7 @@ def calibrate(model, layers, batch: int, size: int) -> dict:
     per_step = {}
     for lu in layers:
         one = model.extractor([lu.layer])
-        img = torch.rand(batch, 3, size, size, requires_grad=True)
+        img = torch.rand(batch, model.preprocess.channels, size, size, requires_grad=True)
 
         def step():
             with torch.enable_grad():
@@ -145,7 +145,7 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
     say = (log or (lambda msg: print(msg, file=sys.stderr))) if g.main else (lambda msg: None)
     draw = render_atlas if g.main else (lambda run: None)
     run = Run(out)
-    size = synth_config.size or model.preprocess.size
+    size = synth_config.size or model.preprocess.side
     chosen_plan = None
     if budget is not None:
         seconds = parse_budget(budget)

@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import torch
 
+from .._memory import available_memory
 from ..errors import UnitlensError
 from .bases import ColourBasis, make_basis
 from .goal import Context, Goal, Scorer
@@ -90,7 +91,7 @@ class UnitResult:
 
     index: int  # position in the targets given
     target: int
-    images: np.ndarray  # (M, H, W, 3) float32, in [0, 1] unless squash is "none"
+    images: np.ndarray  # (M, H, W, C) float32, in [0, 1] unless squash is "none"
     traces: list[np.ndarray]  # M objective traces (value under that step's transform), one per step run
     steps: list[int]  # steps used per image (<= config.steps when stopped early)
     layer: str = ""
@@ -151,11 +152,14 @@ class _Engine:
         goal = goal if goal is not None else Goal()
         goal.check(model, layer, self.targets)  # before the first step
         self.score: Scorer = goal.scorer(layer)
-        self.size = config.size or model.preprocess.size
-        mean = colour.mean if colour else ColourBasis.default().mean
+        self.size = config.size or model.preprocess.side
+        C = model.preprocess.channels
+        mean = colour.mean if colour else ColourBasis.default(C).mean
         if not config.whiten_colour:
             colour = ColourBasis.plain(mean)
-        self.colour = colour or ColourBasis.default()
+        self.colour = colour or ColourBasis.default(C)
+        if len(self.colour.mean) != C:
+            raise UnitlensError(f"The colour basis has {len(self.colour.mean)} channels and the model takes {C}.")
         options = {"squash": config.squash, "init_std": config.init_std}
         if config.basis == "spectral":
             options["falloff"] = config.falloff
@@ -167,7 +171,7 @@ class _Engine:
     def values_and_grads(self, params, targets, groups, draws):
         p = params.detach().requires_grad_(True)
         with torch.enable_grad():
-            pixels = self.basis.pixels(p)  # (B, 3, S, S)
+            pixels = self.basis.pixels(p)  # (B, C, S, S)
             x = pixels if draws is None else warp(pixels, draws, self.spec.pad, self.colour.mean, self.spec.pad_mode)
             feats = self.extract(self.model.normalize(x))
             values = self.score(feats, Context(self.layer, targets, groups, pixels))  # (B,)
@@ -306,7 +310,7 @@ class _Engine:
 
     def _result(self, u: _Unit) -> UnitResult:
         with torch.no_grad():
-            px = self.basis.pixels(u.params)  # (M, 3, S, S)
+            px = self.basis.pixels(u.params)  # (M, C, S, S)
         return UnitResult(u.index, u.target, px.permute(0, 2, 3, 1).numpy().astype(np.float32),
                           [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step], self.layer)
 
@@ -324,25 +328,6 @@ def _stalled(trace: list[float], window: int, gain: float | None) -> bool:
 def is_out_of_memory(e: BaseException) -> bool:
     s = str(e).lower()
     return "out of memory" in s or "can't allocate memory" in s or "not enough memory" in s
-
-
-def available_memory() -> int:
-    """Bytes this process may still allocate: MemAvailable, capped by a cgroup limit if there is one."""
-    avail = 4 << 30
-    try:
-        for line in open("/proc/meminfo"):
-            if line.startswith("MemAvailable:"):
-                avail = int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    try:
-        limit = open("/sys/fs/cgroup/memory.max").read().strip()
-        if limit != "max":
-            used = int(open("/sys/fs/cgroup/memory.current").read())
-            avail = min(avail, int(limit) - used)
-    except (OSError, ValueError):
-        pass
-    return max(avail, 256 << 20)
 
 
 def iter_layer(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,

@@ -31,7 +31,7 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
     if goal.reduce == "direction":
         raise UnitlensError("A run folder files images under their channel, and a direction goal has none; "
                             "synthesise directions in memory with optimise_units.")
-    size = config.size or model.preprocess.size
+    size = config.size or model.preprocess.side
     run = Run(out)
     manifest = run.manifest() if run.exists() else {}
     if manifest.get("model") and not same_model(manifest["model"], model.describe()):
@@ -42,7 +42,7 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
     model.check_size(size, sorted({lu.layer for lu in layers}))
 
     g = dist.group()  # one process, or this rank of a torchrun job: it takes every world-th unit of a layer
-    colour = ColourBasis.from_run(manifest)
+    colour = ColourBasis.from_run(manifest, model.preprocess.channels)
     used = colour if config.whiten_colour else ColourBasis.plain(colour.mean)
     settings = {"config": config.describe(size), "goal": goal.record(), "colour": used.describe()}
     old = manifest.get("synth")
@@ -177,11 +177,11 @@ def _interruptible(batches, lu, table):
 def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, extract, near=None) -> dict:
     from PIL import Image
 
-    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
+    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, C)
     M = len(u8)
     files = [f"unit-{r.target:04d}-{m}.png" for m in range(M)]
-    for f, a in zip(files, u8):
-        _atomic(d / f, lambda fh, a=a: Image.fromarray(a).save(fh, format="PNG"))
+    for f, a in zip(files, u8):  # a grey image (H, W, 1) is saved as an 8-bit grey PNG
+        _atomic(d / f, lambda fh, a=a: Image.fromarray(a[..., 0] if a.shape[-1] == 1 else a).save(fh, format="PNG"))
     T = max(len(t) for t in r.traces)
     trace = np.full((M, T), np.nan, dtype=np.float32)
     for m, t in enumerate(r.traces):
