@@ -410,6 +410,16 @@ def test_synth_from_a_model_without_a_run(tmp_path, capsys):
     assert e["vs_best_exemplar"] is None and e["steps"] == 4
     code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1")
     assert code == 1 and "--out" in err
+    # --size is the network's input, as in every command; --synth-size the synthesised image's side
+    code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1:3", "--size", "32",
+                       "--synth-size", "24", "--steps", "2", "--out", tmp_path / "r24")
+    assert code == 0, err
+    assert json.loads((tmp_path / "r24" / "manifest.json").read_text())["model"]["preprocess"]["size"] == 32
+    from PIL import Image
+
+    assert Image.open(unit_images(tmp_path / "r24", "1", 3)[0]["image"]).size == (24, 24)
+    code, _, err = cli(capsys, "synth", out, "--size", "32")
+    assert code == 1 and "--size apply only when TARGET is a model" in err
 
 
 def test_a_killed_synthesis_resumes_without_redoing_finished_units(tmp_path, digits_model, monkeypatch):

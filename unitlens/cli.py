@@ -12,6 +12,7 @@ app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,
     help="Find out what the units (channels) of a convolutional network respond to.",
 )
 
@@ -21,7 +22,7 @@ Size = typer.Option(None, "--size", help="Input size in pixels (default: from th
 Mean = typer.Option(None, "--mean", help="Normalisation mean, R,G,B (e.g. 0.5,0.5,0.5).")
 Std = typer.Option(None, "--std", help="Normalisation std, R,G,B.")
 AllowPickle = typer.Option(False, "--allow-pickle", help="Allow a whole pickled module as MODEL (runs code from the file).")
-ArchOption = typer.Option(None, "--arch-option", help="Constructor option for torchvision models, key=value (repeatable).")
+ArchOption = typer.Option(None, "--arch-option", metavar="KEY=VALUE", help="Constructor option for torchvision models, key=value (repeatable).")
 Json = typer.Option(False, "--json", help="Print JSON instead of a table.")
 Device = typer.Option("cpu", "--device", help="Where the network runs: cpu, cuda or cuda:N (under torchrun, cuda is the GPU of LOCAL_RANK).")
 Dedupe = typer.Option(False, "--dedupe", help="Near-identical images (thumbnail cosine >= 0.99) count once in each "
@@ -86,7 +87,7 @@ def _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_opt
 # -- commands ------------------------------------------------------------------------------
 @app.command()
 def layers(
-    model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
+    model: str = typer.Argument(..., metavar="MODEL", help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
     weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
     as_json: bool = Json,
@@ -120,9 +121,9 @@ def layers(
 
 @app.command("mine")
 def mine_cmd(
-    model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
+    model: str = typer.Argument(..., metavar="MODEL", help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
     corpus: Path = typer.Option(..., "--corpus", help="Folder of images (searched recursively) or a text file of paths."),
-    layers: list[str] = typer.Option(..., "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
+    layers: list[str] = typer.Option(..., "--layers", metavar="LAYERS", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
     out: Path = typer.Option(..., "--out", help="Run folder to write (resumed if it exists)."),
     units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
     top: int = typer.Option(16, "--top", min=1, help="Exemplars kept per unit (top and bottom)."),
@@ -154,8 +155,8 @@ def mine_cmd(
 
 @app.command()
 def show(
-    run: Path = typer.Argument(..., help="A run folder."),
-    unit: str = typer.Argument(..., help="LAYER:CHANNEL, e.g. layer3:37."),
+    run: Path = typer.Argument(..., metavar="RUN", help="A run folder."),
+    unit: str = typer.Argument(..., metavar="UNIT", help="LAYER:CHANNEL, e.g. layer3:37."),
     as_json: bool = Json,
 ):
     """Print one unit's exemplars and statistics."""
@@ -189,9 +190,9 @@ def show(
 
 @app.command("run")
 def run_cmd(
-    model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
+    model: str = typer.Argument(..., metavar="MODEL", help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
     corpus: Path = typer.Option(..., "--corpus", help="Folder of images (searched recursively) or a text file of paths."),
-    layers: list[str] = typer.Option(..., "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
+    layers: list[str] = typer.Option(..., "--layers", metavar="LAYERS", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
     out: Path = typer.Option(..., "--out", help="Run folder (resumed if it exists)."),
     units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
     top: int = typer.Option(16, "--top", min=1, help="Exemplars kept per unit (top and bottom)."),
@@ -220,12 +221,12 @@ def run_cmd(
 
 @app.command("synth")
 def synth(
-    target: str = typer.Argument(..., help="A run folder (model and units from its manifest), or a MODEL (then give --layers and --out)."),
-    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable; default: those mined)."),
+    target: str = typer.Argument(..., metavar="TARGET", help="A run folder (model and units from its manifest), or a MODEL (then give --layers and --out)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable; default: those mined)."),
     units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
     out: Optional[Path] = typer.Option(None, "--out", help="Run folder to write when TARGET is a model (resumed if it exists)."),
     steps: int = typer.Option(256, "--steps", min=1, help="Adam steps per image at most (Olah et al. 2017 used 2560)."),
-    size: Optional[int] = typer.Option(None, "--size", help="Image size in px (default: the model's input size; for a MODEL also its input size)."),
+    synth_size: Optional[int] = typer.Option(None, "--synth-size", help="Synthesised image size in px (default: the model's input size)."),
     per_unit: int = typer.Option(1, "--per-unit", min=1, help="Images per unit."),
     seed: int = typer.Option(0, "--seed", help="Seed; a unit's images depend only on it, the layer, the channel and the image number."),
     param: str = typer.Option("spectral", "--param", help="spectral (1/f Fourier coefficients, decorrelated colour) or pixel (plain RGB)."),
@@ -241,8 +242,8 @@ def synth(
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
     force: bool = typer.Option(False, "--force", help="Redo synthesised images made with other settings."),
     device: str = Device,
-    weights: Optional[str] = Weights, mean: Optional[str] = Mean, std: Optional[str] = Std,
-    allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
+    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Pass 2: synthesise images that drive each unit, many units per batch."""
     import torch
@@ -258,7 +259,8 @@ def synth(
     if run_dir.is_dir():
         if out is not None:
             raise UnitlensError(f"{target} is a run folder; --out is for synthesising from a MODEL.")
-        given = [n for n, v in (("--weights", weights), ("--mean", mean), ("--std", std), ("--arch-option", arch_option)) if v]
+        given = [n for n, v in (("--weights", weights), ("--size", size), ("--mean", mean), ("--std", std),
+                                ("--arch-option", arch_option)) if v]
         if given:
             raise UnitlensError(f"{target} is a run folder, whose manifest names the model; {', '.join(given)} "
                                 "apply only when TARGET is a model.")
@@ -283,7 +285,7 @@ def synth(
         obj = obj - tv * total_variation()
     if l2:
         obj = obj - l2 * pixel_norm(2)
-    config = SynthConfig(steps=steps, size=size, per_unit=per_unit, seed=seed, lr=lr, param=param,
+    config = SynthConfig(steps=steps, size=synth_size, per_unit=per_unit, seed=seed, lr=lr, param=param,
                          transforms=TransformSpec.none() if no_transforms else TransformSpec(),
                          blur_every=blur_every, stop_gain=SynthConfig.stop_gain if early_stop else None,
                          batch_size=batch_size)
@@ -300,8 +302,8 @@ def compare_cmd(
     weights_a: Optional[str] = typer.Option(None, "--weights-a", help="Weights of model A: state-dict file or torchvision weights name."),
     weights_b: Optional[str] = typer.Option(None, "--weights-b", help="Weights of model B."),
     corpus: Optional[Path] = typer.Option(None, "--corpus", help="Probe images for two models (runs carry their corpus)."),
-    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Layers of A (and of B without --layers-b), comma-separated; LAYER:CHANNELS limits the unit tables. Runs: default, all mined in both."),
-    layers_b: Optional[list[str]] = typer.Option(None, "--layers-b", help="Layers of B, paired with --layers in depth order (e.g. another architecture)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Layers of A (and of B without --layers-b), comma-separated; LAYER:CHANNELS limits the unit tables. Runs: default, all mined in both."),
+    layers_b: Optional[list[str]] = typer.Option(None, "--layers-b", metavar="LAYERS", help="Layers of B, paired with --layers in depth order (e.g. another architecture)."),
     out: Optional[Path] = typer.Option(None, "--out", help="Folder for compare.json and the CSV tables (runs: default RUN_A/compare/<RUN_B name>)."),
     full_maps: bool = typer.Option(False, "--full-maps", help="Also CKA of whole feature maps (minibatch estimator, unbiased HSIC)."),
     top: int = typer.Option(16, "--top", min=1, help="Size of the top exemplar sets whose overlap (Jaccard) is reported."),
@@ -312,6 +314,7 @@ def compare_cmd(
     size: Optional[int] = typer.Option(None, "--size", help="Input size of both models (default: from the weights' metadata)."),
     mean: Optional[str] = typer.Option(None, "--mean", help="Normalisation mean of both models, R,G,B."),
     std: Optional[str] = typer.Option(None, "--std", help="Normalisation std of both models, R,G,B."),
+    arch_option: Optional[list[str]] = typer.Option(None, "--arch-option", metavar="KEY=VALUE", help="Constructor option for torchvision models, key=value, for both models (repeatable)."),
     allow_pickle: bool = AllowPickle, as_json: bool = Json, device: str = Device,
 ):
     """Compare two checkpoints (or two mined runs) on one corpus: CKA per layer, drift per unit."""
@@ -325,7 +328,7 @@ def compare_cmd(
     config = CompareConfig(top_k=top, full_maps=full_maps, bootstrap=bootstrap, batch_size=batch_size, workers=workers)
     if Path(a).is_dir() or Path(b).is_dir():
         given = [n for n, v in (("--weights-a", weights_a), ("--weights-b", weights_b), ("--size", size),
-                                ("--mean", mean), ("--std", std)) if v]
+                                ("--mean", mean), ("--std", std), ("--arch-option", arch_option)) if v]
         if given:
             raise UnitlensError(f"{', '.join(given)} apply to models; a run folder's manifest names its model.")
         s = compare(a, b, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
@@ -333,8 +336,8 @@ def compare_cmd(
     else:
         if out is None:
             raise UnitlensError("Comparing two models writes a folder: give --out DIR.")
-        ma = place(_load(a, weights_a, size, mean, std, allow_pickle, None), device)
-        mb = place(_load(b, weights_b, size, mean, std, allow_pickle, None), device)
+        ma = place(_load(a, weights_a, size, mean, std, allow_pickle, arch_option), device)
+        mb = place(_load(b, weights_b, size, mean, std, allow_pickle, arch_option), device)
         s = compare(ma, mb, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
                     progress=sys.stderr.isatty())
     if as_json:
@@ -353,8 +356,8 @@ def compare_cmd(
 
 @app.command("atlas")
 def atlas_cmd(
-    run: Path = typer.Argument(..., help="A run folder (mined, synthesised, or both), or a folder written by `compare`."),
-    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Redraw only these layers, comma-separated (repeatable; default: all)."),
+    run: Path = typer.Argument(..., metavar="RUN", help="A run folder (mined, synthesised, or both), or a folder written by `compare`."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Redraw only these layers, comma-separated (repeatable; default: all)."),
 ):
     """Draw the run's static HTML atlas into RUN/atlas/ (opens from file://, no server, no network).
 
@@ -367,8 +370,8 @@ def atlas_cmd(
 
 @app.command("probe")
 def probe_cmd(
-    target: str = typer.Argument(..., help="A model (then give --corpus and --out, or --image), or a mined run folder."),
-    unit: Optional[str] = typer.Argument(None, help="LAYER:CHANNEL, e.g. layer3:37 (leave out with --image)."),
+    target: str = typer.Argument(..., metavar="TARGET", help="A model (then give --corpus and --out, or --image), or a mined run folder."),
+    unit: Optional[str] = typer.Argument(None, metavar="UNIT", help="LAYER:CHANNEL, e.g. layer3:37 (leave out with --image)."),
     corpus: Optional[Path] = typer.Option(None, "--corpus", help="Images to mine the unit over (a model only)."),
     out: Optional[Path] = typer.Option(None, "--out", help="Run folder to write (a model only; resumed if it exists)."),
     top: int = typer.Option(9, "--top", min=1, help="Exemplars to keep and print; with --image, units to list."),
