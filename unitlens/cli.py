@@ -456,9 +456,27 @@ def demo_cmd(
     print(build_demo(out, units=units, progress=sys.stderr.isatty(), **given))
 
 
+def _print_warnings() -> None:
+    """Our warnings as one `Warning: ...` line each on stderr; others as Python prints them."""
+    import warnings
+
+    from .errors import UnitlensWarning
+
+    shown = warnings.showwarning
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, UnitlensWarning):
+            print(f"Warning: {message}", file=sys.stderr)
+        else:
+            shown(message, category, filename, lineno, file, line)
+
+    warnings.showwarning = show
+
+
 def main() -> None:
     from .errors import UnitlensError
 
+    _print_warnings()
     try:
         app()
     except UnitlensError as e:

@@ -1,4 +1,4 @@
-"""The one error class of unitlens, and a helper for 'did you mean' messages."""
+"""The one error class of unitlens, its warning class, and a helper for 'did you mean' messages."""
 from __future__ import annotations
 
 import difflib
@@ -9,6 +9,14 @@ class UnitlensError(Exception):
     """A problem with the user's input or environment, phrased for the user.
 
     The CLI prints it as a single ``Error: ...`` line and exits with status 1.
+    """
+
+
+class UnitlensWarning(UserWarning):
+    """Something the user should know that does not stop the work (e.g. random weights).
+
+    The library issues it through `warnings` (shown once per distinct message by default); the
+    CLI prints it as one ``Warning: ...`` line.
     """
 
 

@@ -18,7 +18,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from .errors import UnitlensError, closest
+from .errors import UnitlensError, UnitlensWarning, closest
 
 IMAGENET_MEAN = (0.485, 0.456, 0.406)
 IMAGENET_STD = (0.229, 0.224, 0.225)
@@ -162,7 +162,27 @@ def load_model(
     module.eval()
     for p in module.parameters():
         p.requires_grad_(False)
+    if wdesc["kind"] == "none":
+        _warn_random(spec)
     return LoadedModel(spec, module, pre, wdesc, arch_options)
+
+
+_WARNED: set[str] = set()  # specs warned about in this process
+
+
+def _warn_random(spec: str) -> None:
+    # A random network's units respond to nothing learnt, and every load draws new ones, so a run
+    # cannot be reopened with the same units; warn wherever such a model is built (once per spec).
+    if spec.startswith("torchvision:"):
+        what = f"{spec} has no weights: its units are a random initialisation"
+    else:
+        what = f"{spec} was given no weights: unless the function sets them, its units are a random initialisation"
+    # Once per spec and process ourselves: Python's own once-registry is cleared whenever any code
+    # changes the warning filters, which loading does (torchvision's constructors are silenced).
+    if spec in _WARNED:
+        return
+    _WARNED.add(spec)
+    warnings.warn(f"{what}, drawn anew at every load. Pass trained weights with --weights.", UnitlensWarning)
 
 
 def _bad_spec_message(spec: str) -> str:
