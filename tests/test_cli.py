@@ -46,3 +46,18 @@ def test_compare_passes_architecture_options_to_both_models(tmp_path):
                 "--corpus", tmp_path, "--out", tmp_path / "cmp", check=False)
     # the option reached the constructor (before the corpus was opened), which refused it by name
     assert r.returncode == 1 and "Bad architecture option for resnet18" in r.stderr and "no_such_option" in r.stderr
+
+
+def test_layers_table_explains_global_pools_and_fields_wider_than_the_input():
+    from conftest import ROOT, run_cli
+
+    spec = f"{ROOT / 'unitlens' / 'demo' / 'net.py'}:swatch_net"
+    rows = {line.split()[0]: line for line in run_cli("layers", spec, "--size", "16").stdout.splitlines() if line.strip()}
+    # AdaptiveAvgPool2d(1): every output value averages the whole input (geometry gives stride 0)
+    pool = rows["pool"].split()
+    assert pool[2:5] == ["global", "-", "-"], rows["pool"]
+    # block4 ends four 3x3 convs of strides 1, 2, 2, 2: field 1 + 2 * (1 + 1 + 2 + 4) = 17 px > 16 px
+    assert rows["block4"].split()[2] == "17*"
+    assert rows["block1"].split()[2] == "3"  # one 3x3 conv: 3 px, inside the 16 px input
+    notes = run_cli("layers", spec, "--size", "16").stdout
+    assert "* wider than the 16 px input" in notes and "global:" in notes

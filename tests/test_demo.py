@@ -116,3 +116,11 @@ def test_training_script_runs_and_writes_loadable_weights(tmp_path):
     assert r.returncode == 0, r.stderr
     assert "held-out accuracy per class" in r.stdout
     net.swatch_net().load_state_dict(torch.load(out, weights_only=True))
+
+
+def test_the_demo_folder_is_ignored_by_git_in_a_clone():
+    # the README's first command writes unitlens-demo/ into the clone; git must not offer to commit it
+    probe = ["unitlens-demo/atlas/index.html", "unitlens-demo/corpus/dots/dots-00000.png", "unitlens-demo/manifest.json"]
+    r = subprocess.run(["git", "check-ignore", "--no-index", *probe], cwd=ROOT, capture_output=True, text=True,
+                       check=False)
+    assert r.returncode == 0 and r.stdout.split() == probe, r.stderr

@@ -111,12 +111,23 @@ def layers(
     p = m.preprocess
     print(f"{m.spec}  input 3x{p.size}x{p.size}  ({p.source})")
     print(f"{'layer':<34} {'C x H x W':>16} {'field':>9} {'stride':>7} {'offset':>8}  kind")
+    wide = pooled = False
     for r in rows:
         shape = f"{r['channels']}x{r['height']}x{r['width']}"
         fs = "x".join(map(str, dict.fromkeys(r["rf_size_hw"]))) if r["rf_size_hw"] else "?"
         st = "x".join(map(str, dict.fromkeys(r["rf_stride_hw"]))) if r["rf_stride_hw"] else "?"
         off = "/".join(f"{v:g}" for v in dict.fromkeys(r["rf_offset_hw"])) if r["rf_offset_hw"] else "?"
+        if r["rf_stride_hw"] and 0 in r["rf_stride_hw"]:  # geometry's mark of a global pool
+            fs, st, off, pooled = "global", "-", "-", True
+        elif r["rf_size"] and r["rf_size"] > p.size:
+            fs, wide = fs + "*", True
         print(f"{r['name']:<34} {shape:>16} {fs:>9} {st:>7} {off:>8}  {'block' if r['block'] else 'op'}")
+    if wide:
+        print(f"* wider than the {p.size} px input: the field counts the padding beyond the edges; "
+              "crops are clipped to the image.")
+    if pooled:
+        print("global: every value pools the whole input (as a global average pool does), so each "
+              "position's crop is the whole image.")
 
 
 @app.command("mine")
