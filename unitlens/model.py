@@ -3,6 +3,7 @@
 A model spec is one of
   ``torchvision:<arch>``      any classification architecture in torchvision.models
   ``path/to/file.py:function`` the user's own code; ``function()`` returns an nn.Module
+  ``package.module:function``  the same from an installed package (recorded so: files move on reinstall)
   ``path/to/model.pt``         a TorchScript archive (or, with ``allow_pickle``, a pickled module)
 """
 from __future__ import annotations
@@ -18,6 +19,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
+from ._specs import MODULE_SPEC, canonical_spec
 from .errors import UnitlensError, UnitlensWarning, closest
 
 IMAGENET_MEAN = (0.485, 0.456, 0.406)
@@ -125,12 +127,13 @@ def load_model(
     arch_options = dict(arch_options or {})
     if spec.startswith("torchvision:"):
         module, wdesc, pre, arch_options = _torchvision(spec.split(":", 1)[1], weights, arch_options)
-    elif ".py:" in spec:
+    elif ".py:" in spec or (MODULE_SPEC.fullmatch(spec) and not Path(spec).is_file()):
         if arch_options:
             raise UnitlensError("Architecture options apply to torchvision:<arch> models only.")
-        module, declared = _user_code(spec)
-        file, func = spec.rsplit(":", 1)
-        spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
+        spec = canonical_spec(spec)  # code of an installed package goes by its module: files move
+        module, declared, file = _user_code(spec)
+        if ".py:" in spec:
+            spec = f"{Path(file).resolve()}:{spec.rsplit(':', 1)[1]}"  # found again from any directory
         wdesc = _load_weights_file(module, weights) if weights else {"kind": "none"}
         pre = _declared_preprocess(declared, Path(file).name)
     elif Path(spec).is_file():
@@ -195,7 +198,8 @@ def _bad_spec_message(spec: str) -> str:
         hint = " User code is given as path/to/file.py:function."
     return (
         f"Cannot understand model '{spec}'.{hint} Valid forms: torchvision:<arch> (e.g. "
-        "torchvision:resnet50), path/to/file.py:function, or an existing TorchScript file."
+        "torchvision:resnet50), path/to/file.py:function, package.module:function (an installed "
+        "package), or an existing TorchScript file."
     )
 
 
@@ -361,20 +365,12 @@ def _declared_preprocess(declared, file: str) -> Preprocess:
                             f"got {declared!r}.") from None
 
 
-def _user_code(spec: str) -> tuple[nn.Module, object]:
-    """The module built by `function()` in the file, and the file's PREPROCESS declaration (or None)."""
+def _user_code(spec: str) -> tuple[nn.Module, object, str]:
+    """The module built by `function()` in the code file or Python module, the code's PREPROCESS
+    declaration (or None), and the code's file."""
     file, func = spec.rsplit(":", 1)
-    path = Path(file)
-    if not path.is_file():
-        raise UnitlensError(f"Model code file not found: {file}")
-    name = f"unitlens_user_{hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:10]}"
-    mod_spec = importlib.util.spec_from_file_location(name, path)
-    mod = importlib.util.module_from_spec(mod_spec)
-    sys.modules[name] = mod  # lets dataclasses / pickling inside user code find their module
-    try:
-        mod_spec.loader.exec_module(mod)
-    except Exception as e:
-        raise UnitlensError(f"Importing {file} failed: {e.__class__.__name__}: {e}") from None
+    mod = _import_file(Path(file)) if file.endswith(".py") else _import_module(file)
+    file = getattr(mod, "__file__", None) or file
     fn = getattr(mod, func, None)
     if not callable(fn):
         found = [n for n in dir(mod) if callable(getattr(mod, n)) and not n.startswith("_")]
@@ -387,7 +383,31 @@ def _user_code(spec: str) -> tuple[nn.Module, object]:
         raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
     if not isinstance(module, nn.Module):
         raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
-    return module, getattr(mod, "PREPROCESS", None)
+    return module, getattr(mod, "PREPROCESS", None), file
+
+
+def _import_file(path: Path):
+    if not path.is_file():
+        raise UnitlensError(f"Model code file not found: {path}")
+    name = f"unitlens_user_{hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:10]}"
+    mod_spec = importlib.util.spec_from_file_location(name, path)
+    mod = importlib.util.module_from_spec(mod_spec)
+    sys.modules[name] = mod  # lets dataclasses / pickling inside user code find their module
+    try:
+        mod_spec.loader.exec_module(mod)
+    except Exception as e:
+        raise UnitlensError(f"Importing {path} failed: {e.__class__.__name__}: {e}") from None
+    return mod
+
+
+def _import_module(name: str):
+    try:
+        return importlib.import_module(name)
+    except ModuleNotFoundError as e:
+        raise UnitlensError(f"Cannot import the model's module '{name}' ({e}). Install the package that "
+                            "holds it, or give its code file as path/to/file.py:function.") from None
+    except Exception as e:
+        raise UnitlensError(f"Importing {name} failed: {e.__class__.__name__}: {e}") from None
 
 
 def _model_file(path: Path, allow_pickle: bool):

@@ -188,6 +188,7 @@ def _status(run: Run, layer: str, done: int, complete: bool) -> None:
 
 def model_from_run(run: Run | str, allow_pickle: bool = False):
     """Rebuild the LoadedModel a run folder was made with (spec, weights, preprocessing)."""
+    from .._specs import locate
     from ..model import load_model
 
     run = run if isinstance(run, Run) else Run(run)
@@ -200,7 +201,7 @@ def model_from_run(run: Run | str, allow_pickle: bool = False):
     if kind == "pickle" and not allow_pickle:
         raise UnitlensError(f"{run.path} was made from a pickled module ({d['spec']}); loading it runs code "
                             "from the file. Add --allow-pickle if you trust it.")
-    weights = {"file": w.get("path"), "torchvision": str(w.get("name", "")).split(".")[-1]}.get(kind)
+    weights = {"file": locate(w.get("path", "")), "torchvision": str(w.get("name", "")).split(".")[-1]}.get(kind)
     p = d["preprocess"]
     m = load_model(d["spec"], weights, size=p["size"], mean=tuple(p["mean"]), std=tuple(p["std"]),
                    allow_pickle=allow_pickle, arch_options=d.get("arch_options") or None)
