@@ -482,3 +482,31 @@ def test_a_unit_silent_at_its_start_gets_new_starts(tmp_path, monkeypatch):
     assert reached() == 0.0  # the plain start is dead
     monkeypatch.setattr(opt, "MAX_REDRAWS", 4)
     assert reached() > 1.0
+
+
+def test_progress_moves_with_every_step_not_only_per_batch(tmp_path, monkeypatch):
+    from unitlens import _progress
+
+    seen = []
+
+    class Recorder:  # stands in for the terminal bar
+        def __init__(self, total, done, *args, **kw):
+            seen.append(("start", total, done))
+
+        def advance(self, done, note=""):
+            seen.append((done, note))
+
+        def close(self):
+            seen.append(("close",))
+
+    monkeypatch.setattr(_progress, "Progress", Recorder)
+    m = load_model(f"{NETS}:digits_net", size=16)
+    steps = 5
+    synthesize(m, parse_layers(m, ["2:0-3"]), tmp_path / "r", SynthConfig(steps=steps, batch_size=2, **QUICK),
+               progress=True)
+    assert seen[0] == ("start", 4, 0) and seen[-1] == ("close",)
+    ticks = seen[1:-1]
+    # two batches of two units, every image runs all 5 steps: one tick per step, in units of work
+    assert [d for d, _ in ticks] == pytest.approx([k / steps * 2 for k in range(1, steps + 1)]
+                                                  + [2 + k / steps * 2 for k in range(1, steps + 1)])
+    assert [n for _, n in ticks] == [f"step {k}/{steps}" for k in range(1, steps + 1)] * 2

@@ -208,11 +208,14 @@ class _Engine:
         return seen[0]
 
     # -- the loop -------------------------------------------------------------------------
-    def run(self):
-        """Yield lists of finished UnitResults, in order of completion."""
+    def run(self, on_step=None):
+        """Yield lists of finished UnitResults, in order of completion. `on_step(units, step)` is
+        called after every step: units done so far, the running ones counted by the fraction of
+        their steps taken (so a progress bar moves within a batch), and the batch's furthest step."""
         M = self.config.per_unit
         if not self.targets:
             return
+        self._on_step, self._finished = on_step, 0
         cap = self.capacity()
         queue: deque = deque(range(len(self.targets)))  # unit indices, or paused _Unit objects
         active: list[_Unit] = []
@@ -231,13 +234,20 @@ class _Engine:
                 continue
             finished = [u for u in active if bool(u.done.all())]
             active = [u for u in active if not bool(u.done.all())]
+            self._finished += len(finished)
             yield [self._result(u) for u in finished]
 
     def _steps_until_one_finishes(self, units: list[_Unit]) -> None:
         b = _Batch(units, self.config.per_unit)
+        total = self.config.steps * self.config.per_unit
         try:
-            while not self.step(b):
-                pass
+            while True:
+                stop = self.step(b)
+                if self._on_step is not None:  # a unit whose images all stopped early counts as done
+                    taken = torch.where(b.done, self.config.steps, b.step).view(-1, b.M).sum(1)  # (units,)
+                    self._on_step(self._finished + float(taken.sum()) / total, int(b.step.max()))
+                if stop:
+                    break
         finally:  # on success or an out-of-memory error, the units keep the last completed step
             b.unpack(units)
 
@@ -344,12 +354,13 @@ def available_memory() -> int:
 
 
 def iter_units(model, layer: str, targets, config: SynthConfig = SynthConfig(), objective: Objective | None = None,
-               colour: ColourBasis | None = None):
+               colour: ColourBasis | None = None, on_step=None):
     """Optimise one image set per target of `layer`; yield lists of UnitResult as units finish.
 
-    Everything is checked (targets, objective) before the first step.
+    Everything is checked (targets, objective) before the first step. `on_step(units, step)`, if
+    given, hears after every step how far the work is (see _Engine.run).
     """
-    yield from _Engine(model, layer, targets, config, objective, colour).run()
+    yield from _Engine(model, layer, targets, config, objective, colour).run(on_step)
 
 
 def optimise_units(model, layer: str, targets, config: SynthConfig = SynthConfig(),

@@ -92,14 +92,16 @@ def _layer(run, model, lu, config, objective, term, sign, colour, size, progress
     todo = [c for c in g.shard(lu.units) if c not in finished]
     own = g.part(d / "units.json")  # several ranks never write one file
     best = best_exemplars(run, lu.layer)
-    bar = Progress(len(lu.units), len(lu.units) - len(todo), f"synth {lu.layer}", "units", per="h") \
-        if progress and todo else None
+    before = len(lu.units) - len(todo)
+    bar = Progress(len(lu.units), before, f"synth {lu.layer}", "units", per="h") if progress and todo else None
+    on_step = (lambda units, step: bar.advance(before + units, f"step {step}/{config.steps}")) if bar else None
     spec = config.transforms.at(size)
     extract = model.extractor([term.layer or lu.layer])
     near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
     try:
         if todo:
-            for batch in _interruptible(iter_units(model, lu.layer, todo, config, objective, colour), lu, table):
+            for batch in _interruptible(iter_units(model, lu.layer, todo, config, objective, colour, on_step), lu,
+                                        table):
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, term, sign, spec, colour,
                                                                 config, best.get(r.target), extract, near)
@@ -107,8 +109,6 @@ def _layer(run, model, lu, config, objective, term, sign, colour, size, progress
                 g.check(f"in synthesis of {lu.layer}")
                 if g.main:
                     _status(run, lu.layer, len(table["units"]), False)
-                if bar:
-                    bar.advance(len([c for c in lu.units if str(c) in table["units"]]))
         write_json(own, table)
         g.barrier(f"the end of synthesis of {lu.layer}")
         if g.main:
