@@ -99,6 +99,17 @@ def test_demo_command_builds_an_atlas(tmp_path):
     assert len(list((out / "corpus").rglob("*.png"))) == 36
     again = run_cli("demo", "--out", str(out), "--count", "36", "--units", "2", "--steps", "4", "--threads", "1")
     assert again.stdout.strip().splitlines()[-1] == str(index)  # resumed: nothing left to do
+    # ... and it says so, with the option that would redo it, instead of "mining 36 images"
+    assert "Nothing was redone" in again.stderr and "--force" in again.stderr
+    assert "mining 36 images" not in again.stderr and "left" not in again.stderr
+    # other settings need --force, which the message names and the command has
+    other = run_cli("demo", "--out", str(out), "--count", "40", "--units", "2", "--steps", "4", "--threads", "1",
+                    check=False)
+    assert other.returncode == 1 and "--force" in other.stderr
+    forced = run_cli("demo", "--out", str(out), "--count", "40", "--units", "2", "--steps", "4", "--threads", "1",
+                     "--force")
+    assert "Nothing was redone" not in forced.stderr and Run(out).manifest()["corpus"]["count"] == 40
+    assert all((out / "synth" / layer / "unit-0001.npz").is_file() for layer in LAYERS)
 
 
 def test_demo_refuses_a_folder_that_is_not_its_own(tmp_path):

@@ -91,6 +91,10 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
     assert (whole / "atlas" / "index.html").is_file()
     expect = _atlas_data(whole)
     assert expect
+    again = subprocess.run(_cmd(corpus, whole, r18_weights), cwd=ROOT, capture_output=True, text=True)
+    assert again.returncode == 0 and "Nothing was redone" in again.stderr and "--force" in again.stderr
+    assert "mining 24 images" not in again.stderr and "min left" not in again.stderr
+    assert _atlas_data(whole) == expect
 
     def mining_started(out):
         return lambda: (out / "mine" / "state.json").is_file()
@@ -107,3 +111,37 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
         r = subprocess.run(_cmd(corpus, out, r18_weights), cwd=ROOT, capture_output=True, text=True)
         assert r.returncode == 0, r.stderr
         assert _atlas_data(out) == expect, f"killed during {name}"
+
+
+def test_plan_counts_each_units_evidence_and_reports_mining_whole():
+    # Worked by hand: as the first example, plus 0.25 s of evidence per unit: a 64 * 0.25 = 16 s,
+    # b 32 * 0.25 = 8 s, so 1035.5 + 24 = 1059.5 s; every unit is still synthesised.
+    calib = {**CALIB, "synth_s_per_unit": {"a": 0.25, "b": 0.25}}
+    p = plan(2000, 1000, LAYERS, 256, 128, calib)
+    assert p.estimate_s == pytest.approx(1059.5) and [len(lu.units) for lu in p.layers] == [64, 32]
+    # already mined: the mining term is 0 whatever the corpus size
+    assert plan(2000, 10**9, LAYERS, 256, 128, calib, already_mined=True).estimate_s == pytest.approx(1048)
+
+
+def test_a_budget_cuts_synthesised_units_never_mined_ones(tmp_path, monkeypatch):
+    from unitlens import MineConfig, load_model, open_corpus, parse_layers, run_all, workflow
+    from unitlens.store import Run
+    from unitlens.synth import SynthConfig
+
+    # Calibration numbers fixed (no timing in tests): a batch of 2 units costs 1 s per step, mining nothing.
+    fixed = {"mine_s_per_image": 0.0, "synth_s_per_step": {"2": 1.0}, "synth_s_per_unit": {"2": 0.0},
+             "batch": 2, "size": 16}
+    monkeypatch.setattr(workflow, "calibrate", lambda *a, **k: fixed)
+    m = load_model(f"{ROOT / 'tests' / 'nets.py'}:digits_net", size=16)
+    layers = parse_layers(m, ["2:0-7"])
+    corpus = open_corpus(_corpus(tmp_path / "c", 6))
+    out = tmp_path / "run"
+    # 64 steps (the floor) x 1 s per batch of 2: 4 batches need 256 s; 150 s fit 2 batches, 4 units.
+    lines = []
+    run_all(m, corpus, layers, out, MineConfig(top_k=2, workers=0), SynthConfig(steps=64, checks=0),
+            budget="150s", log=lines.append)
+    man = Run(out).manifest()
+    assert man["mine"]["settings"]["layers"] == {"2": list(range(8))}  # every unit mined
+    assert man["budget"]["plan"]["units"] == {"2": 4} and man["synth"]["layers"]["2"]["channels"] == "0,2,4,6"
+    assert man["budget"]["plan"]["estimate_s"] == pytest.approx(128)
+    assert any("mining all 8 units" in line for line in lines), lines

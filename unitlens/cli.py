@@ -215,6 +215,7 @@ def run_cmd(
     batch_size: int = typer.Option(32, "--batch-size", min=1, help="Images per forward pass when mining."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    force: bool = typer.Option(False, "--force", help="Start the run folder's mining and synthesis over."),
     dedupe: bool = Dedupe, device: str = Device,
     weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
@@ -226,7 +227,7 @@ def run_cmd(
                                         layers, units, corpus, labels, device, threads)
     run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
                   SynthConfig(steps=steps, size=synth_size, seed=seed), budget=budget,
-                  progress=sys.stderr.isatty())
+                  progress=sys.stderr.isatty(), force=force)
     print(run.path / "atlas" / "index.html")
 
 
@@ -455,6 +456,7 @@ def demo_cmd(
     steps: Optional[int] = typer.Option(None, "--steps", min=1, help="Optimisation steps per synthesised image, at most (default 128)."),
     units: Optional[int] = typer.Option(None, "--units", min=1, help="Only the first N units of each layer (default: all 208)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    force: bool = typer.Option(False, "--force", help="Start the run over (the generated corpus is kept if it fits)."),
 ):
     """Build a whole atlas of the shipped swatch network on generated swatches (no downloads), print its path."""
     import torch
@@ -464,7 +466,7 @@ def demo_cmd(
     if threads:
         torch.set_num_threads(threads)
     given = {k: v for k, v in (("count", count), ("steps", steps)) if v is not None}
-    print(build_demo(out, units=units, progress=sys.stderr.isatty(), **given))
+    print(build_demo(out, units=units, progress=sys.stderr.isatty(), force=force, **given))
 
 
 def _print_warnings() -> None:

@@ -194,6 +194,13 @@ def _same_settings(prev: dict | None, new: dict) -> bool:
     return same_model(prev["model"], new["model"]) and rest(prev) == rest(new)
 
 
+def mined(out: str | Path, model, corpus, layers, config: MineConfig = MineConfig()) -> bool:
+    """True when `out` holds a finished mining pass with these settings (so `mine` would do nothing)."""
+    m = read_json(Run(out).manifest_path) or {}
+    return bool((m.get("mine") or {}).get("done")) and _same_settings(m["mine"].get("settings"),
+                                                                     _settings(model, corpus, layers, config))
+
+
 def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config: MineConfig = MineConfig(),
          *, progress: bool = False, force: bool = False, _stop_after: int | None = None) -> Run:
     """Mine exemplars for `layers` over `corpus` into the run folder `out`; resumes if interrupted.

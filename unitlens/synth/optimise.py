@@ -363,6 +363,23 @@ def iter_units(model, layer: str, targets, config: SynthConfig = SynthConfig(), 
     yield from _Engine(model, layer, targets, config, objective, colour).run(on_step)
 
 
+def step_seconds(model, layer: str, targets, config: SynthConfig = SynthConfig(), objective: Objective | None = None,
+                 colour: ColourBasis | None = None, repeats: int = 2) -> tuple[float, int]:
+    """(seconds per step, images per step) of one full batch of `targets`, timed on the real loop:
+    parameterisation, transforms, truncated forward, backward and Adam. For the time-budget planner."""
+    import time
+    from dataclasses import replace
+
+    e = _Engine(model, layer, targets, replace(config, steps=repeats + 2, stop_gain=None), objective, colour)
+    n = max(1, e.capacity() // config.per_unit)
+    b = _Batch([_Unit(i, t, e) for i, t in enumerate(e.targets[:n])], config.per_unit)
+    e.step(b)  # warm-up (allocations, lazy initialisation)
+    t = time.perf_counter()
+    for _ in range(repeats):
+        e.step(b)
+    return (time.perf_counter() - t) / repeats, n * config.per_unit
+
+
 def optimise_units(model, layer: str, targets, config: SynthConfig = SynthConfig(),
                    objective: Objective | None = None, colour: ColourBasis | None = None) -> list[UnitResult]:
     """In-memory synthesis (no run folder): one UnitResult per target, in the order given.
