@@ -3,12 +3,18 @@ table, tests nothing.
 
     python scripts/bench_budget.py                      # demo network, 240 swatches, block3+block4, 2m
     python scripts/bench_budget.py --budget 4m --images 240 --layers block3,block4
+    python scripts/bench_budget.py --direct --steps 32   # in one process: calibrate, synthesise, calibrate
 
 One fresh `unitlens run` process on the shipped demo network (weights in the package) over a
 generated swatch corpus. Its stderr lines are timestamped as they arrive, so each stage's real
 time is the gap between the lines that open and close it; the estimates are the plan's own
 (`estimate_parts` in the manifest). Target: the whole run within 25% of the estimate, and within
 the budget (calibration and model loading included: they come out of the budget first).
+
+On a shared machine the load drifts during a long run, and the calibration only sees the load of
+its moment. `--direct` checks the cost model itself: in one process it calibrates, synthesises
+each layer with the steps given, and calibrates again, so the estimate before and after bracket
+the real time at nearly the same load.
 """
 from __future__ import annotations
 
@@ -30,7 +36,11 @@ def main() -> None:
     ap.add_argument("--layers", default="block3,block4", help="demo layers (default block3,block4: 160 units)")
     ap.add_argument("--threads", type=int, default=None, help="torch threads of the run (default: torch's)")
     ap.add_argument("--keep", action="store_true", help="keep the temporary folder (printed)")
+    ap.add_argument("--direct", action="store_true", help="check the cost model in one process (see above)")
+    ap.add_argument("--steps", type=int, default=32, help="synthesis steps of --direct (default 32)")
     a = ap.parse_args()
+    if a.direct:
+        return direct(a)
 
     from unitlens.demo import net, swatches
 
@@ -81,6 +91,34 @@ def main() -> None:
         print(d)
     else:
         shutil.rmtree(d)
+
+
+def direct(a) -> None:
+    import torch
+
+    from unitlens import parse_layers
+    from unitlens.demo.build import demo_model
+    from unitlens.synth import SynthConfig, synthesize
+    from unitlens.workflow import calibrate, plan
+
+    if a.threads:
+        torch.set_num_threads(a.threads)
+    model = demo_model()
+    layers = parse_layers(model, [a.layers])
+    config = SynthConfig(steps=a.steps, stop_gain=None)  # every image runs all steps, as the plan assumes
+    size = model.preprocess.size
+    d = Path(tempfile.mkdtemp(prefix="bench-budget-"))
+    print(f"{'layer':<10} {'units':>5} {'estimate before':>15} {'real s':>7} {'estimate after':>14} {'real/mean est':>13}")
+    for lu in layers:
+        before = plan(1e9, 0, (lu,), a.steps, size, calibrate(model, (lu,), config, size)).parts[lu.layer]
+        t = time.monotonic()
+        synthesize(model, (lu,), d / "run", config)
+        real = time.monotonic() - t
+        after = plan(1e9, 0, (lu,), a.steps, size, calibrate(model, (lu,), config, size)).parts[lu.layer]
+        print(f"{lu.layer:<10} {len(lu.units):>5} {before:>15.1f} {real:>7.1f} {after:>14.1f} "
+              f"{real / ((before + after) / 2):>13.2f}")
+    print(f"load average {os.getloadavg()[0]:.2f}")
+    shutil.rmtree(d)
 
 
 def _seconds(text: str) -> float:

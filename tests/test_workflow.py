@@ -41,13 +41,17 @@ def test_plan_worked_examples():
     p = plan(600, 1000, LAYERS, 256, 128, CALIB)
     assert p.steps == 128 and p.size == 128 and p.estimate_s == pytest.approx(523.5)
     # Very tight: steps hit their floor, then the size shrinks (to 96 px: cost x 0.5625), then
-    # the units: 80 - 11.5 = 68.5 s fit one batch per layer (a 18 s + b 36 s), not two of a.
+    # the units. All units at 64 steps, 96 px: a 64/16 * 64 * 0.5 * 0.5625 = 72 s, b 2 * 64 * 0.5625
+    # = 72 s; 80 - 11.5 = 68.5 s left is a fraction 0.4757 of 144 s: a keeps int(64 * 0.4757) = 30
+    # units (33.75 s), b 15 (33.75 s), 67.5 s in all: it fits, so the estimate is 79 s.
     p = plan(80, 1000, LAYERS, 256, 128, CALIB)
-    assert p.steps == MIN_STEPS and p.size == 96 and p.estimate_s <= 80
-    assert [len(lu.units) <= 16 for lu in p.layers] == [True, True] and all(lu.units for lu in p.layers)
-    assert p.layers[0].units[:3] == (0, 4, 8) or len(p.layers[0].units) < 16  # evenly spread
+    assert p.steps == MIN_STEPS and p.size == 96 and p.estimate_s == pytest.approx(79.0)
+    assert [len(lu.units) for lu in p.layers] == [30, 15]
+    assert p.layers[0].units[:4] == (0, 2, 4, 6) and p.layers[1].units[:3] == (0, 2, 4)  # evenly spread
+    assert p.parts == pytest.approx({"mining": 11.5, "a": 33.75, "b": 33.75})
+    # one unit per layer: a 1/16 * 64 * 0.5 * 0.5625 = 1.125 s + b 2.25 s; 14 - 11.5 = 2.5 s do not hold it
     with pytest.raises(UnitlensError, match="Even one unit per layer"):
-        plan(60, 1000, LAYERS, 256, 128, CALIB)
+        plan(14, 1000, LAYERS, 256, 128, CALIB)
     with pytest.raises(UnitlensError, match="Mining 1000 images alone"):
         plan(5, 1000, LAYERS, 256, 128, CALIB)
 

@@ -48,6 +48,7 @@ class Plan:
 
 
 def _timed(fn, repeats: int = 2) -> float:
+    """Seconds per call of fn(), after one call to warm up."""
     fn()  # warm-up (allocations, lazy initialisation)
     t = time.perf_counter()
     for _ in range(repeats):
@@ -74,12 +75,9 @@ def calibrate(model, layers, synth_config, size: int) -> dict:
     per_step, per_unit, images = {}, {}, config.max_batch
     for lu in layers:
         per_step[lu.layer], images = step_seconds(model, lu.layer, lu.units, config)
-        one = model.extractor([lu.layer])
-        checks = torch.rand(max(config.checks, 1), 3, size, size)
-
-        def evidence():
+        def evidence(one=model.extractor([lu.layer]), x=torch.rand(max(config.checks, 1), 3, size, size)):
             with torch.inference_mode():
-                one(model.normalize(checks))
+                one(model.normalize(x))
 
         per_unit[lu.layer] = _timed(evidence, 1) * (config.checks > 0) * config.per_unit
     return {"mine_s_per_image": per_image, "synth_s_per_step": per_step, "synth_s_per_unit": per_unit,
@@ -97,8 +95,10 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     per_unit = calib.get("synth_s_per_unit", {})
 
     def layer_s(st, sz, lu):
-        scale = (sz / calib["size"]) ** 2  # convolution cost grows with the pixel count
-        return (-(-len(lu.units) // batch) * st * calib["synth_s_per_step"][lu.layer]
+        # Convolution cost grows with the pixel count, and on a CPU with the images per step: the
+        # loop refills its batch as units finish, so a layer costs units / batch full batches.
+        scale = (sz / calib["size"]) ** 2
+        return (len(lu.units) / batch * st * calib["synth_s_per_step"][lu.layer]
                 + len(lu.units) * per_unit.get(lu.layer, 0.0)) * scale
 
     def synth_s(st, sz, lys):
@@ -123,7 +123,7 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
         reasons.append(f"size {size} -> {sz} px: {st} steps at {size} px do not fit")
     if synth_s(st, sz, lys) > left:
         # keep an evenly spaced subset of each layer's units, so every layer stays represented;
-        # shrink the fraction step by step, since units cost whole batches
+        # shrink the fraction step by step, since at least one unit per layer stays
         fraction, full = left / synth_s(st, sz, lys), lys
         while True:
             lys = tuple(replace(lu, units=_spread(lu.units, max(1, int(len(lu.units) * fraction)))) for lu in full)
@@ -250,7 +250,7 @@ def _synthesised(run, lu: LayerUnits, config, size: int) -> bool:
 
 
 def _minutes(seconds: float) -> str:
-    return f"{seconds:.0f} s" if seconds < 90 else f"{seconds / 60:.0f} min"
+    return f"{seconds:.0f} s" if seconds < 90 else f"{seconds / 60:.1f} min"
 
 
 def _eta(t0: float, done: int, total: int) -> str:
