@@ -31,7 +31,8 @@ def test_show_does_not_import_torch(run):
             f"sys.argv = ['unitlens', 'show', {str(run)!r}, 'block1:0']\n"
             "try:\n    main()\nexcept SystemExit as e:\n    assert not e.code, e.code\n"
             "print(sorted(m for m in sys.modules if m == 'torch' or m.startswith('torch.')))\n")
-    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=120)
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=120,
+                       check=False)
     assert r.returncode == 0, r.stderr
     assert "top exemplars" in r.stdout  # it did read the unit
     assert r.stdout.strip().splitlines()[-1] == "[]"

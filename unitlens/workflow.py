@@ -56,56 +56,61 @@ def _timed(fn, repeats: int = 2) -> float:
     return (time.perf_counter() - t) / repeats
 
 
+def _forward_seconds(model, layers: list[str], n: int, size: int, repeats: int = 2) -> float:
+    """Seconds of one truncated forward pass of n random images of side `size`, without gradients."""
+    ext = model.extractor(layers)
+    x = torch.rand(n, 3, size, size)  # (n, 3, S, S)
+
+    def forward():
+        with torch.inference_mode():
+            ext(model.normalize(x))
+
+    return _timed(forward, repeats)
+
+
 def calibrate(model, layers, synth_config, size: int) -> dict:
     """Seconds per mined image, per synthesis step of a full batch (the real loop: parameterisation,
     transforms, forward, backward, Adam) and per synthesised unit's evidence (its robustness check
     under `checks` transforms), measured on this machine."""
     from .synth.optimise import step_seconds
 
-    batch = 16
-    ext = model.extractor([lu.layer for lu in layers])
-    x = torch.rand(batch, 3, model.preprocess.size, model.preprocess.size)
-
-    def forward():
-        with torch.inference_mode():
-            ext(model.normalize(x))
-
-    per_image = _timed(forward) / batch
+    n = 16
+    per_image = _forward_seconds(model, [lu.layer for lu in layers], n, model.preprocess.size) / n
     config = replace(synth_config, size=size)
-    per_step, per_unit, images = {}, {}, config.max_batch
+    per_step, per_unit, batch = {}, {}, {}
     for lu in layers:
+        # timed at the batch the loop will use for this layer (all its units when they are few)
         per_step[lu.layer], images = step_seconds(model, lu.layer, lu.units, config)
-        def evidence(one=model.extractor([lu.layer]), x=torch.rand(max(config.checks, 1), 3, size, size)):
-            with torch.inference_mode():
-                one(model.normalize(x))
-
-        per_unit[lu.layer] = _timed(evidence, 1) * (config.checks > 0) * config.per_unit
+        batch[lu.layer] = max(1, images // config.per_unit)
+        checks = _forward_seconds(model, [lu.layer], max(config.checks, 1), size, repeats=1)  # one unit's evidence
+        per_unit[lu.layer] = checks * (config.checks > 0) * config.per_unit
     return {"mine_s_per_image": per_image, "synth_s_per_step": per_step, "synth_s_per_unit": per_unit,
-            "batch": max(1, images // config.per_unit), "size": size}
+            "batch": batch, "size": size}
 
 
 def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: dict,
          already_mined: bool = False) -> Plan:
     """Choose steps, then size, then units per layer to synthesise, in that order, until the estimate
     fits. Mining is never cut: every unit asked for is mined (it is cheap beside synthesis, and the
-    atlas of the units left out of synthesis still has their exemplars). `calib["batch"]` is units
-    per batch."""
-    batch = calib["batch"]
+    atlas of the units left out of synthesis still has their exemplars). `calib["batch"]` is the
+    units per timed step: one number, or one per layer."""
+    batch = calib["batch"] if isinstance(calib["batch"], dict) else {lu.layer: calib["batch"] for lu in layers}
     mine_s = 0.0 if already_mined else n_images * calib["mine_s_per_image"] * 1.15  # decoding and crops
     per_unit = calib.get("synth_s_per_unit", {})
 
     def layer_s(st, sz, lu):
-        # Convolution cost grows with the pixel count, and on a CPU with the images per step: the
-        # loop refills its batch as units finish, so a layer costs units / batch full batches.
+        # Convolution cost grows with the pixel count, and with the images per step: the loop refills
+        # its batch as units finish, so each optimisation step of a layer costs units / batch timed
+        # steps. (Fewer units than the timed batch cost less per step: the estimate errs long.)
         scale = (sz / calib["size"]) ** 2
-        return (len(lu.units) / batch * st * calib["synth_s_per_step"][lu.layer]
+        return (len(lu.units) / batch[lu.layer] * st * calib["synth_s_per_step"][lu.layer]
                 + len(lu.units) * per_unit.get(lu.layer, 0.0)) * scale
 
     def synth_s(st, sz, lys):
         return sum(layer_s(st, sz, lu) for lu in lys)
 
     reasons = [f"calibration: {calib['mine_s_per_image'] * 1000:.1f} ms per mined image; "
-               + ", ".join(f"{k} {v:.2f} s per synthesis step of {batch} images at {calib['size']} px"
+               + ", ".join(f"{k} {v:.2f} s per synthesis step of {batch[k]} units at {calib['size']} px"
                            for k, v in calib["synth_s_per_step"].items())]
     if mine_s > budget_s:
         raise UnitlensError(
