@@ -177,3 +177,14 @@ def test_module_specs_that_do_not_import_say_what_to_do():
         load_model("no_such_pkg.nets:build")
     with pytest.raises(UnitlensError, match="has no function 'nope'"):
         load_model("unitlens.demo.net:nope")
+
+
+def test_code_in_another_environments_site_packages_keeps_its_path(tmp_path):
+    from unitlens._specs import canonical_spec
+
+    pkg = tmp_path / "lib" / "site-packages" / "not_importable_here_pkg"
+    pkg.mkdir(parents=True)
+    (pkg / "nets.py").write_text("")
+    spec = f"{pkg / 'nets.py'}:build"
+    assert canonical_spec(spec) == spec  # the file is there, its package does not import: keep the file
+    assert canonical_spec("/elsewhere/site-packages/unitlens/demo/net.py:swatch_net") == "unitlens.demo.net:swatch_net"

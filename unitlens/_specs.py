@@ -38,7 +38,16 @@ def canonical_spec(spec: str) -> str:
     module = list(parts[:-1]) + ([] if parts[-1] == "__init__.py" else [parts[-1][:-3]])
     if not all(p.isidentifier() for p in module):
         return spec
+    if Path(file).is_file() and not _importable(module[0]):  # another environment's package: keep the file
+        return spec
     return f"{'.'.join(module)}:{func}"
+
+
+def _importable(package: str) -> bool:
+    try:
+        return importlib.util.find_spec(package) is not None
+    except (ImportError, ValueError):
+        return False
 
 
 def locate(path: str) -> str:
