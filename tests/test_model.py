@@ -327,3 +327,27 @@ def test_sizes_are_n_or_height_by_width_and_bounded_by_memory():
         assert r.returncode == 1 and r.stderr.startswith("Error: --size takes N") and "Traceback" not in r.stderr
     r = run_cli("layers", "torchvision:resnet18", "--size", "100000", check=False)
     assert r.returncode == 1 and r.stderr.startswith("Error: Input size 100000 needs about") and r.stderr.count("\n") == 1
+
+
+def test_a_model_built_without_weights_warns_once(r18_weights, smooth_corpus, tmp_path, monkeypatch):
+    from unitlens import model as model_module
+    from unitlens.errors import UnitlensWarning
+
+    monkeypatch.setattr(model_module, "_WARNED", set())  # as in a fresh process
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")  # whatever the filters, the library says it once per model
+        load_model("torchvision:resnet18")
+        load_model("torchvision:resnet18")
+        load_model("torchvision:resnet18", str(r18_weights))
+        load_model(f"{NETS}:digits_net")
+    texts = [str(w.message) for w in seen if issubclass(w.category, UnitlensWarning)]
+    assert len(texts) == 2 and "torchvision:resnet18" in texts[0] and "digits_net" in texts[1]
+    assert all("random" in t and "--weights" in t for t in texts)
+    # the command line prints it as one Warning: line, for mine as for every other command
+    r = run_cli("mine", f"{NETS}:digits_net", "--size", "32", "--corpus", smooth_corpus, "--layers", "0:0-1",
+                "--top", "2", "--workers", "0", "--out", tmp_path / "run")
+    lines = [line for line in r.stderr.splitlines() if "random" in line]
+    assert len(lines) == 1 and lines[0].startswith("Warning: ") and "UnitlensWarning" not in r.stderr
+    r = run_cli("mine", "torchvision:resnet18", "--weights", r18_weights, "--size", "32", "--corpus", smooth_corpus,
+                "--layers", "layer1:0-1", "--top", "2", "--workers", "0", "--out", tmp_path / "run2")
+    assert "Warning" not in r.stderr

@@ -254,6 +254,8 @@ def _model_from_run(run: Run, allow_pickle: bool):
 
 
 def _plan_runs(ra: Run, rb: Run, layers, layers_b, full_maps: bool, allow_pickle: bool) -> _Plan:
+    from ._specs import canonical_spec
+
     ma, mb = ra.manifest(), rb.manifest()
     for label, r, m in (("A", ra, ma), ("B", rb, mb)):
         if not (m.get("mine") or {}).get("done"):
@@ -286,7 +288,7 @@ def _plan_runs(ra: Run, rb: Run, layers, layers_b, full_maps: bool, allow_pickle
         corpus=corpus, ok=_skipped_mask(corpus, (ma, mb)), names_a=names_a, names_b=names_b,
         chosen={n: held["a"][n].units for n in names_a}, held=held,
         loaders={"a": lambda: _model_from_run(ra, allow_pickle), "b": lambda: _model_from_run(rb, allow_pickle)},
-        same_architecture=(ma["model"]["spec"] == mb["model"]["spec"]
+        same_architecture=(canonical_spec(ma["model"]["spec"]) == canonical_spec(mb["model"]["spec"])
                            and (ma["model"].get("arch_options") or {}) == (mb["model"].get("arch_options") or {})),
         sides={"a": {"source": "run", "run": str(ra.path), "model": ma["model"]},
                "b": {"source": "run", "run": str(rb.path), "model": mb["model"]}},

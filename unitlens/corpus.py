@@ -17,13 +17,15 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from functools import partial
 from pathlib import Path, PurePosixPath
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
 
 import numpy as np
-import torch
 from PIL import Image, ImageOps, UnidentifiedImageError
 
 from .errors import UnitlensError
+
+if TYPE_CHECKING:
+    import torch
 
 IMAGE_EXTENSIONS = (".jpg", ".jpeg", ".png", ".webp", ".bmp", ".tif", ".tiff", ".gif")
 LABEL_CHOICES = (None, "folders")
@@ -406,8 +408,11 @@ class Batch(NamedTuple):
     failures: list[tuple[int, str]]  # (corpus index, reason) of files that could not be used
 
 
-class CorpusDataset(torch.utils.data.Dataset):
-    """Item k: (corpus index, uint8 (C, H, W) or None, Placement or None, reason or None)."""
+class CorpusDataset:
+    """Item k: (corpus index, uint8 (C, H, W) or None, Placement or None, reason or None).
+
+    A map-style dataset for torch's DataLoader (which needs only __len__ and __getitem__); not a
+    subclass of torch's Dataset, so reading a run's corpus (`show`, the atlas) never imports torch."""
 
     def __init__(self, corpus: Corpus, size: int | tuple[int, int] | Frame, indices: Sequence[int] | None = None,
                  max_pixels: int = DEFAULT_MAX_PIXELS):
@@ -423,12 +428,16 @@ class CorpusDataset(torch.utils.data.Dataset):
             img, original = _decode(self.corpus.path(i), self.frame.side, self.max_pixels)
         except ImageProblem as problem:
             return i, None, None, problem.reason
+        import torch
+
         pixels, placement = fit(img, self.frame, original)
         return i, torch.from_numpy(pixels), placement, None
 
 
 def collate(items, size: int | tuple[int, int] | Frame = 0) -> Batch:
     """Stack the decoded items; `size` shapes the empty tensor of a batch where every file failed."""
+    import torch
+
     good = [item for item in items if item[3] is None]
     if good:
         images = torch.stack([pixels for _, pixels, _, _ in good])
@@ -452,8 +461,10 @@ def batches(corpus: Corpus, size: int | tuple[int, int] | Frame, start: int = 0,
     may hold zero images."""
     if not 0 <= start <= len(corpus):
         raise ValueError(f"start {start} outside the corpus (0-{len(corpus)})")
+    from torch.utils.data import DataLoader
+
     todo = range(start, len(corpus)) if indices is None else [i for i in indices if i >= start]
     dataset = CorpusDataset(corpus, size, todo, max_pixels)
-    yield from torch.utils.data.DataLoader(
+    yield from DataLoader(
         dataset, batch_size=batch_size, shuffle=False, collate_fn=partial(collate, size=size),
         num_workers=default_workers() if workers is None else workers)

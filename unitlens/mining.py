@@ -197,6 +197,24 @@ def _settings(model, corpus, layers, cfg) -> dict:
     }
 
 
+def _same_settings(prev: dict | None, new: dict) -> bool:
+    """Equal mining settings, the model compared by what it is (spec, weights' SHA-256, preprocessing),
+    not by where its files lay: reinstalling a package moves them."""
+    from .synth.results import same_model
+
+    if not isinstance(prev, dict) or not isinstance(prev.get("model"), dict):
+        return prev == new
+    rest = lambda d: {k: v for k, v in d.items() if k != "model"}  # noqa: E731
+    return same_model(prev["model"], new["model"]) and rest(prev) == rest(new)
+
+
+def mined(out: str | Path, model, corpus, layers, config: MineConfig = MineConfig()) -> bool:
+    """True when `out` holds a finished mining pass with these settings (so `mine` would do nothing)."""
+    m = read_json(Run(out).manifest_path) or {}
+    return bool((m.get("mine") or {}).get("done")) and _same_settings(m["mine"].get("settings"),
+                                                                     _settings(model, corpus, layers, config))
+
+
 def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config: MineConfig = MineConfig(),
          *, progress: bool = False, force: bool = False, _stop_after: int | None = None) -> Run:
     """Mine exemplars for `layers` over `corpus` into the run folder `out`; resumes if interrupted.
@@ -253,7 +271,7 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
                             "--out a new or empty folder.")
     if old and old.get("mine") and not force:
         prev = old["mine"].get("settings")
-        if prev != settings:
+        if not _same_settings(prev, settings):
             raise UnitlensError(
                 f"{run.path} already holds a mining pass with other settings ({_diff(prev, settings)}). "
                 "Use another --out folder, or --force to start that folder over."

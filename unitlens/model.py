@@ -3,6 +3,7 @@
 A model spec is one of
   ``torchvision:<arch>``      any classification architecture in torchvision.models
   ``path/to/file.py:function`` the user's own code; ``function()`` returns an nn.Module
+  ``package.module:function``  the same from an installed package (recorded so: files move on reinstall)
   ``path/to/model.pt``         a TorchScript archive (or, with ``allow_pickle``, a pickled module)
 """
 from __future__ import annotations
@@ -12,14 +13,15 @@ import importlib.util
 import pickle
 import sys
 import warnings
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
 from torch import nn
 
-from .errors import UnitlensError, closest
+from ._specs import MODULE_SPEC, canonical_spec
+from .errors import UnitlensError, UnitlensWarning, closest
 
 IMAGENET_MEAN = (0.485, 0.456, 0.406)
 IMAGENET_STD = (0.229, 0.224, 0.225)
@@ -158,7 +160,7 @@ class LoadedModel:
             why = maps if isinstance(maps, str) else "a feature map is empty"
             p = self.preprocess.size_text()
             raise UnitlensError(f"{self.spec} does not take {size}x{size} images up to {', '.join(names)} "
-                                f"({why}); its input size is {p}. Use --size {p}, or leave --size out.")
+                                f"({why}); its input size is {p}. Synthesise at that size (--synth-size {p}), or leave --synth-size out.")
 
     def normalize(self, images: torch.Tensor) -> torch.Tensor:
         """uint8 (B,C,H,W) or float in [0,1] -> normalised network input (float32)."""
@@ -204,13 +206,14 @@ def load_model(
     arch_options = dict(arch_options or {})
     if spec.startswith("torchvision:"):
         module, wdesc, pre, arch_options = _torchvision(spec.split(":", 1)[1], weights, arch_options)
-    elif ".py:" in spec:
+    elif ".py:" in spec or (MODULE_SPEC.fullmatch(spec) and not Path(spec).is_file()):
         if arch_options:
             raise UnitlensError("Architecture options apply to torchvision:<arch> models only.")
-        module, declared = _user_code(spec)
-        file, func = spec.rsplit(":", 1)
-        spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
-        wdesc = _load_weights_file(module, weights, f"{file}:{func}") if weights else {"kind": "none"}
+        spec = canonical_spec(spec)  # code of an installed package goes by its module: files move
+        module, declared, file = _user_code(spec)
+        if ".py:" in spec:
+            spec = f"{Path(file).resolve()}:{spec.rsplit(':', 1)[1]}"  # found again from any directory
+        wdesc = _load_weights_file(module, weights, spec) if weights else {"kind": "none"}
         pre = _declared_preprocess(declared, Path(file).name) or _carried_preprocess(module) or _DEFAULT
     elif Path(spec).is_file():
         if weights:
@@ -237,6 +240,8 @@ def load_model(
     module.eval()
     for p in module.parameters():
         p.requires_grad_(False)
+    if wdesc["kind"] == "none":
+        _warn_random(spec)
     return LoadedModel(spec, module, pre, wdesc, arch_options)
 
 
@@ -325,6 +330,24 @@ def _carried_preprocess(module: nn.Module) -> Preprocess | None:
     return None
 
 
+_WARNED: set[str] = set()  # specs warned about in this process
+
+
+def _warn_random(spec: str) -> None:
+    # A random network's units respond to nothing learnt, and every load draws new ones, so a run
+    # cannot be reopened with the same units; warn wherever such a model is built (once per spec).
+    if spec.startswith("torchvision:"):
+        what = f"{spec} has no weights: its units are a random initialisation"
+    else:
+        what = f"{spec} was given no weights: unless the function sets them, its units are a random initialisation"
+    # Once per spec and process ourselves: Python's own once-registry is cleared whenever any code
+    # changes the warning filters, which loading does (torchvision's constructors are silenced).
+    if spec in _WARNED:
+        return
+    _WARNED.add(spec)
+    warnings.warn(f"{what}, drawn anew at every load. Pass trained weights with --weights.", UnitlensWarning)
+
+
 def _bad_spec_message(spec: str) -> str:
     import torchvision
 
@@ -335,7 +358,8 @@ def _bad_spec_message(spec: str) -> str:
         hint = " User code is given as path/to/file.py:function."
     return (
         f"Cannot understand model '{spec}'.{hint} Valid forms: torchvision:<arch> (e.g. "
-        "torchvision:resnet50), path/to/file.py:function, or an existing TorchScript file."
+        "torchvision:resnet50), path/to/file.py:function, package.module:function (an installed "
+        "package), or an existing TorchScript file."
     )
 
 
@@ -538,24 +562,14 @@ def _declared_preprocess(declared, file: str) -> Preprocess | None:
                             f"per input channel for mean and std; got {declared!r}.") from None
 
 
-def _user_code(spec: str) -> tuple[nn.Module, object]:
-    """The module built by `function()` in the file, and the file's PREPROCESS declaration (or None)."""
+def _user_code(spec: str) -> tuple[nn.Module, object, str]:
+    """The module built by `function()` in the code file or Python module, the code's PREPROCESS
+    declaration (or None), and the code's file."""
     file, func = spec.rsplit(":", 1)
-    path = Path(file)
-    if not path.is_file():
-        raise UnitlensError(f"Model code file not found: {file}")
-    name = f"unitlens_user_{hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:10]}"
-    mod_spec = importlib.util.spec_from_file_location(name, path)
-    mod = importlib.util.module_from_spec(mod_spec)
-    sys.modules[name] = mod  # lets dataclasses / pickling inside user code find their module
-    with _beside(path):
-        try:
-            mod_spec.loader.exec_module(mod)
-        except SystemExit as e:
-            raise UnitlensError(f"Importing {file} called sys.exit({e.code!r}), so no model was built. Keep "
-                                "script code under `if __name__ == \"__main__\":` in that file.") from None
-        except Exception as e:
-            raise UnitlensError(f"Importing {file} failed: {e.__class__.__name__}: {e}") from None
+    path = Path(file) if file.endswith(".py") else None
+    with _beside(path) if path is not None else nullcontext():
+        mod = _import_file(path) if path is not None else _import_module(file)
+        file = getattr(mod, "__file__", None) or file
         fn = getattr(mod, func, None)
         if not callable(fn):
             found = [n for n in dir(mod) if callable(getattr(mod, n)) and not n.startswith("_")]
@@ -570,7 +584,34 @@ def _user_code(spec: str) -> tuple[nn.Module, object]:
             raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
     if not isinstance(module, nn.Module):
         raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
-    return module, getattr(mod, "PREPROCESS", None)
+    return module, getattr(mod, "PREPROCESS", None), file
+
+
+def _import_file(path: Path):
+    if not path.is_file():
+        raise UnitlensError(f"Model code file not found: {path}")
+    name = f"unitlens_user_{hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:10]}"
+    mod_spec = importlib.util.spec_from_file_location(name, path)
+    mod = importlib.util.module_from_spec(mod_spec)
+    sys.modules[name] = mod  # lets dataclasses / pickling inside user code find their module
+    try:
+        mod_spec.loader.exec_module(mod)
+    except SystemExit as e:
+        raise UnitlensError(f"Importing {path} called sys.exit({e.code!r}), so no model was built. Keep "
+                            "script code under `if __name__ == \"__main__\":` in that file.") from None
+    except Exception as e:
+        raise UnitlensError(f"Importing {path} failed: {e.__class__.__name__}: {e}") from None
+    return mod
+
+
+def _import_module(name: str):
+    try:
+        return importlib.import_module(name)
+    except ModuleNotFoundError as e:
+        raise UnitlensError(f"Cannot import the model's module '{name}' ({e}). Install the package that "
+                            "holds it, or give its code file as path/to/file.py:function.") from None
+    except Exception as e:
+        raise UnitlensError(f"Importing {name} failed: {e.__class__.__name__}: {e}") from None
 
 
 @contextmanager

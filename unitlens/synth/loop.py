@@ -214,11 +214,14 @@ class _Engine:
         return seen[0]
 
     # -- the loop -------------------------------------------------------------------------
-    def run(self):
-        """Yield lists of finished UnitResults, in order of completion."""
+    def run(self, on_step=None):
+        """Yield lists of finished UnitResults, in order of completion. `on_step(units, step)` is
+        called after every step: units done so far, the running ones counted by the fraction of
+        their steps taken (so a progress bar moves within a batch), and the batch's furthest step."""
         M = self.config.per_unit
         if not self.targets:
             return
+        self._on_step, self._finished = on_step, 0
         cap = self.capacity()
         queue: deque = deque(range(len(self.targets)))  # unit indices, or paused _Unit objects
         active: list[_Unit] = []
@@ -237,13 +240,20 @@ class _Engine:
                 continue
             finished = [u for u in active if bool(u.done.all())]
             active = [u for u in active if not bool(u.done.all())]
+            self._finished += len(finished)
             yield [self._result(u) for u in finished]
 
     def _steps_until_one_finishes(self, units: list[_Unit]) -> None:
         b = _Batch(units, self.config.per_unit)
+        total = self.config.steps * self.config.per_unit
         try:
-            while not self.step(b):
-                pass
+            while True:
+                stop = self.step(b)
+                if self._on_step is not None:  # a unit whose images all stopped early counts as done
+                    taken = torch.where(b.done, self.config.steps, b.step).view(-1, b.M).sum(1)  # (units,)
+                    self._on_step(self._finished + float(taken.sum()) / total, int(b.step.max()))
+                if stop:
+                    break
         finally:  # on success or an out-of-memory error, the units keep the last completed step
             b.unpack(units)
 
@@ -331,10 +341,28 @@ def is_out_of_memory(e: BaseException) -> bool:
 
 
 def iter_layer(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,
-               colour: ColourBasis | None = None):
+               colour: ColourBasis | None = None, on_step=None):
     """Optimise one image set per target of `layer` (the goal's units aside); yield lists of
-    UnitResult as units finish. The goal is checked against `targets` before the first step."""
-    yield from _Engine(model, layer, targets, config, goal, colour).run()
+    UnitResult as units finish. The goal is checked against `targets` before the first step.
+    `on_step(units, step)`, if given, hears after every step how far the work is (see _Engine.run)."""
+    yield from _Engine(model, layer, targets, config, goal, colour).run(on_step)
+
+
+def step_seconds(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,
+                 colour: ColourBasis | None = None, repeats: int = 2) -> tuple[float, int]:
+    """(seconds per step, images per step) of one full batch of `targets`, timed on the real loop:
+    image basis, warps, truncated forward, backward and Adam. For the time-budget planner."""
+    import time
+    from dataclasses import replace
+
+    e = _Engine(model, layer, targets, replace(config, steps=repeats + 2, stop_gain=None), goal, colour)
+    n = max(1, e.capacity() // config.per_unit)
+    b = _Batch([_Unit(i, t, e) for i, t in enumerate(e.targets[:n])], config.per_unit)
+    e.step(b)  # warm-up (allocations, lazy initialisation)
+    t = time.perf_counter()
+    for _ in range(repeats):
+        e.step(b)
+    return (time.perf_counter() - t) / repeats, n * config.per_unit
 
 
 def optimise_units(model, goal: Goal, config: SynthConfig = SynthConfig(),
