@@ -98,7 +98,7 @@ def direct(a) -> None:
 
     from unitlens import parse_layers
     from unitlens.demo.build import demo_model
-    from unitlens.synth import SynthConfig, synthesize
+    from unitlens.synth import Goal, SynthConfig, synthesize
     from unitlens.workflow import calibrate, plan
 
     if a.threads:
@@ -106,13 +106,13 @@ def direct(a) -> None:
     model = demo_model()
     layers = parse_layers(model, [a.layers])
     config = SynthConfig(steps=a.steps, stop_gain=None)  # every image runs all steps, as the plan assumes
-    size = model.preprocess.size
+    size = model.preprocess.side
     d = Path(tempfile.mkdtemp(prefix="bench-budget-"))
     print(f"{'layer':<10} {'units':>5} {'estimate before':>15} {'real s':>7} {'estimate after':>14} {'real/mean est':>13}")
     for lu in layers:
         before = plan(1e9, 0, (lu,), a.steps, size, calibrate(model, (lu,), config, size)).parts[lu.layer]
         t = time.monotonic()
-        synthesize(model, (lu,), d / "run", config)
+        synthesize(model, Goal(lu), d / "run", config)
         real = time.monotonic() - t
         after = plan(1e9, 0, (lu,), a.steps, size, calibrate(model, (lu,), config, size)).parts[lu.layer]
         print(f"{lu.layer:<10} {len(lu.units):>5} {before:>15.1f} {real:>7.1f} {after:>14.1f} "

@@ -38,6 +38,10 @@ class Preprocess:
     source: str  # where these numbers came from, shown in the manifest and the atlas
     interpolation: str = "bilinear"
 
+    def __post_init__(self):
+        if isinstance(self.size, int):  # a square input given by its side
+            object.__setattr__(self, "size", (self.size, self.size))
+
     @property
     def channels(self) -> int:
         return len(self.mean)
