@@ -14,7 +14,7 @@ import pytest
 import torch
 from PIL import Image
 
-from conftest import ROOT, TESTS, run_cli
+from conftest import ROOT, TESTS, chromium_or_skip, run_cli
 from unitlens import UnitlensError
 
 MODEL = f"{TESTS / 'nets.py'}:digits_net"
@@ -230,9 +230,7 @@ def test_image_form_lists_the_units_one_image_drives(corpus, probed):
 def test_the_page_opens_offline_with_every_image(probed):
     import cdp
 
-    chromium = cdp.find_chromium()
-    if chromium is None:
-        pytest.skip("no Chromium or Chrome on PATH")
+    chromium = chromium_or_skip()
     _, s = probed
     b = cdp.Browser(chromium)
     try:
