@@ -22,7 +22,7 @@ def hostile(tmp_path_factory, smooth_corpus, r18_weights):
     d = tmp_path_factory.mktemp("hostile")
     c = d / "c"
     c.mkdir()
-    for i, p in enumerate(sorted(smooth_corpus.iterdir())[:6]):
+    for p in sorted(smooth_corpus.iterdir())[:6]:
         shutil.copy(p, c / p.name)
     shutil.copy(sorted(smooth_corpus.iterdir())[7], c / "title\x1b]0;owned\x07.png")
     shutil.copy(sorted(smooth_corpus.iterdir())[9], c / "two\nlines.png")
@@ -39,7 +39,7 @@ def test_file_names_with_control_characters_are_printed_escaped(hostile):
         assert "\x1b" not in text and "\x07" not in text, text
     assert "Skipped clear\\x1b[2J.png: " in mined.stderr
     assert "title\\x1b]0;owned\\x07.png" in shown.stdout and "two\\nlines.png" in shown.stdout
-    assert len([l for l in shown.stdout.splitlines() if l.startswith("    ")]) == 8  # one table row per exemplar
+    assert len([row for row in shown.stdout.splitlines() if row.startswith("    ")]) == 8  # one table row per exemplar
 
 
 BAD_INPUT = [  # (arguments, what the one line says); FILE: a user's file, CUT: a run whose index.npz was cut short

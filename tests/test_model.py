@@ -78,7 +78,7 @@ def test_torchscript_sequential_works_and_compiled_forward_is_refused(tmp_path):
         torch.jit.save(seq, str(tmp_path / "seq.pt"))
         torch.jit.save(torch.jit.script(torchvision.models.resnet18().eval()), str(tmp_path / "r18.pt"))
     m = load_model(str(tmp_path / "seq.pt"), size=32)
-    assert [(l.name, l.channels, l.height) for l in m.layers().values()] == [("0", 4, 32), ("1", 4, 32), ("2", 5, 15)]
+    assert [(i.name, i.channels, i.height) for i in m.layers().values()] == [("0", 4, 32), ("1", 4, 32), ("2", 5, 15)]
     x = torch.randn(2, 3, 32, 32)
     out = m.extractor(["1"])(x)
     assert torch.allclose(out["1"], seq[1](seq[0](x)))

@@ -1,5 +1,4 @@
 """`unitlens run`: budget planning, and resume after SIGKILL in each stage."""
-import json
 import os
 import signal
 import subprocess
@@ -9,7 +8,7 @@ import time
 import numpy as np
 import pytest
 
-from conftest import ROOT, run_cli
+from conftest import ROOT
 from unitlens import UnitlensError
 from unitlens.units import LayerUnits
 from unitlens.workflow import MIN_STEPS, parse_budget, plan

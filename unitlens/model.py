@@ -154,7 +154,7 @@ class LoadedModel:
                 maps = self.extractor(names)(torch.zeros(1, self.preprocess.channels, size, size))
         except UnitlensError:
             raise
-        except Exception as e:
+        except Exception as e:  # noqa: BLE001  (whatever the model raises is reported below)
             maps = f"{e.__class__.__name__}: {str(e)[:200]}"
         if isinstance(maps, str) or any(0 in v.shape[2:] for v in maps.values()):
             why = maps if isinstance(maps, str) else "a feature map is empty"
@@ -345,7 +345,7 @@ def _warn_random(spec: str) -> None:
     if spec in _WARNED:
         return
     _WARNED.add(spec)
-    warnings.warn(f"{what}, drawn anew at every load. Pass trained weights with --weights.", UnitlensWarning)
+    warnings.warn(f"{what}, drawn anew at every load. Pass trained weights with --weights.", UnitlensWarning, stacklevel=2)
 
 
 def _bad_spec_message(spec: str) -> str:
@@ -461,7 +461,7 @@ def _read_state_dict(path: Path) -> dict:
             "unpickling can run code. Save a state dict instead (torch.save(model.state_dict(), f)), "
             f"or, if you trust the file, give it as the model with --allow-pickle. ({str(e)[:120]})"
         ) from None
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (torch.load raises many types for damaged files)
         raise UnitlensError(f"Cannot read weights file {path}: {e.__class__.__name__}: {e}") from None
     if isinstance(obj, dict) and not _tensors(obj):
         # A training checkpoint: the weights sit under one entry beside epoch, optimiser state, ...
@@ -580,7 +580,7 @@ def _user_code(spec: str) -> tuple[nn.Module, object, str]:
             module = fn()
         except SystemExit as e:
             raise UnitlensError(f"{spec}() called sys.exit({e.code!r}) instead of returning a model.") from None
-        except Exception as e:
+        except Exception as e:  # noqa: BLE001  (user code: any failure becomes one error)
             raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
     if not isinstance(module, nn.Module):
         raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
@@ -599,7 +599,7 @@ def _import_file(path: Path):
     except SystemExit as e:
         raise UnitlensError(f"Importing {path} called sys.exit({e.code!r}), so no model was built. Keep "
                             "script code under `if __name__ == \"__main__\":` in that file.") from None
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (user code: any failure becomes one error)
         raise UnitlensError(f"Importing {path} failed: {e.__class__.__name__}: {e}") from None
     return mod
 
@@ -610,7 +610,7 @@ def _import_module(name: str):
     except ModuleNotFoundError as e:
         raise UnitlensError(f"Cannot import the model's module '{name}' ({e}). Install the package that "
                             "holds it, or give its code file as path/to/file.py:function.") from None
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (user code: any failure becomes one error)
         raise UnitlensError(f"Importing {name} failed: {e.__class__.__name__}: {e}") from None
 
 
@@ -646,7 +646,7 @@ def _model_file(path: Path, allow_pickle: bool):
     print(f"Warning: loading a pickled module from {path}; this runs code from the file.", file=sys.stderr)
     try:
         obj = torch.load(path, map_location="cpu", weights_only=False)
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (unpickling runs the file's code: any failure becomes one error)
         raise UnitlensError(f"Cannot unpickle {path}: {e.__class__.__name__}: {e}") from None
     if not isinstance(obj, nn.Module):
         raise UnitlensError(f"{path} holds a {type(obj).__name__}, not a torch.nn.Module.")
@@ -692,7 +692,7 @@ def _layer_table(model: LoadedModel) -> tuple[dict[str, LayerInfo], dict[str, tu
         # them like normalisation statistics, or every crop after the first gate is the whole image.
         fields = receptive_fields(_observable(model), p.size, global_context=False)
     except UnitlensError as e:
-        warnings.warn(f"receptive fields unavailable: {e}")
+        warnings.warn(f"receptive fields unavailable: {e}", stacklevel=2)
         fields = {}
     calls = Calls(n for n, _ in _observable(model).named_modules())
     table, tokens = {}, {}
