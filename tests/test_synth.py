@@ -450,15 +450,18 @@ def test_bad_names_give_one_line_errors(mined, capsys):
         (["--layers", "layer9"], "Unknown layer 'layer9'"),
         (["--layers", "layer3:0-999"], "Channel 999 is out of range for layer3 (0-255)"),
         (["--units", "x"], "'x' is not a channel or range"),
-        (["--weights", "w.pth"], "apply only when TARGET is a model"),
         (["--reduce", "class"], "Unknown reduction 'class'; valid: mean, centre, at:Y,X"),
         (["--reduce", "at:9,9"], "Position y=9 is outside layer3's feature map (2x2)"),
-        (["--drive", "sideways"], "drive must be up or down, got 'sideways'"),
     ]
     for extra, message in cases:
         code, out, err = cli(capsys, "synth", mined, "--steps", "2", *extra)
         assert code == 1 and message in err, (extra, err)
         assert err.strip().count("\n") == 0 and err.startswith("Error: ")
+    # usage mistakes: exit 2, typer's usage line and a hint to --help
+    for extra, message in [(["--weights", "w.pth"], "apply only when TARGET is a model"),
+                           (["--drive", "sideways"], "'sideways' is not one of 'up', 'down'")]:
+        code, out, err = cli(capsys, "synth", mined, "--steps", "2", *extra)
+        assert code == 2 and message in err and "Try 'unitlens synth --help'" in err, (extra, err)
     # and as a real process: exit status 1, one line, no traceback
     r = run_cli("synth", mined, "--layers", "layer9", check=False)
     assert r.returncode == 1 and r.stderr.strip().startswith("Error: Unknown layer") and "Traceback" not in r.stderr
@@ -475,7 +478,7 @@ def test_synth_from_a_model_without_a_run(tmp_path, capsys):
     (e,) = unit_images(out, "1", 3)
     assert e["vs_best_exemplar"] is None and e["steps"] == 4
     code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1")
-    assert code == 1 and "--out" in err
+    assert code == 2 and "--out" in err
     # --size is the network's input, as in every command; --synth-size the synthesised image's side
     code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1:3", "--size", "32",
                        "--synth-size", "24", "--steps", "2", "--out", tmp_path / "r24")
@@ -485,7 +488,7 @@ def test_synth_from_a_model_without_a_run(tmp_path, capsys):
 
     assert Image.open(unit_images(tmp_path / "r24", "1", 3)[0]["image"]).size == (24, 24)
     code, _, err = cli(capsys, "synth", out, "--size", "32")
-    assert code == 1 and "--size apply only when TARGET is a model" in err
+    assert code == 2 and "--size apply only when TARGET is a model" in err
 
 
 def test_a_goal_from_python_and_from_the_command_line_gives_the_same_images(tmp_path, capsys):

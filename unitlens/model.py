@@ -731,3 +731,49 @@ def _observable(model: LoadedModel) -> nn.Module:
 
     seq = script_sequence(model.module)
     return seq if seq is not None else model.module
+
+
+def layer_rows(model: LoadedModel) -> list[dict]:
+    """One dict per selectable feature map (`unitlens layers --json`): shape, receptive field, kind."""
+    rows = []
+    for info in model.layers().values():
+        f = info.field
+        rows.append({
+            "name": info.name, "channels": info.channels, "height": info.height, "width": info.width,
+            "rf_size": max(f.size) if f else None, "rf_stride": max(f.stride) if f else None,
+            "rf_offset": max(f.offset) if f else None,
+            "rf_size_hw": list(f.size) if f else None, "rf_stride_hw": list(f.stride) if f else None,
+            "rf_offset_hw": list(f.offset) if f else None, "rf_exact": f.exact if f else None,
+            "block": info.block, "layout": info.layout, "module": info.module, "call": info.call,
+        })
+    return rows
+
+
+def layers_text(model: LoadedModel) -> str:
+    """The table `unitlens layers` prints: one line per feature map, then notes on what it shows."""
+    rows = layer_rows(model)
+    p = model.preprocess
+    lines = [f"{model.spec}  input {p.channels}x{p.size[0]}x{p.size[1]}  ({p.source})",
+             f"{'layer':<34} {'C x H x W':>16} {'field':>9} {'stride':>7} {'offset':>8}  kind"]
+    reused = {r["module"] for r in rows if r["call"]}
+    wide = pooled = False
+    for r in rows:
+        shape = f"{r['channels']}x{r['height']}x{r['width']}"
+        fs = "x".join(map(str, dict.fromkeys(r["rf_size_hw"]))) if r["rf_size_hw"] else "?"
+        st = "x".join(map(str, dict.fromkeys(r["rf_stride_hw"]))) if r["rf_stride_hw"] else "?"
+        off = "/".join(f"{v:g}" for v in dict.fromkeys(r["rf_offset_hw"])) if r["rf_offset_hw"] else "?"
+        kind = ["block" if r["block"] else "op"]
+        kind += [f"call {r['call'] + 1} of {r['module']}"] if r["module"] in reused else []
+        kind += {"NHWC": ["channels-last"], "?": ["layout unknown: not selectable"]}.get(r["layout"], [])
+        if r["rf_stride_hw"] and 0 in r["rf_stride_hw"]:  # geometry's mark of a global pool
+            fs, st, off, pooled = "global", "-", "-", True
+        elif r["rf_size"] and r["rf_size"] > max(p.size):
+            fs, wide = fs + "*", True
+        lines.append(f"{r['name']:<34} {shape:>16} {fs:>9} {st:>7} {off:>8}  {', '.join(kind)}")
+    if wide:
+        lines.append(f"* wider than the {p.size_text()} px input: the field counts the padding beyond the edges; "
+                     "crops are clipped to the image.")
+    if pooled:
+        lines.append("global: every value pools the whole input (as a global average pool does), so each "
+                     "position's crop is the whole image.")
+    return "\n".join(lines + layer_notes(model))
