@@ -153,7 +153,7 @@ def function_outputs(model) -> dict[str, tuple[str, str]]:
             graph, order, layer_of = _traced(model.module)
             gm = torch.fx.GraphModule(model.module, graph)
             p = next(iter(model.module.parameters()), torch.zeros(()))  # the input's dtype and device
-            ShapeProp(gm).propagate(torch.zeros(1, 3, model.preprocess.size, model.preprocess.size,
+            ShapeProp(gm).propagate(torch.zeros(1, model.preprocess.channels, *model.preprocess.size,
                                                 dtype=p.dtype, device=p.device))
     except Exception:  # noqa: BLE001  (does not trace: the hooks see module outputs only)
         return {}
