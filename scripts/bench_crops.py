@@ -79,9 +79,9 @@ def per_sheet_reference(run, model, corpus, layers, thumb: int) -> None:
                             wanted.setdefault(i, []).append((u, c0 + r, int(y_a[u, r]), int(x_a[u, r]), kind, r))
             items = sorted(wanted.items())
             with ThreadPoolExecutor(max_workers=2) as pool:
-                results = pool.map(lambda it: _reference_image_cells(
+                results = pool.map(lambda it, field=field: _reference_image_cells(
                     corpus.path(it[0]), [e[:4] for e in it[1]], field, size, thumb), items)
-                for (i, entries), (bxs, cells, err) in zip(items, results):
+                for (_, entries), (bxs, cells, err) in zip(items, results):
                     if err is not None:
                         continue
                     for (u, col, _y, _x, kind, r), box, cell in zip(entries, bxs, cells):

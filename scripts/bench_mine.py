@@ -156,9 +156,9 @@ def parts_1_2(args, tmp: Path) -> None:
 
     mined, e2e, dec = [], [], []
     for r in range(args.reps):  # the order reverses each round
-        jobs = [lambda: mined.append(timed_mine(model, corpus, layers, tmp / f"mine{r}", cfg,
+        jobs = [lambda r=r: mined.append(timed_mine(model, corpus, layers, tmp / f"mine{r}", cfg,
                                                 paired_source, crops=r == 0)),
-                lambda: e2e.append(timed_mine(model, corpus, layers, tmp / f"e2e{r}", cfg, crops=False)),
+                lambda r=r: e2e.append(timed_mine(model, corpus, layers, tmp / f"e2e{r}", cfg, crops=False)),
                 lambda: dec.append(decode_only())]
         for job in (jobs if r % 2 == 0 else jobs[::-1]):
             job()
@@ -317,7 +317,10 @@ def part_3(args, tmp: Path) -> None:
         if big > small:
             run("naive", [big])
             run("mine", [big])
-    med = lambda n, k, key: statistics.median(x[key] for x in results[n, k])
+
+    def med(n, k, key):
+        return statistics.median(x[key] for x in results[n, k])
+
     counts = [n for n in (small, big) if (n, "mine") in results]
     rows = []
     for n in counts:

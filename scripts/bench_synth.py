@@ -155,7 +155,7 @@ def main():
     base_size, base_steps = 64, (4 if q else 8)
     rows = [("steps", "layer2", base_size, s) for s in ((2, 4, 8) if q else (4, 8, 16))]
     rows += [("size", "layer2", s, base_steps) for s in m if s != base_size]
-    rows += [("depth", l, base_size, base_steps) for l in ("layer1", "layer3", "layer4")]
+    rows += [("depth", name, base_size, base_steps) for name in ("layer1", "layer3", "layer4")]
     rows.insert(len(rows) - 3, ("depth", "layer2", base_size, base_steps))
     cache = {}
     for what, layer, s, steps in rows:

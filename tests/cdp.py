@@ -120,7 +120,7 @@ class Browser:
         try:
             self.send("Browser.close")
             self.proc.wait(timeout=5)
-        except Exception:
+        except Exception:  # noqa: BLE001  (a browser that will not close politely is killed)
             self.proc.kill()
             self.proc.wait()
         for fd in (self._w, self._r):

@@ -37,6 +37,30 @@ def r18_weights(tmp_path_factory):
     return p
 
 
+def chromium_or_skip() -> str:
+    """The browser for the pages' checks. Without one the test skips, saying why, or fails where
+    UNITLENS_REQUIRE_BROWSER=1 (set by .ci/run), so CI cannot pass by skipping them."""
+    import cdp
+
+    path = cdp.find_chromium()
+    if path is None:
+        why = "no Chromium or Chrome on PATH; the browser checks need one (Debian: apt install chromium)"
+        if os.environ.get("UNITLENS_REQUIRE_BROWSER") == "1":
+            pytest.fail(f"{why}. UNITLENS_REQUIRE_BROWSER=1 makes a missing browser a failure.")
+        pytest.skip(why)
+    return path
+
+
+@pytest.fixture(scope="module")
+def browser():
+    """A headless Chromium driven over the DevTools protocol (tests/cdp.py)."""
+    import cdp
+
+    b = cdp.Browser(chromium_or_skip())
+    yield b
+    b.close()
+
+
 def run_cli(*args, check=True, **kw):
     import subprocess
 

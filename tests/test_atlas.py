@@ -9,7 +9,6 @@ import math
 import os
 import re
 import shutil
-import statistics
 import time
 from pathlib import Path
 from types import SimpleNamespace
@@ -19,7 +18,6 @@ import pytest
 import torch
 from PIL import Image
 
-import cdp
 from conftest import ROOT, TESTS, run_cli
 from unitlens import MineConfig, UnitlensError, load_model, mine, open_corpus, parse_layers, render_atlas
 from unitlens.atlas.data import SPARK, rebin, spark
@@ -28,9 +26,6 @@ from unitlens.mining import LayerTally, _index_arrays, hist_edges
 from unitlens.store import Run, read_npz, safe_name, write_json, write_npz
 from unitlens.units import LayerUnits
 
-CHROMIUM = cdp.find_chromium()
-needs_browser = pytest.mark.skipif(CHROMIUM is None, reason="no Chromium or Chrome on PATH; the atlas's browser "
-                                   "checks need one (Debian: apt install chromium)")
 HOSTILE = "<img src=x onerror=alert(1)>"  # a corpus file name
 HOSTILE_CLASS = "<i onmouseover=alert(2)>"  # a folder name, so a class label
 HOSTILE_LAYER = "<svg onload=alert(3)>"  # a module name of a user's model
@@ -124,9 +119,8 @@ def fake_run(root: Path, layer: str = "layer4", units: int = 2048, k: int = 16, 
 def big(tmp_path_factory):
     """A ResNet-50 layer4-sized layer: 2,048 units, 16 exemplars and one synthesised image each."""
     run = fake_run(tmp_path_factory.mktemp("big") / "run")
-    t = time.perf_counter()
     index = render_atlas(run)
-    return SimpleNamespace(run=run, atlas=index.parent, index=index, seconds=time.perf_counter() - t)
+    return SimpleNamespace(run=run, atlas=index.parent, index=index)
 
 
 def _units_data(atlas: Path, layer: str, which: str = "cards") -> dict:
@@ -266,9 +260,7 @@ def test_redrawing_touches_only_what_changed(tiny, tmp_path):
     render_atlas(run)
     atlas = run.path / "atlas"
     stamp = {p: p.stat().st_mtime_ns for p in atlas.rglob("*") if p.is_file()}
-    t = time.perf_counter()
     render_atlas(run)
-    assert time.perf_counter() - t < 1.0
     assert {p: p.stat().st_mtime_ns for p in stamp} == stamp  # nothing rewritten
     # the synthesis of layer 6 loses a unit: only layer 6 is redrawn, and its stale images go
     table = json.loads((run.layer_dir("6", "synth") / "units.json").read_text())
@@ -307,19 +299,10 @@ def atlas_files(units: int, per_unit: int = 1, synthesised: bool = True) -> int:
 def test_file_count_of_a_resnet50_layer4_atlas(big):
     files = [p for p in big.atlas.rglob("*") if p.is_file() and not p.name.startswith(".")]
     assert len(files) == atlas_files(2048) == 2120  # 16 exemplars per unit change the sheets' width, not their number
-    print(f"\nResNet-50 layer4 atlas: {len(files)} files (+ one state file); drawn in {big.seconds:.1f} s")
+    print(f"\nResNet-50 layer4 atlas: {len(files)} files (+ one state file)")
 
 
 # -- in a browser ------------------------------------------------------------------------------
-
-@pytest.fixture(scope="module")
-def browser():
-    if CHROMIUM is None:
-        pytest.skip("no Chromium")
-    b = cdp.Browser(CHROMIUM)
-    yield b
-    b.close()
-
 
 @pytest.fixture(scope="module")
 def shots(tmp_path_factory):
@@ -348,7 +331,6 @@ def _clean(page):
     assert page.requests and all(u.startswith("file://") for u in page.requests), page.requests
 
 
-@needs_browser
 def test_harness_notices_errors_requests_and_dialogs(browser, tmp_path):
     # the checks below are only worth something if they can fail: a page that does everything wrong
     bad = tmp_path / "bad.html"
@@ -362,7 +344,6 @@ def test_harness_notices_errors_requests_and_dialogs(browser, tmp_path):
     page.close()
 
 
-@needs_browser
 def test_pages_open_from_file_with_no_errors_and_no_network(tiny, browser, shots):
     page = _open(browser, tiny.index.as_uri(), ready=False)
     page.wait_for("document.readyState === 'complete'")
@@ -381,7 +362,6 @@ def test_pages_open_from_file_with_no_errors_and_no_network(tiny, browser, shots
         page.close()
 
 
-@needs_browser
 def test_unit_view_deep_link_keys_and_hostile_exemplar(tiny, browser, shots):
     details = _units_data(tiny.atlas, "6", "units")
     hostile = details["files"].index(f"stripe/{HOSTILE}.png")
@@ -431,7 +411,6 @@ def test_unit_view_deep_link_keys_and_hostile_exemplar(tiny, browser, shots):
     page.close()
 
 
-@needs_browser
 def test_the_folder_also_works_from_a_static_web_server(tiny, browser):
     import functools
     import http.server
@@ -455,40 +434,21 @@ def test_the_folder_also_works_from_a_static_web_server(tiny, browser):
         server.shutdown()
 
 
-def _interactive_ms(page) -> float:
-    """Milliseconds from navigation start until the page is drawn, its handlers set, the parser done."""
-    return max(float(page.js("document.documentElement.dataset.ready")),
-               page.js("performance.getEntriesByType('navigation')[0].domContentLoadedEventEnd"))
-
-
-@needs_browser
-def test_a_2048_unit_layer_is_interactive_within_a_second(big, browser, shots):
+def test_a_2048_unit_layer_mounts_only_visible_cards_and_sorts_like_numpy(big, browser, shots):
+    # How fast this page becomes interactive is measured by scripts/bench_atlas.py, not here.
     url = (big.atlas / "layer-layer4.html").as_uri()
-    warm = _open(browser, big.index.as_uri(), ready=False)  # a first page pays for the browser's own start
-    warm.close()
-    times = []
-    for _ in range(3):
-        page = _open(browser, url)
-        page.wait_for("document.readyState === 'complete'")
-        times.append(_interactive_ms(page))
-        page.close()
-    took = statistics.median(times)
-    print(f"\n2,048-unit layer page interactive after {took:.0f} ms (median of {[round(t) for t in times]})")
-    assert took < 1000
-
     page = _open(browser, url)
     idx = read_npz(big.run.layer_dir("layer4") / "index.npz")
     mounted = page.js("document.querySelectorAll('#grid .card[data-unit]').length")
     assert 0 < mounted < 200  # only the cards near the viewport exist
     assert page.js("document.getElementById('count').textContent") == "2048 units"
     js_sort = "s => { const e = document.getElementById('sort'); e.value = s; e.dispatchEvent(new Event('change')); }"
-    t0 = page.js(f"(() => {{ const t = performance.now(); ({js_sort})('peak'); return performance.now() - t; }})()")
+    page.js(f"({js_sort})('peak')")
     first = page.js("(() => { const c = [...document.querySelectorAll('#grid .card')]; "
                     "c.sort((a, b) => parseFloat(a.style.top) - parseFloat(b.style.top) || parseFloat(a.style.left) - parseFloat(b.style.left)); "
                     "return +c[0].dataset.unit; })()")
     shown = np.array([float(f"{v:.4g}") for v in idx["high"]])  # the peak as the page holds it (4 digits)
     assert first == int(np.lexsort((np.arange(2048), -shown))[0])  # oracle: numpy, ties by id
-    assert t0 < 300, f"re-sorting 2,048 units took {t0:.0f} ms"
     page.js("(() => { const f = document.getElementById('filter'); f.value = '100-199'; f.dispatchEvent(new Event('input')); })()")
     assert page.js("document.getElementById('count').textContent") == "100 of 2048 units"
     page.js(f"({js_sort})('id')")

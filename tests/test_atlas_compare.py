@@ -18,7 +18,7 @@ from PIL import Image
 
 from conftest import ROOT, TESTS, run_cli
 from nets import digits_net
-from test_atlas import FORBIDDEN, _clean, browser, needs_browser  # noqa: F401 (browser: a fixture)
+from test_atlas import FORBIDDEN, _clean
 from unitlens import CompareConfig, MineConfig, UnitlensError, compare, load_model, mine, open_corpus, parse_layers, render_atlas
 from unitlens.atlas.comparison_data import SHOW, THUMB
 from unitlens.atlas.comparison_page import render_comparison
@@ -208,7 +208,6 @@ IMAGES_LOAD = """Promise.all([
 ]).then(w => [w.length, w.filter(x => x > 0).length])"""
 
 
-@needs_browser
 def test_pages_open_from_file_show_a_and_b_side_by_side(cmp, browser, tmp_path):
     for kind, folder in cmp.folders.items():
         page = _open(browser, (folder / "atlas" / "index.html").as_uri(), height=900,
@@ -227,7 +226,6 @@ def test_pages_open_from_file_show_a_and_b_side_by_side(cmp, browser, tmp_path):
             page.close()
 
 
-@needs_browser
 def test_order_filter_and_deep_link(cmp, browser, tmp_path):
     folder = cmp.folders["runs"]
     e = _summary(folder)["layers"][1]
@@ -263,7 +261,6 @@ def test_order_filter_and_deep_link(cmp, browser, tmp_path):
     page.close()
 
 
-@needs_browser
 def test_a_pair_of_different_layers_shows_its_cka_and_no_unit_table(cmp, browser):
     assert 'href="pair-3~6.html"' in (cmp.crossed / "atlas" / "index.html").read_text()
     page = _open(browser, (cmp.crossed / "atlas" / "pair-3~6.html").as_uri(), height=900)

@@ -1,5 +1,7 @@
-"""The command line's contract: help text and option names; one `Error:` line (no traceback) for bad
-input and for Ctrl-C; names from the user's disk printed so that they cannot drive the terminal."""
+"""The command line's contract: help text and option names; exit 2 with typer's usage line and a hint
+to --help for a usage mistake, exit 1 and one `Error:` line (no traceback) for bad input found while
+running, exit 130 and one line for Ctrl-C in every command; names from the user's disk printed so
+that they cannot drive the terminal."""
 import re
 import shutil
 
@@ -22,7 +24,7 @@ def hostile(tmp_path_factory, smooth_corpus, r18_weights):
     d = tmp_path_factory.mktemp("hostile")
     c = d / "c"
     c.mkdir()
-    for i, p in enumerate(sorted(smooth_corpus.iterdir())[:6]):
+    for p in sorted(smooth_corpus.iterdir())[:6]:
         shutil.copy(p, c / p.name)
     shutil.copy(sorted(smooth_corpus.iterdir())[7], c / "title\x1b]0;owned\x07.png")
     shutil.copy(sorted(smooth_corpus.iterdir())[9], c / "two\nlines.png")
@@ -39,7 +41,7 @@ def test_file_names_with_control_characters_are_printed_escaped(hostile):
         assert "\x1b" not in text and "\x07" not in text, text
     assert "Skipped clear\\x1b[2J.png: " in mined.stderr
     assert "title\\x1b]0;owned\\x07.png" in shown.stdout and "two\\nlines.png" in shown.stdout
-    assert len([l for l in shown.stdout.splitlines() if l.startswith("    ")]) == 8  # one table row per exemplar
+    assert len([row for row in shown.stdout.splitlines() if row.startswith("    ")]) == 8  # one table row per exemplar
 
 
 BAD_INPUT = [  # (arguments, what the one line says); FILE: a user's file, CUT: a run whose index.npz was cut short
@@ -88,6 +90,78 @@ def test_ctrl_c_in_compare_and_elsewhere_is_one_line_and_status_130(tmp_path, sm
     code, _, err = cli(capsys, "show", tmp_path, "layer1:0")
     _one_error_line(code, err, 130)
     assert err.startswith("Error: Interrupted before the command finished")
+
+
+# (arguments, what the error says); RUN: a folder (so a run folder to the CLI), NEW: a folder not yet
+# made, IMG: an image. Every mistake is found before a model loads or a file is written.
+MODEL = "torchvision:resnet18"
+USAGE = [
+    (["synth", MODEL, "--layers", "layer1"], "To synthesise from a model, give --layers and --out"),
+    (["synth", "RUN", "--out", "NEW"], "--out apply only when TARGET is a model"),
+    (["synth", "RUN", "--basis", "fourier"], "'fourier' is not one of 'spectral', 'pixel'"),
+    (["synth", "RUN", "--drive", "sideways"], "'sideways' is not one of 'up', 'down'"),
+    (["probe", MODEL, "--image", "IMG"], "With --image, give --layer L"),
+    (["probe", MODEL, "layer1:0", "--image", "IMG", "--layer", "layer1"], "With --image, give --layer L"),
+    (["probe", "RUN"], "Name the unit as LAYER:CHANNEL"),
+    (["probe", MODEL, "layer1:0"], "To probe a model, give --corpus DIR and --out DIR"),
+    (["probe", "RUN", "layer1:0", "--weights", "w.pth"], "--weights apply only when TARGET is a model"),
+    (["probe", "RUN", "layer1:0", "--ig-rule", "simpson"], "'simpson' is not one of"),
+    (["probe", "RUN", "layer1:0", "--baseline", "white"], "'white' is not one of 'black', 'blur'"),
+    (["compare", MODEL, MODEL], "Comparing two models writes a folder: give --out DIR"),
+    (["compare", "RUN", MODEL, "--size", "32"], "--size apply only when TARGET is a model"),
+    (["mine", MODEL, "--corpus", "RUN", "--layers", "layer1", "--out", "NEW", "--labels", "files"], "'files' is not one of"),
+    (["mine", MODEL, "--corpus", "RUN", "--layers", "layer1", "--out", "NEW", "--size", "3y"], "--size takes N"),
+    (["run", MODEL, "--corpus", "RUN", "--layers", "layer1", "--out", "NEW", "--top", "0"], "'--top'"),
+    (["layers", MODEL, "--mean", "a,b,c"], "--mean takes one number per input channel"),
+    (["layers", MODEL, "--arch-option", "novalue"], "--arch-option takes key=value"),
+    (["mine", MODEL, "--corpus", "RUN", "--layers", "layer1"], "Missing option '--out'"),  # typer's own
+]
+
+
+@pytest.mark.parametrize("args, message", USAGE, ids=[" ".join(a[:1] + a[2:]) for a, _ in USAGE])
+def test_usage_mistakes_exit_2_with_a_hint_to_help(tmp_path, capsys, monkeypatch, args, message):
+    import unitlens.model
+
+    def no_model(*a, **kw):
+        raise AssertionError("a model was loaded before the usage was checked")
+
+    monkeypatch.setattr(unitlens.model, "load_model", no_model)
+    given = {"RUN": tmp_path, "NEW": tmp_path / "new", "IMG": tmp_path / "cat.png"}
+    code, out, err = cli(capsys, *[given.get(a, a) for a in args])
+    assert code == 2 and "Traceback" not in err, err
+    assert f"Try 'unitlens {args[0]} --help' for help." in err and err.startswith("Usage: unitlens"), err
+    assert message in err, err
+    assert out == "" and not (tmp_path / "new").exists()
+
+
+CTRL_C = [  # (arguments, the call that the interrupt hits)
+    (["layers", MODEL], "unitlens.cli._load"),
+    (["mine", MODEL, "--corpus", "RUN", "--layers", "layer1", "--out", "NEW"], "unitlens.cli._load"),
+    (["run", MODEL, "--corpus", "RUN", "--layers", "layer1", "--out", "NEW"], "unitlens.cli._load"),
+    (["synth", MODEL, "--layers", "layer1", "--out", "NEW"], "unitlens.cli._load"),
+    (["compare", MODEL, MODEL, "--out", "NEW"], "unitlens.cli._load"),
+    (["probe", MODEL, "layer1:0", "--corpus", "RUN", "--out", "NEW"], "unitlens.cli._load"),
+    (["show", "RUN", "layer1:0"], "unitlens.unit_summary"),
+    (["atlas", "RUN"], "unitlens.render_atlas"),
+    (["demo", "--out", "NEW"], "unitlens.build_demo"),
+]
+
+
+@pytest.mark.parametrize("args, patched", CTRL_C, ids=[a[0] for a, _ in CTRL_C])
+def test_ctrl_c_exits_130_with_one_line_in_every_command(tmp_path, capsys, monkeypatch, args, patched):
+    def interrupt(*a, **kw):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(patched, interrupt, raising=False)
+    given = {"RUN": tmp_path, "NEW": tmp_path / "new"}
+    code, _, err = cli(capsys, *[given.get(a, a) for a in args])
+    _one_error_line(code, err, 130)
+    assert err.startswith("Error: Interrupted"), err
+
+
+def test_every_command_is_in_the_ctrl_c_check():
+    assert {c.name or c.callback.__name__ for c in app.registered_commands} == set(COMMANDS)
+    assert sorted(a[0] for a, _ in CTRL_C) == sorted(COMMANDS)
 
 
 COMMANDS = ["layers", "mine", "show", "run", "synth", "compare", "atlas", "probe", "demo"]

@@ -2,7 +2,6 @@
 check, since every swatch's generating factors are known."""
 from __future__ import annotations
 
-import math
 import subprocess
 import sys
 from dataclasses import replace

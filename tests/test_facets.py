@@ -7,10 +7,10 @@ import torch
 from PIL import Image
 
 import cdp
-from conftest import TESTS
+from conftest import TESTS, chromium_or_skip
 from unitlens import MineConfig, load_model, mine, open_corpus, parse_layers, render_atlas
 from unitlens import facets
-from unitlens.store import Run, read_npz
+from unitlens.store import read_npz
 
 FACETED = f"{TESTS / 'faceted.py'}:two_faced"
 SIZE = 32
@@ -250,9 +250,7 @@ def test_nearest_natural_images_of_a_synthesised_image_equal_brute_force(faceted
 
 
 def test_unit_view_shows_facets_and_nearest_images_without_errors(faceted_run):
-    chromium = cdp.find_chromium()
-    if chromium is None:
-        pytest.skip("no Chromium")
+    chromium = chromium_or_skip()
     _, _, run, index = faceted_run
     browser = cdp.Browser(chromium)
     try:

@@ -95,7 +95,7 @@ def gradient_box(model, layer, size, pos=None):
 def positive_(model):
     """Positive weights, so no ReLU is ever off and no gradient cancels."""
     torch.manual_seed(0)
-    for name, p in model.named_parameters():
+    for p in model.parameters():
         with torch.no_grad():
             p.copy_((torch.rand_like(p) + 0.5) / (p[0].numel() if p.ndim > 1 else 1))
     return model.double().eval()

@@ -100,7 +100,7 @@ def wrap(module: nn.Module, size: int, spec: str) -> LoadedModel:
     module.eval()
     for p in module.parameters():
         p.requires_grad_(False)
-    return LoadedModel(spec, module, Preprocess(size, (0.0,) * 3, (1.0,) * 3, "test"), {"kind": "none"})
+    return LoadedModel(spec, module, Preprocess((size, size), (0.0,) * 3, (1.0,) * 3, "test"), {"kind": "none"})
 
 
 def avg_pools(module: nn.Module) -> nn.Module:

@@ -216,7 +216,7 @@ def test_digit_logits_top_nine_are_that_digit(tmp_path):
     run = mine(model, corpus, parse_layers(model, ["7"]), tmp_path / "run", MineConfig(top_k=9, workers=0))
     for digit in range(10):
         labels_top = [e["label"] for e in unit_summary(run, "7", digit)["exemplars"]]
-        assert sum(l == str(digit) for l in labels_top) >= 8, (digit, labels_top)
+        assert sum(label == str(digit) for label in labels_top) >= 8, (digit, labels_top)
     # the logits are class-selective: CSI (Morcos et al. 2018) well above that of an untrained net
     s = unit_summary(run, "7", 3)["stats"]
     assert s["class_means"]["3"] == max(s["class_means"].values())

@@ -14,7 +14,7 @@ import pytest
 import torch
 from PIL import Image
 
-from conftest import ROOT, TESTS, run_cli
+from conftest import ROOT, TESTS, chromium_or_skip, run_cli
 from unitlens import UnitlensError
 
 MODEL = f"{TESTS / 'nets.py'}:digits_net"
@@ -164,11 +164,13 @@ def test_other_weights_than_the_runs_are_flagged(corpus, tmp_path):
 def test_mistakes_get_one_clear_error(corpus, probed):
     run, _ = probed
     img = next(corpus.joinpath("digits").rglob("*.png"))
-    cases = [
-        ((run, f"{LAYER}:6"), "Channel 6 of 3 was not mined"),
+    usage = [  # exit 2, with typer's usage line and a hint to --help
         ((MODEL, f"{LAYER}:{UNIT}", "--size", SIZE), "give --corpus DIR and --out DIR"),
         ((MODEL, "--image", img, "--size", SIZE), "give --layer L"),
         ((run, f"{LAYER}:{UNIT}", "--weights", corpus / "w.pth"), "apply only when TARGET is a model"),
+    ]
+    cases = [
+        ((run, f"{LAYER}:6"), "Channel 6 of 3 was not mined"),
         ((run, f"{LAYER}:{UNIT}", "--attribution", "ig,lrp"), "Unknown attribution method 'lrp'"),
         ((MODEL, "9:0", "--size", SIZE, "--corpus", corpus / "digits", "--out", corpus / "never"), "Unknown layer '9'"),
         ((run, "layer3"), "Expected LAYER:CHANNEL"),
@@ -180,6 +182,9 @@ def test_mistakes_get_one_clear_error(corpus, probed):
     for args, text in cases:  # in this process, for speed; main() turns the error into one line
         r = CliRunner().invoke(app, ["probe", *map(str, args)])
         assert isinstance(r.exception, UnitlensError) and text in str(r.exception), (args, r.exception)
+    for args, text in usage:
+        r = CliRunner().invoke(app, ["probe", *map(str, args)])
+        assert r.exit_code == 2 and text in r.output and "--help' for help" in r.output, (args, r.output)
     assert not (corpus / "never").exists()  # checked before any image was read
     r = run_cli("probe", *cases[0][0], check=False)
     assert r.returncode == 1 and r.stderr.startswith("Error: ") and "Traceback" not in r.stderr
@@ -230,9 +235,7 @@ def test_image_form_lists_the_units_one_image_drives(corpus, probed):
 def test_the_page_opens_offline_with_every_image(probed):
     import cdp
 
-    chromium = cdp.find_chromium()
-    if chromium is None:
-        pytest.skip("no Chromium or Chrome on PATH")
+    chromium = chromium_or_skip()
     _, s = probed
     b = cdp.Browser(chromium)
     try:

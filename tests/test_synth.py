@@ -2,12 +2,13 @@
 import json
 import math
 import re
+import sys
 
 import numpy as np
 import pytest
 import torch
 
-from conftest import TESTS, cli, run_cli
+from conftest import ROOT, TESTS, cli, run_cli
 from unitlens import UnitlensError, load_model
 from unitlens.synth import (ColourBasis, Goal, PixelBasis, SpectralBasis, SynthConfig, Warps, optimise_units,
                             synthesize, unit_images)
@@ -68,10 +69,50 @@ def test_colour_factor_whitens_the_corpus_colours():
     s = np.sqrt(np.diag(d.covariance()))
     np.testing.assert_allclose(d.covariance() / np.outer(s, s), DEFAULT_CORR, atol=1e-12)
     np.testing.assert_allclose(s, DEFAULT_STD, atol=1e-12)
-    assert "[from memory]" in d.source
+    assert "scikit-image" in d.source
     # a grey corpus has a singular covariance: a small ridge keeps colours reachable, and is recorded
     grey = ColourBasis.from_covariance(np.full((3, 3), 0.04), (0.5, 0.5, 0.5), "grey")
     assert 0 < grey.ridge < 1e-4
+
+
+def test_default_colour_correlation_is_a_fresh_measurement_of_real_photos():
+    sys.path.insert(0, str(ROOT / "scripts"))
+    try:
+        from measure_colour import measure  # scikit-image's bundled photographs
+    finally:
+        sys.path.remove(str(ROOT / "scripts"))
+    np.testing.assert_allclose(DEFAULT_CORR, measure(), atol=1e-9)
+
+
+def test_adam_rows_match_torch_optim_adam_each_at_its_own_step():
+    from unitlens.synth.loop import ADAM_EPS, BETAS, adam_step
+
+    # Two rows of a (2, 3, 5, 5) batch minimise a quadratic; row 1 joins three steps late, as a
+    # unit that enters the batch when another finishes. Reference: torch.optim.Adam, one per row.
+    torch.manual_seed(0)
+    target = torch.randn(2, 3, 5, 5, dtype=torch.float64)
+    start = torch.randn(2, 3, 5, 5, dtype=torch.float64)
+    weight = torch.linspace(0.5, 2.0, 75, dtype=torch.float64).view(1, 3, 5, 5)  # a badly scaled bowl
+    P, m1, m2 = start.clone(), torch.zeros_like(start), torch.zeros_like(start)
+    step = torch.tensor([0, 0])
+    refs = [start[i].clone().requires_grad_() for i in range(2)]
+    opts = [torch.optim.Adam([r], lr=0.05, betas=BETAS, eps=ADAM_EPS) for r in refs]
+    joins = (0, 3)
+    for k in range(12):
+        rows = [i for i in range(2) if k >= joins[i]]
+        g = (P - target) * weight  # (2, 3, 5, 5): the gradient of the quadratic
+        idx = torch.tensor(rows)
+        part = [x[idx] for x in (P, m1, m2)]
+        adam_step(*part, g[idx], step[idx], 0.05)
+        for x, p in zip((P, m1, m2), part):
+            x[idx] = p
+        step[idx] += 1
+        for i in rows:
+            opts[i].zero_grad()
+            (0.5 * (weight[0] * (refs[i] - target[i]) ** 2).sum()).backward()
+            opts[i].step()
+    for i in range(2):
+        np.testing.assert_allclose(P[i].numpy(), refs[i].detach().numpy(), rtol=0, atol=1e-12)
 
 
 def test_blur_matches_a_periodic_gaussian_filter():
@@ -151,7 +192,10 @@ def test_goal_scores_against_plain_torch():
     # diversity: minus the mean Gram cosine with the other images of the same unit (brute force in numpy)
     a = f.flatten(2).numpy()
     gram = [(x @ x.T).ravel() for x in a]
-    cos = lambda u, v: u @ v / np.linalg.norm(u) / np.linalg.norm(v)
+
+    def cos(u, v):
+        return u @ v / np.linalg.norm(u) / np.linalg.norm(v)
+
     expect = [-cos(gram[0], gram[1]), -cos(gram[1], gram[0]), -cos(gram[2], gram[3]), -cos(gram[3], gram[2])]
     np.testing.assert_allclose(diversity(f, groups).numpy(), expect, rtol=1e-5)
     both = Goal("L", diversity=0.5).scorer("L")(feats, ctx) - mean_t
@@ -406,15 +450,18 @@ def test_bad_names_give_one_line_errors(mined, capsys):
         (["--layers", "layer9"], "Unknown layer 'layer9'"),
         (["--layers", "layer3:0-999"], "Channel 999 is out of range for layer3 (0-255)"),
         (["--units", "x"], "'x' is not a channel or range"),
-        (["--weights", "w.pth"], "apply only when TARGET is a model"),
         (["--reduce", "class"], "Unknown reduction 'class'; valid: mean, centre, at:Y,X"),
         (["--reduce", "at:9,9"], "Position y=9 is outside layer3's feature map (2x2)"),
-        (["--drive", "sideways"], "drive must be up or down, got 'sideways'"),
     ]
     for extra, message in cases:
         code, out, err = cli(capsys, "synth", mined, "--steps", "2", *extra)
         assert code == 1 and message in err, (extra, err)
         assert err.strip().count("\n") == 0 and err.startswith("Error: ")
+    # usage mistakes: exit 2, typer's usage line and a hint to --help
+    for extra, message in [(["--weights", "w.pth"], "apply only when TARGET is a model"),
+                           (["--drive", "sideways"], "'sideways' is not one of 'up', 'down'")]:
+        code, out, err = cli(capsys, "synth", mined, "--steps", "2", *extra)
+        assert code == 2 and message in err and "Try 'unitlens synth --help'" in err, (extra, err)
     # and as a real process: exit status 1, one line, no traceback
     r = run_cli("synth", mined, "--layers", "layer9", check=False)
     assert r.returncode == 1 and r.stderr.strip().startswith("Error: Unknown layer") and "Traceback" not in r.stderr
@@ -427,11 +474,11 @@ def test_synth_from_a_model_without_a_run(tmp_path, capsys):
     assert code == 0, err
     man = json.loads((out / "manifest.json").read_text())
     assert man["model"]["spec"].endswith("planted.py:gabor_net") and man["model"]["preprocess"]["size"] == 32
-    assert "[from memory]" in man["synth"]["colour"]["source"]
+    assert man["synth"]["colour"]["source"].startswith("natural-image default")
     (e,) = unit_images(out, "1", 3)
     assert e["vs_best_exemplar"] is None and e["steps"] == 4
     code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1")
-    assert code == 1 and "--out" in err
+    assert code == 2 and "--out" in err
     # --size is the network's input, as in every command; --synth-size the synthesised image's side
     code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1:3", "--size", "32",
                        "--synth-size", "24", "--steps", "2", "--out", tmp_path / "r24")
@@ -441,7 +488,7 @@ def test_synth_from_a_model_without_a_run(tmp_path, capsys):
 
     assert Image.open(unit_images(tmp_path / "r24", "1", 3)[0]["image"]).size == (24, 24)
     code, _, err = cli(capsys, "synth", out, "--size", "32")
-    assert code == 1 and "--size apply only when TARGET is a model" in err
+    assert code == 2 and "--size apply only when TARGET is a model" in err
 
 
 def test_a_goal_from_python_and_from_the_command_line_gives_the_same_images(tmp_path, capsys):

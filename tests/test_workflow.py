@@ -9,7 +9,7 @@ import time
 import numpy as np
 import pytest
 
-from conftest import ROOT, run_cli
+from conftest import ROOT
 from unitlens import UnitlensError
 from unitlens.units import LayerUnits
 from unitlens.workflow import MIN_STEPS, parse_budget, plan
@@ -77,14 +77,15 @@ def _atlas_data(out):
     return {p.name: p.read_text() for p in sorted(d.glob("*.js"))}
 
 
-def _kill_when(cmd, ready, timeout=240):
+def _kill_when(cmd, ready, timeout=240) -> int:
+    """Start `cmd`, SIGKILL it once `ready()`; its exit status (-9 when the kill landed)."""
     p = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline and p.poll() is None and not ready():
         time.sleep(0.02)
     if p.poll() is None:
         os.kill(p.pid, signal.SIGKILL)
-    p.wait()
+    return p.wait()
 
 
 def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
@@ -109,9 +110,26 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
     def atlas_started(out):
         return lambda: (out / "atlas" / "data").is_dir()
 
-    for name, ready in (("mining", mining_started), ("synthesis", synth_started), ("atlas", atlas_started)):
+    def manifest(out):
+        return json.loads((out / "manifest.json").read_text())
+
+    # what is still unfinished when the kill lands, so the rerun has something to resume
+    def mining_unfinished(out):
+        return not manifest(out)["mine"].get("done")
+
+    def synth_unfinished(out):
+        layers = (manifest(out).get("synth") or {}).get("layers") or {}
+        return not (len(layers) == 2 and all(v.get("complete") for v in layers.values()))
+
+    def atlas_unfinished(out):
+        return not (out / "atlas" / "index.html").is_file()  # the index is the atlas's last file
+
+    for name, ready, unfinished in (("mining", mining_started, mining_unfinished),
+                                    ("synthesis", synth_started, synth_unfinished),
+                                    ("atlas", atlas_started, atlas_unfinished)):
         out = tmp_path / name
-        _kill_when(_cmd(corpus, out, r18_weights), ready(out))
+        assert _kill_when(_cmd(corpus, out, r18_weights), ready(out)) == -signal.SIGKILL, f"{name}: ended unkilled"
+        assert unfinished(out), f"the kill should land during {name}"
         r = subprocess.run(_cmd(corpus, out, r18_weights), cwd=ROOT, capture_output=True, text=True)
         assert r.returncode == 0, r.stderr
         assert _atlas_data(out) == expect, f"killed during {name}"

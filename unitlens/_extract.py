@@ -79,7 +79,7 @@ def observe_shapes(model, size: int | tuple[int, int], *,
                     h.remove()
     except UnitlensError:
         raise
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (whatever the model raises becomes one error)
         if partial:
             return seen
         raise UnitlensError(
@@ -155,7 +155,7 @@ def function_outputs(model) -> dict[str, tuple[str, str]]:
             p = next(iter(model.module.parameters()), torch.zeros(()))  # the input's dtype and device
             ShapeProp(gm).propagate(torch.zeros(1, model.preprocess.channels, *model.preprocess.size,
                                                 dtype=p.dtype, device=p.device))
-    except Exception:  # does not trace: the hooks see module outputs only
+    except Exception:  # noqa: BLE001  (does not trace: the hooks see module outputs only)
         return {}
     out = {}
     for node, name in order:
@@ -210,7 +210,7 @@ class Extractor:
                 warnings.simplefilter("ignore")
                 self._graph, self._nodes = _fx_graph(module, self._calls, set(reused))
             self.strategy = "fx"
-        except Exception:  # does not trace: fall back to hooks with an early exit
+        except Exception:  # noqa: BLE001  (does not trace: fall back to hooks with an early exit)
             self._graph = None
 
     def __call__(self, x: torch.Tensor) -> dict[str, torch.Tensor]:

@@ -544,3 +544,19 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
 
             summary["atlas"] = str(render_comparison(out))
     return summary
+
+
+def comparison_text(s: dict) -> str:
+    """The table `unitlens compare` prints for `compare(...)`'s summary, then where it wrote."""
+    def fmt(v):
+        return "-" if v is None else f"{v:.3f}"
+
+    lines = [f"{'layer':<20} {'CKA':>6} {'95% interval':>15} {'full-map':>9} {'corr':>6} {'jaccard':>7} {'dead':>4}  "
+             "most changed"]
+    for e in s["layers"]:
+        name = e["layer"] if e["layer"] == e["layer_b"] else f"{e['layer']}~{e['layer_b']}"
+        ci = f"{fmt(e['cka_ci'][0])}-{fmt(e['cka_ci'][1])}" if e["cka_ci"] else "-"
+        changed = ", ".join(map(str, e["most_changed"][:8])) or e["units_note"] or ""
+        lines.append(f"{name:<20} {fmt(e['cka']):>6} {ci:>15} {fmt(e['cka_full_maps']):>9} {fmt(e['mean_corr']):>6} "
+                     f"{fmt(e['mean_jaccard']):>7} {e['dead']:>4}  {changed}")
+    return "\n".join(lines + [str(s["out"]), str(s["atlas"])])

@@ -252,12 +252,12 @@ def _decode(path: Path, size: int | None, max_pixels: int) -> tuple[Image.Image,
                 try:
                     turned = stored.getexif().get(_ORIENTATION, 1) in (5, 6, 7, 8)
                     upright = ImageOps.exif_transpose(stored)
-                except Exception:  # a broken EXIF block should not cost the picture: use it as stored
+                except Exception:  # noqa: BLE001  (a broken EXIF block should not cost the picture: use it as stored)
                     turned, upright = False, stored
                 return _to_rgb(upright), ((h, w) if turned else (w, h))
         except ImageProblem:
             raise
-        except Exception as err:  # PIL raises many types for hostile or damaged files
+        except Exception as err:  # noqa: BLE001  (PIL raises many types for hostile or damaged files)
             raise ImageProblem(_reason(err, path)) from None
 
 

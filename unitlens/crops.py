@@ -92,7 +92,7 @@ def _draft_sizes(path: Path, needs) -> dict:
                 with Image.open(path) as im:
                     im.draft(None, (n, n))  # a no-op for formats without drafts: one key for all
                     out[n] = im.size
-        except Exception:  # damaged or hostile files: decode_original gives the reason
+        except Exception:  # noqa: BLE001  (damaged or hostile files: decode_original gives the reason)
             out[n] = None
     return out
 

@@ -113,7 +113,7 @@ def receptive_fields(module: torch.nn.Module, input_size: int | tuple[int, int],
         try:  # shapes are all we need: meta tensors skip the arithmetic and the memory
             x = torch.zeros(shape, dtype=dtype, device="meta")
             seen = _trace(module, x, hooked, names, _Tracer(True, global_context))
-        except Exception:  # an op without a meta kernel, or data-dependent control flow
+        except Exception:  # noqa: BLE001  (an op without a meta kernel, or data-dependent control flow)
             seen = _trace(module, torch.zeros(shape, dtype=dtype, device=device), hooked,
                           names, _Tracer(False, global_context))
     except Exception as e:
@@ -492,7 +492,7 @@ def _pointwise(ins, o: torch.Tensor) -> _Geo | None:
     for i, p in enumerate(pos):
         y = np.arange(p.size)
         los, his = [], []
-        for t, g in ins:   # a size-1 (broadcast) or global input shows position 0 everywhere
+        for _, g in ins:   # a size-1 (broadcast) or global input shows position 0 everywhere
             idx = y if g.pos is not None and g.pos[i].size == p.size else np.zeros_like(y)
             lo, hi = g.ax[i].spans(idx)
             los.append(lo)

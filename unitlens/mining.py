@@ -300,7 +300,7 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
     class_of = None
     if corpus.labels is not None:
         lookup = {c: i for i, c in enumerate(corpus.classes)}
-        class_of = torch.tensor([lookup.get(l, -1) if l is not None else -1 for l in corpus.labels])
+        class_of = torch.tensor([lookup.get(c, -1) if c is not None else -1 for c in corpus.labels])
     infos = {lu.layer: model.layer(lu.layer) for lu in layers}
     tallies = {lu.layer: LayerTally(lu.units, infos[lu.layer].channels, infos[lu.layer].width,
                                     config.top_k, n_classes) for lu in layers}

@@ -158,7 +158,7 @@ class LoadedModel:
                 maps = self.extractor(names)(torch.zeros(1, self.preprocess.channels, size, size))
         except UnitlensError:
             raise
-        except Exception as e:
+        except Exception as e:  # noqa: BLE001  (whatever the model raises is reported below)
             maps = f"{e.__class__.__name__}: {str(e)[:200]}"
         if isinstance(maps, str) or any(0 in v.shape[2:] for v in maps.values()):
             why = maps if isinstance(maps, str) else "a feature map is empty"
@@ -349,7 +349,7 @@ def _warn_random(spec: str) -> None:
     if spec in _WARNED:
         return
     _WARNED.add(spec)
-    warnings.warn(f"{what}, drawn anew at every load. Pass trained weights with --weights.", UnitlensWarning)
+    warnings.warn(f"{what}, drawn anew at every load. Pass trained weights with --weights.", UnitlensWarning, stacklevel=2)
 
 
 def _bad_spec_message(spec: str) -> str:
@@ -465,7 +465,7 @@ def _read_state_dict(path: Path) -> dict:
             "unpickling can run code. Save a state dict instead (torch.save(model.state_dict(), f)), "
             f"or, if you trust the file, give it as the model with --allow-pickle. ({str(e)[:120]})"
         ) from None
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (torch.load raises many types for damaged files)
         raise UnitlensError(f"Cannot read weights file {path}: {e.__class__.__name__}: {e}") from None
     if isinstance(obj, dict) and not _tensors(obj):
         # A training checkpoint: the weights sit under one entry beside epoch, optimiser state, ...
@@ -584,7 +584,7 @@ def _user_code(spec: str) -> tuple[nn.Module, object, str]:
             module = fn()
         except SystemExit as e:
             raise UnitlensError(f"{spec}() called sys.exit({e.code!r}) instead of returning a model.") from None
-        except Exception as e:
+        except Exception as e:  # noqa: BLE001  (user code: any failure becomes one error)
             raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
     if not isinstance(module, nn.Module):
         raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
@@ -603,7 +603,7 @@ def _import_file(path: Path):
     except SystemExit as e:
         raise UnitlensError(f"Importing {path} called sys.exit({e.code!r}), so no model was built. Keep "
                             "script code under `if __name__ == \"__main__\":` in that file.") from None
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (user code: any failure becomes one error)
         raise UnitlensError(f"Importing {path} failed: {e.__class__.__name__}: {e}") from None
     return mod
 
@@ -614,7 +614,7 @@ def _import_module(name: str):
     except ModuleNotFoundError as e:
         raise UnitlensError(f"Cannot import the model's module '{name}' ({e}). Install the package that "
                             "holds it, or give its code file as path/to/file.py:function.") from None
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (user code: any failure becomes one error)
         raise UnitlensError(f"Importing {name} failed: {e.__class__.__name__}: {e}") from None
 
 
@@ -650,7 +650,7 @@ def _model_file(path: Path, allow_pickle: bool):
     print(f"Warning: loading a pickled module from {path}; this runs code from the file.", file=sys.stderr)
     try:
         obj = torch.load(path, map_location="cpu", weights_only=False)
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001  (unpickling runs the file's code: any failure becomes one error)
         raise UnitlensError(f"Cannot unpickle {path}: {e.__class__.__name__}: {e}") from None
     if not isinstance(obj, nn.Module):
         raise UnitlensError(f"{path} holds a {type(obj).__name__}, not a torch.nn.Module.")
@@ -696,7 +696,7 @@ def _layer_table(model: LoadedModel) -> tuple[dict[str, LayerInfo], dict[str, tu
         # them like normalisation statistics, or every crop after the first gate is the whole image.
         fields = receptive_fields(_observable(model), p.size, global_context=False)
     except UnitlensError as e:
-        warnings.warn(f"receptive fields unavailable: {e}")
+        warnings.warn(f"receptive fields unavailable: {e}", stacklevel=2)
         fields = {}
     calls = Calls(n for n, _ in _observable(model).named_modules())
     table, tokens = {}, {}
@@ -735,3 +735,49 @@ def _observable(model: LoadedModel) -> nn.Module:
 
     seq = script_sequence(model.module)
     return seq if seq is not None else model.module
+
+
+def layer_rows(model: LoadedModel) -> list[dict]:
+    """One dict per selectable feature map (`unitlens layers --json`): shape, receptive field, kind."""
+    rows = []
+    for info in model.layers().values():
+        f = info.field
+        rows.append({
+            "name": info.name, "channels": info.channels, "height": info.height, "width": info.width,
+            "rf_size": max(f.size) if f else None, "rf_stride": max(f.stride) if f else None,
+            "rf_offset": max(f.offset) if f else None,
+            "rf_size_hw": list(f.size) if f else None, "rf_stride_hw": list(f.stride) if f else None,
+            "rf_offset_hw": list(f.offset) if f else None, "rf_exact": f.exact if f else None,
+            "block": info.block, "layout": info.layout, "module": info.module, "call": info.call,
+        })
+    return rows
+
+
+def layers_text(model: LoadedModel) -> str:
+    """The table `unitlens layers` prints: one line per feature map, then notes on what it shows."""
+    rows = layer_rows(model)
+    p = model.preprocess
+    lines = [f"{model.spec}  input {p.channels}x{p.size[0]}x{p.size[1]}  ({p.source})",
+             f"{'layer':<34} {'C x H x W':>16} {'field':>9} {'stride':>7} {'offset':>8}  kind"]
+    reused = {r["module"] for r in rows if r["call"]}
+    wide = pooled = False
+    for r in rows:
+        shape = f"{r['channels']}x{r['height']}x{r['width']}"
+        fs = "x".join(map(str, dict.fromkeys(r["rf_size_hw"]))) if r["rf_size_hw"] else "?"
+        st = "x".join(map(str, dict.fromkeys(r["rf_stride_hw"]))) if r["rf_stride_hw"] else "?"
+        off = "/".join(f"{v:g}" for v in dict.fromkeys(r["rf_offset_hw"])) if r["rf_offset_hw"] else "?"
+        kind = ["block" if r["block"] else "op"]
+        kind += [f"call {r['call'] + 1} of {r['module']}"] if r["module"] in reused else []
+        kind += {"NHWC": ["channels-last"], "?": ["layout unknown: not selectable"]}.get(r["layout"], [])
+        if r["rf_stride_hw"] and 0 in r["rf_stride_hw"]:  # geometry's mark of a global pool
+            fs, st, off, pooled = "global", "-", "-", True
+        elif r["rf_size"] and r["rf_size"] > max(p.size):
+            fs, wide = fs + "*", True
+        lines.append(f"{r['name']:<34} {shape:>16} {fs:>9} {st:>7} {off:>8}  {', '.join(kind)}")
+    if wide:
+        lines.append(f"* wider than the {p.size_text()} px input: the field counts the padding beyond the edges; "
+                     "crops are clipped to the image.")
+    if pooled:
+        lines.append("global: every value pools the whole input (as a global average pool does), so each "
+                     "position's crop is the whole image.")
+    return "\n".join(lines + layer_notes(model))

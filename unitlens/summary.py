@@ -84,3 +84,30 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
 
     result["synth"] = unit_images(run, layer, channel)  # [] until `unitlens synth` has run
     return result
+
+
+def summary_text(s: dict, layer: str, channel: int) -> str:
+    """What `unitlens show` prints for `unit_summary(...)`; names from files are made printable."""
+    from .errors import shown
+
+    st = s["stats"]
+    sel = f"; class selectivity {st['class_selectivity']:.3f}" if st["class_selectivity"] is not None else ""
+    lines = [f"{shown(layer)} channel {channel}  ({st['images']} images)",
+             f"  per-image max: mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, range {st['min']:.4g} .. "
+             f"{st['max']:.4g}",
+             f"  fires (max > 0) on {100 * st['fire_rate']:.1f}% of images{sel}"]
+    for title, key in (("top exemplars", "exemplars"), ("most negative", "negative_exemplars")):
+        if key not in s:
+            continue
+        lines.append(f"  {title}:")
+        for e in s[key]:
+            label = f"  [{shown(e['label'])}]" if e.get("label") else ""
+            lines.append(f"   {e['rank']:>3}  {e['score']:>10.4g}  box {e['box']}  {shown(e['id'])}{label}")
+    for r in s.get("synth") or []:
+        vs = f", {r['vs_best_exemplar']:.2f} x the best exemplar" if r.get("vs_best_exemplar") is not None else ""
+        lines.append(f"  synthesised: {shown(r['image'])}  (spatial max {r['max_activation']:.4g}{vs}; "
+                     f"rank {r['rank']} of {r['channels']} channels, {r['steps']} steps)")
+        if r.get("nearest"):
+            lines.append("    nearest natural images: " + ", ".join(f"{shown(n['id'])} ({n['similarity']:.2f})"
+                                                                  for n in r["nearest"][:3]))
+    return "\n".join(lines)

@@ -61,9 +61,9 @@ def _page_names(layers: list[dict]) -> list[str]:
 
 def interval_bar(value, ci, label: str) -> Html:
     """A 0-to-1 scale with the estimate as a dot and its interval as a band."""
-    W, H, l, r = 340, 40, 10, 10
-    X = lambda v: l + max(0.0, min(1.0, v)) * (W - l - r)  # noqa: E731
-    parts = [f'<line class="axis" x1="{l}" x2="{W - r}" y1="16" y2="16"/>']
+    W, H, left, right = 340, 40, 10, 10
+    X = lambda v: left + max(0.0, min(1.0, v)) * (W - left - right)  # noqa: E731
+    parts = [f'<line class="axis" x1="{left}" x2="{W - right}" y1="16" y2="16"/>']
     for t in (0, 0.25, 0.5, 0.75, 1):
         parts.append(f'<line class="axis" x1="{X(t):.1f}" x2="{X(t):.1f}" y1="16" y2="20"/>'
                      f'<text class="tick" x="{X(t):.1f}" y="33" text-anchor="middle">{t:g}</text>')

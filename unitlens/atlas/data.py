@@ -216,7 +216,8 @@ def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict
     hist_lo, hist_hi, hist, sparks, spark_mean = [], [], [], [], []
     for u in units:
         if u not in pos or "hist" not in idx:
-            hist_lo.append(None); hist_hi.append(None); hist.append([]); sparks.append(""); spark_mean.append(None)
+            for column, empty in ((hist_lo, None), (hist_hi, None), (hist, []), (sparks, ""), (spark_mean, None)):
+                column.append(empty)
             continue
         p = pos[u]
         lo, hi, c = rebin(idx["hist"][p], idx["hist_edges"], idx["low"][p], idx["high"][p])

@@ -304,13 +304,7 @@ class _Engine:
         if c.optimizer == "gradient":
             P.add_(g, alpha=-c.lr)
         else:
-            b1, b2 = BETAS
-            shape = (-1,) + (1,) * (P.dim() - 1)
-            t = (step + 1).to(P.dtype).view(shape)  # each row has its own step count
-            m1.mul_(b1).add_(g, alpha=1 - b1)
-            m2.mul_(b2).addcmul_(g, g, value=1 - b2)
-            denom = (m2 / (1 - b2**t)).sqrt_().add_(ADAM_EPS)
-            P.addcdiv_(m1 * (c.lr / (1 - b1**t)), denom, value=-1.0)
+            adam_step(P, m1, m2, g, step, c.lr)
         if c.blur_period:
             due = torch.nonzero((step + 1) % c.blur_period == 0).flatten()
             if len(due):
@@ -323,6 +317,19 @@ class _Engine:
             px = self.basis.pixels(u.params)  # (M, C, S, S)
         return UnitResult(u.index, u.target, px.permute(0, 2, 3, 1).numpy().astype(np.float32),
                           [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step], self.layer)
+
+
+def adam_step(P: torch.Tensor, m1: torch.Tensor, m2: torch.Tensor, g: torch.Tensor, step: torch.Tensor,
+              lr: float) -> None:
+    """Adam (Kingma & Ba 2015), in place, minimising: P, its moments m1, m2 and gradient g are
+    (B, ...); row i takes its step number step[i] + 1 (rows start at different times)."""
+    b1, b2 = BETAS
+    shape = (-1,) + (1,) * (P.dim() - 1)
+    t = (step + 1).to(P.dtype).view(shape)  # (B, 1, ...): each row has its own step count
+    m1.mul_(b1).add_(g, alpha=1 - b1)
+    m2.mul_(b2).addcmul_(g, g, value=1 - b2)
+    denom = (m2 / (1 - b2**t)).sqrt_().add_(ADAM_EPS)
+    P.addcdiv_(m1 * (lr / (1 - b1**t)), denom, value=-1.0)
 
 
 def _stalled(trace: list[float], window: int, gain: float | None) -> bool:
