@@ -8,9 +8,9 @@ import torch
 
 from .. import dist
 from ..errors import UnitlensError, interrupted
-from ..store import Run, _atomic, disk_bytes, read_json, space_for, write_json, write_npz
+from ..store import Run, _atomic, disk_bytes, read_json, read_npz, space_for, write_json, write_npz
 from ..facets import NaturalNeighbours, synth_neighbours
-from .evidence import assess
+from .evidence import assess, exemplar_references, parity
 from .bases import ColourBasis
 from .goal import Goal
 from .loop import SynthConfig, iter_layer
@@ -122,12 +122,19 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
     scorer = goal.scorer(lu.layer)
     extract = model.extractor([lu.layer])
     near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
+    refs = {}
+    if todo:
+        images, have = exemplar_images(run, lu.layer, todo, size)
+        if have:
+            refs = exemplar_references(model, lu.layer, images, have, scorer, spec, colour.mean, config.seed,
+                                       config.checks, extract)
     try:
         if todo:
-            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour), lu, table):
+            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour, refs), lu, table):
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, scorer, spec, colour,
-                                                                config, best.get(r.target), extract, near)
+                                                                config, best.get(r.target), extract, near,
+                                                                refs.get(r.target))
                 write_json(own, table)  # the finished batch counts from here on
                 g.check(f"in synthesis of {lu.layer}")
                 if g.main:
@@ -174,7 +181,43 @@ def _interruptible(batches, lu, table):
                           "Run the same command to resume.") from None
 
 
-def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, extract, near=None) -> dict:
+def exemplar_images(run: Run, layer: str, units, size: int) -> tuple[torch.Tensor, list[int]]:
+    """The best natural exemplar of each mined unit as mining saw it (the model's input placement),
+    resized to the synthesis size: (N, 3, size, size) uint8 and the N units that have one."""
+    import torch.nn.functional as F
+
+    from ..corpus import ImageProblem, decode_original, fit
+
+    path = run.layer_dir(layer) / "index.npz"
+    if not path.is_file():
+        return torch.zeros((0, 3, size, size), dtype=torch.uint8), []
+    idx = read_npz(path)
+    row = {int(u): k for k, u in enumerate(idx["units"])}
+    corpus, model_size = run.corpus(), int(run.manifest()["model"]["preprocess"]["size"])
+    pics, have = [], []
+    for u in units:
+        if u not in row or not np.isfinite(idx["top_score"][row[u], 0]):
+            continue
+        i = int(idx["top_image"][row[u], 0])
+        if i >= len(corpus):
+            continue
+        try:
+            img, original, _ = decode_original(corpus.path(i), model_size)
+        except (ImageProblem, OSError):  # the corpus changed since mining: no reference for this unit
+            continue
+        pics.append(torch.from_numpy(fit(img, model_size, original)[0]))
+        have.append(u)
+    if not pics:
+        return torch.zeros((0, 3, size, size), dtype=torch.uint8), []
+    x = torch.stack(pics)  # (N, 3, s, s) uint8
+    if model_size != size:
+        x = F.interpolate(x.float(), size=(size, size), mode="bilinear", antialias=True, align_corners=False)
+        x = x.round().clamp(0, 255).to(torch.uint8)
+    return x, have
+
+
+def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, extract, near=None,
+                reference=None) -> dict:
     from PIL import Image
 
     u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
@@ -193,9 +236,11 @@ def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, ex
     for m in range(M):
         c = checks[m]
         ratio = c["max_activation"] / best if best is not None and best > 0 else None
+        first = r.parity_steps[m] if r.parity_steps else None
         images.append({"file": files[m], "steps": r.steps[m], "objective": float(r.traces[m][-1]),
-                       **c, "vs_best_exemplar": ratio})
-    rec = {"unit": r.target, "best_exemplar": best, "trace": f"unit-{r.target:04d}.npz", "images": images}
+                       **c, "vs_best_exemplar": ratio, "parity": parity(c, reference, scorer.sign, first)})
+    rec = {"unit": r.target, "best_exemplar": best, "exemplar_objective": reference,
+           "trace": f"unit-{r.target:04d}.npz", "images": images}
     if near is not None:  # nearest natural images in the layer's embedding (facets.py)
         hits, rec["nearest_strip"] = synth_neighbours(near, model, layer, u8, extract, d, f"near-{r.target:04d}")
         for im, h in zip(images, hits):
