@@ -103,8 +103,8 @@ def main():
     ap.add_argument("--images", type=int, default=10_000, help="corpus size to project mining for")
     ap.add_argument("--parity", type=Path, default=Path("/tmp/unitlens-bench-parity/steps.json"),
                     help="steps per unit from scripts/bench_parity.py --save")
-    ap.add_argument("--settings", default="today's defaults,stop at parity +10%",
-                    help="comma-separated setting names of the --parity file to project")
+    ap.add_argument("--settings", default="today's defaults;stop +10%, lr 0.1",
+                    help="setting names of the --parity file to project, separated by ;")
     ap.add_argument("--quick", action="store_true")
     a = ap.parse_args()
     t0 = time.perf_counter()
@@ -131,7 +131,7 @@ def main():
           f"{hours(mining)} (load {os.getloadavg()[0]:.1f})")
 
     print(f"\n3. Projection for {units:,} units (steps per unit from {a.parity})")
-    for name in [s.strip() for s in a.settings.split(",") if s.strip()]:
+    for name in [s.strip() for s in a.settings.split(";") if s.strip()]:
         if not a.parity.is_file():
             print(f"   no {a.parity}: run scripts/bench_parity.py --save {a.parity} first")
             break

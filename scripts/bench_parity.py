@@ -86,6 +86,7 @@ def main():
     ap.add_argument("--cache", type=Path, default=Path("/tmp/unitlens-bench-parity"), help="corpus and mined run")
     ap.add_argument("--save", type=Path, default=None,
                     help="write each setting's per-unit steps here (JSON; default CACHE/steps.json), for bench_overnight.py")
+    ap.add_argument("--only", default=None, help="setting names to run, separated by ; (default: all)")
     a = ap.parse_args()
     save = a.save or a.cache / "steps.json"
     saved = {}
@@ -104,7 +105,10 @@ def main():
             f"{'image-steps':>11} {'vs today':>8} {'wall s':>7} {'ms/img-step':>11} {'load':>5}")
     print(head)
     base = None
+    only = None if a.only is None else {s.strip() for s in a.only.split(";")}
     for name, cfg in settings(a.quick):
+        if only is not None and name not in only:
+            continue
         got = [measure(model, run, layer, us, cfg, colour) for layer, us in units.items()]
         n = sum(g["n"] for g in got)
         reached = sum(g["reached"] for g in got)
