@@ -44,7 +44,7 @@ CHECKS = 64  # warped forwards per unit: 32 on the finished image, 32 on its bes
 def step_costs(model, layer: str, batch: int, reps: int) -> dict:
     """Fastest of `reps` alternating single steps (after a warm-up): synthesis step, bare
     forward+backward, and a forward alone (what a check costs), each per image."""
-    size = model.preprocess.size
+    size = model.preprocess.side
     extract = model.extractor([layer])
     x = torch.rand(batch, 3, size, size)
     cfg = SynthConfig(steps=10**6, stop_gain=None, batch_size=batch)

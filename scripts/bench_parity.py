@@ -62,10 +62,10 @@ def mined_run(cache: Path, model):
 def measure(model, run, layer, units, cfg, colour) -> dict:
     goal = Goal(layer)
     scorer = goal.scorer(layer)
-    size = model.preprocess.size
+    size = model.preprocess.side
     spec = cfg.warps.at(size)
     extract = model.extractor([layer])
-    images, have = exemplar_images(run, layer, units, size)
+    images, have = exemplar_images(run, model, layer, units, size)
     refs = exemplar_references(model, layer, images, have, scorer, spec, colour.mean, cfg.seed, 32, extract)
     t = time.perf_counter()
     results = [r for b in iter_layer(model, layer, have, replace(cfg, checks=0), goal, colour, refs) for r in b]

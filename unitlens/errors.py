@@ -1,4 +1,4 @@
-"""The one error class of unitlens, and a helper for 'did you mean' messages."""
+"""The one error class of unitlens, its warning class, and a helper for 'did you mean' messages."""
 from __future__ import annotations
 
 import difflib
@@ -20,6 +20,14 @@ class UnitlensError(Exception):
 def interrupted(message: str) -> UnitlensError:
     """The error for Ctrl-C: `message` says how far the command got and what was kept."""
     return UnitlensError(f"Interrupted {message}", status=130)
+
+
+class UnitlensWarning(UserWarning):
+    """Something the user should know that does not stop the work (e.g. random weights).
+
+    The library issues it through `warnings` (shown once per distinct message by default); the
+    CLI prints it as one ``Warning: ...`` line.
+    """
 
 
 def closest(name: str, choices: Iterable[str], n: int = 3) -> list[str]:

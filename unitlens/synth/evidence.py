@@ -29,19 +29,19 @@ from .warps import Warps, warp
 
 def assess(model, layer: str, images: torch.Tensor, targets, scorer, spec: Warps,
            fill, seed: int, ms, checks: int = 32, extract=None) -> list[dict]:
-    """images (N, 3, S, S) uint8; targets (N,) channels; ms (N,) image numbers within their unit.
+    """images (N, C, S, S) uint8; targets (N,) channels; ms (N,) image numbers within their unit.
 
     `scorer` is the goal's Scorer for `layer`; `extract` an extractor that returns `layer` (made here if not given).
     """
     name, sign = layer, scorer.sign
     extract = extract or model.extractor([name])
     x = images.float() / 255.0
-    size = model.preprocess.size
+    size = model.preprocess.size  # (H, W)
     out = []
     with torch.no_grad():
         stat = scorer.per_channel(extract(model.normalize(x))[name])  # (N, C)
-        xm = x if x.shape[-1] == size else F.interpolate(x, size=(size, size), mode="bilinear",
-                                                         antialias=True, align_corners=False)
+        xm = x if tuple(x.shape[-2:]) == size else F.interpolate(x, size=size, mode="bilinear",
+                                                                 antialias=True, align_corners=False)
         # the resize gives floats; round to 8 bits like a decoded corpus image
         xm = (xm * 255).round().clamp(0, 255) / 255.0
         fmax = extract(model.normalize(xm))[name].flatten(2).max(2).values  # (N, C)
@@ -64,7 +64,7 @@ def warped_values(model, layer: str, x: torch.Tensor, targets, scorer, spec: War
                   checks: int, extract=None, chunk: int = 64) -> torch.Tensor:
     """The reduced target of image i under `checks` fresh random transforms, drawn from a generator
     seeded by (seed, layer, target, m) only, so an exemplar and a synthesised image of the same unit
-    see the same transforms. x (N, 3, S, S) in [0, 1] -> (N, checks) float64; `chunk` images a pass."""
+    see the same transforms. x (N, C, S, S) in [0, 1] -> (N, checks) float64; `chunk` images a pass."""
     extract = extract or model.extractor([layer])
     draws = []
     for t, m in zip(targets, ms):
@@ -86,7 +86,7 @@ def warped_values(model, layer: str, x: torch.Tensor, targets, scorer, spec: War
 def exemplar_references(model, layer: str, images: torch.Tensor, targets, scorer, spec: Warps, fill,
                         seed: int, checks: int = 32, extract=None) -> dict[int, float]:
     """{target: mean over `checks` fresh transforms of its reduced value on its best natural exemplar}.
-    images (N, 3, S, S) uint8 at the synthesis size, one per target. With no transforms (identity
+    images (N, C, S, S) uint8 at the synthesis size, one per target. With no transforms (identity
     warps or checks 0) the value on the image as it stands."""
     x = images.float() / 255.0
     if not checks or spec.identity:

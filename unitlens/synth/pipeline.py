@@ -31,7 +31,7 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
     if goal.reduce == "direction":
         raise UnitlensError("A run folder files images under their channel, and a direction goal has none; "
                             "synthesise directions in memory with optimise_units.")
-    size = config.size or model.preprocess.size
+    size = config.size or model.preprocess.side
     run = Run(out)
     manifest = run.manifest() if run.exists() else {}
     if manifest.get("model") and not same_model(manifest["model"], model.describe()):
@@ -42,7 +42,7 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
     model.check_size(size, sorted({lu.layer for lu in layers}))
 
     g = dist.group()  # one process, or this rank of a torchrun job: it takes every world-th unit of a layer
-    colour = ColourBasis.from_run(manifest)
+    colour = ColourBasis.from_run(manifest, model.preprocess.channels)
     used = colour if config.whiten_colour else ColourBasis.plain(colour.mean)
     settings = {"config": config.describe(size), "goal": goal.record(), "colour": used.describe()}
     old = manifest.get("synth")
@@ -116,21 +116,23 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
     todo = [c for c in g.shard(lu.units) if c not in finished]
     own = g.part(d / "units.json")  # several ranks never write one file
     best = best_exemplars(run, lu.layer)
-    bar = Progress(len(lu.units), len(lu.units) - len(todo), f"synth {lu.layer}", "units", per="h") \
-        if progress and todo else None
+    before = len(lu.units) - len(todo)
+    bar = Progress(len(lu.units), before, f"synth {lu.layer}", "units", per="h") if progress and todo else None
+    on_step = (lambda units, step: bar.advance(before + units, f"step {step}/{config.steps}")) if bar else None
     spec = config.warps.at(size)
     scorer = goal.scorer(lu.layer)
     extract = model.extractor([lu.layer])
     near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
     refs = {}
     if todo:
-        images, have = exemplar_images(run, lu.layer, todo, size)
+        images, have = exemplar_images(run, model, lu.layer, todo, size)
         if have:
             refs = exemplar_references(model, lu.layer, images, have, scorer, spec, colour.mean, config.seed,
                                        config.checks, extract)
     try:
         if todo:
-            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour, refs), lu, table):
+            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour, on_step,
+                                                   references=refs), lu, table):
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, scorer, spec, colour,
                                                                 config, best.get(r.target), extract, near,
@@ -139,8 +141,6 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
                 g.check(f"in synthesis of {lu.layer}")
                 if g.main:
                     _status(run, lu.layer, len(table["units"]), False)
-                if bar:
-                    bar.advance(len([c for c in lu.units if str(c) in table["units"]]))
         write_json(own, table)
         g.barrier(f"the end of synthesis of {lu.layer}")
         if g.main:
@@ -181,36 +181,30 @@ def _interruptible(batches, lu, table):
                           "Run the same command to resume.") from None
 
 
-def exemplar_images(run: Run, layer: str, units, size: int) -> tuple[torch.Tensor, list[int]]:
-    """The best natural exemplar of each mined unit as mining saw it (the model's input placement),
-    resized to the synthesis size: (N, 3, size, size) uint8 and the N units that have one."""
+def exemplar_images(run: Run, model, layer: str, units, size: int) -> tuple[torch.Tensor, list[int]]:
+    """The best natural exemplar of each mined unit as mining saw it (the model's input frame),
+    resized to the synthesis square if that differs: (N, C, size, size) uint8 and the N units that have one."""
     import torch.nn.functional as F
 
-    from ..corpus import ImageProblem, decode_original, fit
+    from ..corpus import CorpusDataset
 
+    C = model.preprocess.channels
+    none = torch.zeros((0, C, size, size), dtype=torch.uint8), []
     path = run.layer_dir(layer) / "index.npz"
     if not path.is_file():
-        return torch.zeros((0, 3, size, size), dtype=torch.uint8), []
+        return none
     idx = read_npz(path)
     row = {int(u): k for k, u in enumerate(idx["units"])}
-    corpus, model_size = run.corpus(), int(run.manifest()["model"]["preprocess"]["size"])
-    pics, have = [], []
-    for u in units:
-        if u not in row or not np.isfinite(idx["top_score"][row[u], 0]):
-            continue
-        i = int(idx["top_image"][row[u], 0])
-        if i >= len(corpus):
-            continue
-        try:
-            img, original, _ = decode_original(corpus.path(i), model_size)
-        except (ImageProblem, OSError):  # the corpus changed since mining: no reference for this unit
-            continue
-        pics.append(torch.from_numpy(fit(img, model_size, original)[0]))
-        have.append(u)
-    if not pics:
-        return torch.zeros((0, 3, size, size), dtype=torch.uint8), []
-    x = torch.stack(pics)  # (N, 3, s, s) uint8
-    if model_size != size:
+    corpus = run.corpus()
+    have = [u for u in units if u in row and np.isfinite(idx["top_score"][row[u], 0])
+            and int(idx["top_image"][row[u], 0]) < len(corpus)]
+    data = CorpusDataset(corpus, model.preprocess.frame, [int(idx["top_image"][row[u], 0]) for u in have])
+    items = [data[k] for k in range(len(data))]
+    have = [u for u, it in zip(have, items) if it[1] is not None]  # a file gone since mining: no reference
+    if not have:
+        return none
+    x = torch.stack([it[1] for it in items if it[1] is not None])  # (N, C, H, W) uint8
+    if tuple(x.shape[-2:]) != (size, size):
         x = F.interpolate(x.float(), size=(size, size), mode="bilinear", antialias=True, align_corners=False)
         x = x.round().clamp(0, 255).to(torch.uint8)
     return x, have
@@ -220,11 +214,11 @@ def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, ex
                 reference=None) -> dict:
     from PIL import Image
 
-    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
+    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, C)
     M = len(u8)
     files = [f"unit-{r.target:04d}-{m}.png" for m in range(M)]
-    for f, a in zip(files, u8):
-        _atomic(d / f, lambda fh, a=a: Image.fromarray(a).save(fh, format="PNG"))
+    for f, a in zip(files, u8):  # a grey image (H, W, 1) is saved as an 8-bit grey PNG
+        _atomic(d / f, lambda fh, a=a: Image.fromarray(a[..., 0] if a.shape[-1] == 1 else a).save(fh, format="PNG"))
     T = max(len(t) for t in r.traces)
     trace = np.full((M, T), np.nan, dtype=np.float32)
     for m, t in enumerate(r.traces):
@@ -258,6 +252,7 @@ def _status(run: Run, layer: str, done: int, complete: bool) -> None:
 
 def model_from_run(run: Run | str, allow_pickle: bool = False):
     """Rebuild the LoadedModel a run folder was made with (spec, weights, preprocessing)."""
+    from .._specs import locate
     from ..model import load_model
 
     run = run if isinstance(run, Run) else Run(run)
@@ -270,7 +265,7 @@ def model_from_run(run: Run | str, allow_pickle: bool = False):
     if kind == "pickle" and not allow_pickle:
         raise UnitlensError(f"{run.path} was made from a pickled module ({d['spec']}); loading it runs code "
                             "from the file. Add --allow-pickle if you trust it.")
-    weights = {"file": w.get("path"), "torchvision": str(w.get("name", "")).split(".")[-1]}.get(kind)
+    weights = {"file": locate(w.get("path", "")), "torchvision": str(w.get("name", "")).split(".")[-1]}.get(kind)
     p = d["preprocess"]
     m = load_model(d["spec"], weights, size=p["size"], mean=tuple(p["mean"]), std=tuple(p["std"]),
                    allow_pickle=allow_pickle, arch_options=d.get("arch_options") or None)
