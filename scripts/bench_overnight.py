@@ -32,10 +32,10 @@ from pathlib import Path
 import torch
 
 sys.path.insert(0, str(Path(__file__).parent))
-from bench_synth import bare_step, load  # noqa: E402
+from bench_synth import bare_step, load
 
-from unitlens.synth import SynthConfig  # noqa: E402
-from unitlens.synth.loop import _Batch, _Engine, _Unit  # noqa: E402
+from unitlens.synth import SynthConfig
+from unitlens.synth.loop import _Batch, _Engine, _Unit
 
 STAGES = ("layer1", "layer2", "layer3", "layer4")
 CHECKS = 64  # warped forwards per unit: 32 on the finished image, 32 on its best exemplar

@@ -30,8 +30,8 @@ from unitlens.corpus import open_corpus
 from unitlens.demo.build import demo_corpus, demo_model
 from unitlens.mining import MineConfig, mine
 from unitlens.synth import Goal, SynthConfig
-from unitlens.synth.evidence import exemplar_references, warped_values
 from unitlens.synth.bases import ColourBasis
+from unitlens.synth.evidence import exemplar_references, warped_values
 from unitlens.synth.loop import iter_layer
 from unitlens.synth.pipeline import exemplar_images
 from unitlens.units import parse_layers
