@@ -105,6 +105,8 @@ def main():
                     help="steps per unit from scripts/bench_parity.py --save")
     ap.add_argument("--settings", default="today's defaults;stop +10%, lr 0.1",
                     help="setting names of the --parity file to project, separated by ;")
+    ap.add_argument("--mean-steps", default=None,
+                    help="instead of --parity: NAME=STEPS pairs separated by ; (mean steps per unit, e.g. from a printed table)")
     ap.add_argument("--quick", action="store_true")
     a = ap.parse_args()
     t0 = time.perf_counter()
@@ -131,12 +133,18 @@ def main():
           f"{hours(mining)} (load {os.getloadavg()[0]:.1f})")
 
     print(f"\n3. Projection for {units:,} units (steps per unit from {a.parity})")
-    for name in [s.strip() for s in a.settings.split(";") if s.strip()]:
-        if not a.parity.is_file():
+    given = dict((k.strip(), float(v)) for k, v in (p.rsplit("=", 1) for p in a.mean_steps.split(";"))) \
+        if a.mean_steps else None
+    for name in (list(given) if given else [s.strip() for s in a.settings.split(";") if s.strip()]):
+        if given:
+            mean = given[name]
+            print(f"   setting '{name}': {mean:.1f} steps per unit on average (given)")
+        elif not a.parity.is_file():
             print(f"   no {a.parity}: run scripts/bench_parity.py --save {a.parity} first")
             break
-        mean, median, n = steps_per_unit(a.parity, name)
-        print(f"   setting '{name}': {mean:.1f} steps per unit on average (median {median}; {n} swatch units)")
+        else:
+            mean, median, n = steps_per_unit(a.parity, name)
+            print(f"   setting '{name}': {mean:.1f} steps per unit on average (median {median}; {n} swatch units)")
         total = mining
         print(f"     {'mining':<22} {hours(mining)}")
         for layer, c in costs.items():
