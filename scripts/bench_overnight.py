@@ -129,10 +129,11 @@ def main():
     n_mine = 16 if a.quick else 64
     rate = mining_rate(a.arch, 224, n_mine)
     mining = a.images / rate
-    print(f"\n2. Mining at 224 px: {rate:.2f} images/s over {n_mine} generated images -> {a.images:,} images in "
+    print(f"\n2. Mining at 224 px (start-up included, so low for few images): {rate:.2f} images/s over {n_mine} "
+          f"generated images -> {a.images:,} images in "
           f"{hours(mining)} (load {os.getloadavg()[0]:.1f})")
 
-    print(f"\n3. Projection for {units:,} units (steps per unit from {a.parity})")
+    print(f"\n3. Projection for {units:,} units (steps per unit {'as given' if a.mean_steps else 'from ' + str(a.parity)})")
     given = dict((k.strip(), float(v)) for k, v in (p.rsplit("=", 1) for p in a.mean_steps.split(";"))) \
         if a.mean_steps else None
     for name in (list(given) if given else [s.strip() for s in a.settings.split(";") if s.strip()]):
