@@ -199,6 +199,26 @@ def test_index_page_summarises_the_run(tiny):
     assert re.search(r'data-layer="1".*?synthesised</td>', html, re.S)
 
 
+def test_cards_and_unit_view_carry_parity_with_the_best_exemplar(tiny):
+    """The card's share of images at parity is recomputed here from units.json's own numbers:
+    robustness mean against the exemplar's objective (the channel mean drives up)."""
+    for layer, mined in (("6", True), ("1", False)):
+        cards, details = _units_data(tiny.atlas, layer), _units_data(tiny.atlas, layer, "units")
+        table = json.loads((tiny.run.layer_dir(layer, "synth") / "units.json").read_text())["units"]
+        for i, u in enumerate(cards["units"]):
+            rec = table.get(str(u))
+            if rec is None:
+                assert cards["parity"][i] is None
+                continue
+            if not mined:
+                assert cards["parity"][i] is None and all(im["parity"] is None for im in details["synth"][i]["images"])
+                continue
+            ref = rec["exemplar_objective"]
+            reached = [im["robustness"]["mean"] >= ref for im in rec["images"]]
+            assert cards["parity"][i] == pytest.approx(sum(reached) / len(reached))
+            assert [im["parity"]["reached"] for im in details["synth"][i]["images"]] == reached
+
+
 def test_hostile_names_are_text_everywhere(tiny, tmp_path):
     run = fake_run(tmp_path / "run", layer=HOSTILE_LAYER, units=3, k=2, images=8, synth=False)
     atlas = render_atlas(run).parent
@@ -383,6 +403,7 @@ def test_unit_view_deep_link_keys_and_hostile_exemplar(tiny, browser, shots):
     page.wait_for("document.getElementById('unit').dataset.complete")
     assert page.js("document.querySelectorAll('[data-plot=trace] path.line').length") == 2  # two images per unit
     assert page.js("document.querySelectorAll('.uv-synth .syn').length") == 2
+    assert page.js("document.querySelector('.uv-synth').textContent.includes('parity with best exemplar')")
     page.screenshot(shots / "atlas-unit.png")
     for key, expect in (("ArrowRight", 2), ("j", 3), ("k", 2), ("ArrowLeft", 1)):
         page.key(key)

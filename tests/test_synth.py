@@ -704,3 +704,66 @@ def test_progress_moves_with_every_step_not_only_per_batch(tmp_path, monkeypatch
     assert [d for d, _ in ticks] == pytest.approx([k / steps * 2 for k in range(1, steps + 1)]
                                                   + [2 + k / steps * 2 for k in range(1, steps + 1)])
     assert [n for _, n in ticks] == [f"step {k}/{steps}" for k in range(1, steps + 1)] * 2
+
+
+# -- parity with the best natural exemplar ----------------------------------------------------
+
+def test_parity_step_is_the_first_step_the_trace_reaches_the_reference(digits_model):
+    """Oracle: numpy on the full trace of a run that never stops (a unit's images do not depend on
+    when it stops, so the stopped run's trace is a prefix of it)."""
+    from unitlens.synth.loop import iter_layer
+
+    full = SynthConfig(steps=60, parity_every=1, parity_window=1, **QUICK)
+    free = {r.target: r for b in iter_layer(digits_model, "7", range(6), full) for r in b}
+    refs = {t: float(r.traces[0][[10, 25, 40, 59, 20, 5][t]]) for t, r in free.items()}
+    refs[5] = float(free[5].traces[0].max()) + 1.0  # never reached
+    stop = SynthConfig(steps=60, parity_every=1, parity_window=1, stop_at_parity=0.0, **QUICK)
+    for cfg, stops in ((full, False), (stop, True)):
+        got = {r.target: r for b in iter_layer(digits_model, "7", range(6), cfg, references=refs) for r in b}
+        for t, r in got.items():
+            hit = np.nonzero(free[t].traces[0] >= refs[t])[0]
+            want = int(hit[0]) + 1 if len(hit) else None
+            assert r.parity_steps == [want], (t, r.parity_steps, want)
+            assert r.steps == [want if stops and want else 60]
+
+
+def test_parity_against_the_best_exemplar_in_show_json(mined, tmp_path, capsys):
+    """Oracle: the exemplar's channel mean from a hand-written resnet18 forward (no warps, so the
+    reference is the value on the image as mining saw it: shorter side resized, centre crop)."""
+    import shutil
+
+    import torchvision
+    from PIL import Image
+
+    from unitlens.synth import model_from_run
+
+    run = tmp_path / "run"
+    shutil.copytree(mined, run)
+    shutil.rmtree(run / "synth", ignore_errors=True)
+    m = json.loads((run / "manifest.json").read_text())
+    m.pop("synth", None)  # what earlier tests synthesised there
+    (run / "manifest.json").write_text(json.dumps(m))
+    synthesize(model_from_run(run), Goal("layer3:0-1"), run, SynthConfig(steps=8, warps=NO_WARPS))
+    net = torchvision.models.resnet18()
+    net.load_state_dict(torch.load(json.loads((run / "manifest.json").read_text())["model"]["weights"]["path"]))
+    net.eval()
+    for unit in (0, 1):
+        code, out, err = cli(capsys, "show", run, f"layer3:{unit}", "--json")
+        assert code == 0, err
+        s = json.loads(out)
+        img = Image.open(s["exemplars"][0]["image"]).convert("RGB")
+        w, h = img.size
+        side = min(w, h)
+        box = ((w - side) / 2, (h - side) / 2, (w + side) / 2, (h + side) / 2)
+        x = torch.from_numpy(np.asarray(img.resize((32, 32), Image.BILINEAR, box=box), dtype=np.float32) / 255)
+        x = (x.permute(2, 0, 1)[None] - torch.tensor([0.485, 0.456, 0.406]).view(1, 3, 1, 1)) \
+            / torch.tensor([0.229, 0.224, 0.225]).view(1, 3, 1, 1)
+        with torch.no_grad():
+            f = net.layer3(net.layer2(net.layer1(net.maxpool(net.relu(net.bn1(net.conv1(x)))))))
+        want = float(f[0, unit].mean())
+        (entry,) = s["synth"]
+        p = entry["parity"]
+        # JPEG exemplars decode at reduced scale (draft mode) in the project, fully here
+        assert p["exemplar"] == pytest.approx(want, rel=0.03, abs=1e-3)
+        assert p["synthesised"] == entry["activation"] and p["reached"] == (entry["activation"] >= p["exemplar"])
+        assert p["step"] is None or 1 <= p["step"] <= entry["steps"]

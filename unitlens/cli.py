@@ -9,6 +9,8 @@ from typing import NoReturn, Optional
 
 import typer
 
+from .synth import OVERNIGHT
+
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
@@ -216,6 +218,8 @@ def run_cmd(
     top: int = typer.Option(16, "--top", min=1, help="Exemplars kept per unit (top and bottom)."),
     labels: Optional[Labels] = LabelsOpt,
     steps: int = typer.Option(256, "--steps", min=1, help="Synthesis steps per image at most."),
+    lr: float = typer.Option(OVERNIGHT["lr"], "--lr", help="Adam learning rate of the synthesis."),
+    stop_at_parity: Optional[float] = typer.Option(OVERNIGHT["stop_at_parity"], "--stop-at-parity", min=0.0, help="Stop an image once it drives its unit this fraction past the best natural exemplar."),
     synth_size: Optional[int] = typer.Option(None, "--synth-size", help="Synthesised image size (default: the input size)."),
     seed: int = typer.Option(0, "--seed", help="Synthesis seed."),
     budget: Optional[str] = typer.Option(None, "--budget", help="Time to fit in, e.g. 8h or 90m: steps, size and units are chosen to fit."),
@@ -235,8 +239,8 @@ def run_cmd(
     m, chosen, c = _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_option,
                                         layers, units, corpus, labels, device)
     run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
-                  SynthConfig(steps=steps, size=synth_size, seed=seed), budget=budget,
-                  progress=sys.stderr.isatty(), force=force)
+                  SynthConfig(steps=steps, size=synth_size, seed=seed, lr=lr, stop_at_parity=stop_at_parity),
+                  budget=budget, progress=sys.stderr.isatty(), force=force)
     print(run.path / "atlas" / "index.html")
 
 
@@ -259,6 +263,7 @@ def synth(
     blur_period: int = typer.Option(0, "--blur-period", min=0, help="Blur the image once every N steps (0: never)."),
     no_warps: bool = typer.Option(False, "--no-warps", help="No random warps (images turn to high-frequency noise)."),
     early_stop: bool = typer.Option(True, "--early-stop/--no-early-stop", help="Stop an image once its objective stops improving."),
+    stop_at_parity: Optional[float] = typer.Option(None, "--stop-at-parity", min=0.0, help="Stop an image once it drives its unit this fraction past the best natural exemplar (e.g. 0.1; needs a mined run)."),
     lr: float = typer.Option(0.05, "--lr", help="Adam learning rate."),
     batch_size: Optional[int] = typer.Option(None, "--batch-size", min=1, help="Images per pass (default: from free memory, at most 32)."),
     threads: Optional[int] = Threads,
@@ -294,7 +299,7 @@ def synth(
     config = SynthConfig(steps=steps, size=synth_size, per_unit=per_unit, seed=seed, lr=lr, basis=basis.value,
                          warps=Warps.none() if no_warps else Warps(),
                          blur_period=blur_period, stop_gain=SynthConfig.stop_gain if early_stop else None,
-                         batch_size=batch_size)
+                         batch_size=batch_size, stop_at_parity=stop_at_parity)
     n_units = sum(len(lu.units) for lu in chosen)
     print(f"Synthesising {n_units} units in {len(chosen)} layer(s), {steps} steps at most -> {run_dir}", file=sys.stderr)
     run = synthesize(m, goal, run_dir, config, progress=sys.stderr.isatty(), force=force)

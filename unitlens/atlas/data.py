@@ -119,6 +119,7 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
         name = Path(str(im["file"])).name
         files.append(d / name)
         rob = im.get("robustness") or None
+        par = im.get("parity") or None
         images.append({
             "src": name,
             "activation": _f(im.get("activation", math.nan)),
@@ -130,6 +131,9 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
             "robustness": None if not rob else {
                 "n": rob.get("n"), "mean": _f(rob.get("mean", math.nan)), "std": _f(rob.get("std", math.nan)),
                 "relative": _f(rob["relative"]) if rob.get("relative") is not None else None},
+            "parity": None if not par else {
+                "reached": bool(par.get("reached")), "step": par.get("step"),
+                "synthesised": _f(par.get("synthesised", math.nan)), "exemplar": _f(par.get("exemplar", math.nan))},
         })
     traces = []
     tname = Path(str(rec.get("trace", ""))).name
@@ -139,8 +143,10 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
         if tr is not None:
             traces = [_thin(row) for row in np.atleast_2d(tr)]
     ratios = [im["ratio"] for im in images if im["ratio"] is not None]
+    reached = [im["parity"]["reached"] for im in images if im["parity"]]
     card = {"src": files[0].name if files else None, "count": len(images),
-            "ratio": max(ratios) if ratios else None}
+            "ratio": max(ratios) if ratios else None,
+            "parity": None if not reached else sum(reached) / len(reached)}  # share of the unit's images at parity
     best = rec.get("best_exemplar")
     detail = {"images": images, "trace": traces, "best_exemplar": _f(best) if best is not None else None}
     strip = Path(str(rec.get("nearest_strip") or "")).name
@@ -187,6 +193,7 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     cards["synth_src"] = [c["src"] if c else None for c in scard]
     cards["synth_n"] = [c["count"] if c else 0 for c in scard]
     cards["ratio"] = [c["ratio"] if c else None for c in scard]
+    cards["parity"] = [c["parity"] if c else None for c in scard]
     details["synth"] = sdet
     return LayerData(layer, cards, details, sheets, images)
 

@@ -54,7 +54,7 @@ def build_demo(out: Path, *, count: int = CORPUS_SIZE, steps: int = STEPS, units
     `force` mines and synthesises again (e.g. after --count or --units changed)."""
     from ..corpus import open_corpus
     from ..mining import MineConfig
-    from ..synth import SynthConfig
+    from ..synth import OVERNIGHT, SynthConfig
     from ..units import parse_layers
     from ..workflow import run_all
 
@@ -67,6 +67,6 @@ def build_demo(out: Path, *, count: int = CORPUS_SIZE, steps: int = STEPS, units
     corpus = open_corpus(demo_corpus(out / "corpus", count), labels="folders")
     chosen = [f"{name}:0-{min(units, model.layer(name).channels) - 1}" if units else name for name in LAYERS]
     layers = parse_layers(model, chosen)
-    run_all(model, corpus, layers, out, MineConfig(top_k=16), SynthConfig(steps=steps),
+    run_all(model, corpus, layers, out, MineConfig(top_k=16), SynthConfig(steps=steps, **OVERNIGHT),
             progress=progress, log=say, force=force)
     return out / "atlas" / "index.html"

@@ -12,6 +12,8 @@ explanation must at least change when the weights do (Adebayo et al. 2018). So e
                   activation; a value far below 1 means the image works only as it stands
   rank            where the target channel stands among all channels of the layer on this image, in
                   the goal's direction (1 = the image drives this unit further than any other channel)
+  parity          whether the robustness mean reaches the same quantity (the same `checks` fresh
+                  transforms) on the unit's best natural exemplar image, in the goal's direction
 
 Everything is computed from the 8-bit image that is written to disk, i.e. what a reader sees.
 """
@@ -50,12 +52,57 @@ def assess(model, layer: str, images: torch.Tensor, targets, scorer, spec: Warps
             rec = {"activation": act, "max_activation": float(fmax[i, t]), "rank": rank,
                    "channels": int(stat.shape[1]), "robustness": None}
             if checks and not spec.identity:
-                rng = np.random.default_rng(seed_for(seed, layer, t, int(m), "check"))
-                draws = torch.from_numpy(np.stack([spec.draw(rng) for _ in range(checks)]))
-                warped = warp(x[i:i + 1].expand(checks, -1, -1, -1), draws, spec.pad, fill, spec.pad_mode)
-                v = scorer.per_channel(extract(model.normalize(warped))[name])[:, t].double()
+                v = warped_values(model, layer, x[i:i + 1], [t], scorer, spec, fill, seed, [m], checks, extract)[0]
                 mean, std = float(v.mean()), float(v.std(unbiased=False))
                 rec["robustness"] = {"n": checks, "mean": mean, "std": std,
                                      "relative": mean / act if abs(act) > 1e-12 else None}
             out.append(rec)
     return out
+
+
+def warped_values(model, layer: str, x: torch.Tensor, targets, scorer, spec: Warps, fill, seed: int, ms,
+                  checks: int, extract=None, chunk: int = 64) -> torch.Tensor:
+    """The reduced target of image i under `checks` fresh random transforms, drawn from a generator
+    seeded by (seed, layer, target, m) only, so an exemplar and a synthesised image of the same unit
+    see the same transforms. x (N, C, S, S) in [0, 1] -> (N, checks) float64; `chunk` images a pass."""
+    extract = extract or model.extractor([layer])
+    draws = []
+    for t, m in zip(targets, ms):
+        rng = np.random.default_rng(seed_for(seed, layer, int(t), int(m), "check"))
+        draws.append(np.stack([spec.draw(rng) for _ in range(checks)]))
+    draws = torch.from_numpy(np.concatenate(draws))  # (N * checks, 6)
+    rows = torch.arange(len(x)).repeat_interleave(checks)  # (N * checks,) image of each warped copy
+    chans = torch.tensor([int(t) for t in targets]).repeat_interleave(checks)
+    out = []
+    with torch.no_grad():
+        for k in range(0, len(rows), chunk):
+            r = rows[k:k + chunk]
+            warped = warp(x[r], draws[k:k + chunk], spec.pad, fill, spec.pad_mode)
+            stat = scorer.per_channel(extract(model.normalize(warped))[layer])  # (n, C)
+            out.append(stat[torch.arange(len(r)), chans[k:k + chunk]].double())
+    return torch.cat(out).view(len(x), checks)
+
+
+def exemplar_references(model, layer: str, images: torch.Tensor, targets, scorer, spec: Warps, fill,
+                        seed: int, checks: int = 32, extract=None) -> dict[int, float]:
+    """{target: mean over `checks` fresh transforms of its reduced value on its best natural exemplar}.
+    images (N, C, S, S) uint8 at the synthesis size, one per target. With no transforms (identity
+    warps or checks 0) the value on the image as it stands."""
+    x = images.float() / 255.0
+    if not checks or spec.identity:
+        with torch.no_grad():
+            stat = scorer.per_channel((extract or model.extractor([layer]))(model.normalize(x))[layer])
+        return {int(t): float(stat[i, int(t)]) for i, t in enumerate(targets)}
+    v = warped_values(model, layer, x, targets, scorer, spec, fill, seed, [0] * len(targets), checks, extract)
+    return {int(t): float(v[i].mean()) for i, t in enumerate(targets)}
+
+
+def parity(rec: dict, reference: float | None, sign: float, first_step: int | None) -> dict | None:
+    """The parity entry of an image record: the finished image's robustness mean against the exemplar's
+    (`reached` in the goal's direction), and the first step the loop saw it reached (None: not seen)."""
+    if reference is None:
+        return None
+    rob = rec.get("robustness")
+    value = rob["mean"] if rob else rec["activation"]
+    return {"reached": bool(sign * value >= sign * reference), "step": first_step,
+            "synthesised": value, "exemplar": reference}

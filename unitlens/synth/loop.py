@@ -21,7 +21,8 @@ from __future__ import annotations
 
 import hashlib
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
+from typing import ClassVar
 
 import numpy as np
 import torch
@@ -61,11 +62,21 @@ class SynthConfig:
     batch_size: int | None = None  # images per pass; None: from memory, at most max_batch
     max_batch: int = 32
     checks: int = 32  # fresh random transforms for the robustness check (0: skip)
+    # Parity with the best natural exemplar (needs its objective, given to the loop as `references`):
+    # checked every `parity_every` steps on the mean of the last `parity_window` traced values.
+    stop_at_parity: float | None = None  # stop an image once it is that fraction past parity; None: never
+    parity_every: int = 4
+    parity_window: int = 8
+
+    # fields added after run folders existed: left out of describe() at their default, so that a
+    # folder made before them keeps its settings and resumes (the check ones change no image)
+    _LATER: ClassVar[dict] = {"stop_at_parity": None, "parity_every": 4, "parity_window": 8}
 
     def validate(self) -> None:
         for name, v, lo in (("steps", self.steps, 1), ("per_unit", self.per_unit, 1),
                             ("max_batch", self.max_batch, 1), ("stop_window", self.stop_window, 1),
-                            ("checks", self.checks, 0), ("blur_period", self.blur_period, 0)):
+                            ("checks", self.checks, 0), ("blur_period", self.blur_period, 0),
+                            ("parity_every", self.parity_every, 1), ("parity_window", self.parity_window, 1)):
             if v < lo:
                 raise UnitlensError(f"{name} must be at least {lo}, got {v}.")
         if self.size is not None and self.size < 16:
@@ -76,10 +87,12 @@ class SynthConfig:
             raise UnitlensError(f"lr must be positive, got {self.lr}.")
         if self.optimizer not in ("adam", "gradient"):
             raise UnitlensError(f"optimizer must be 'adam' or 'gradient', got '{self.optimizer}'.")
+        if self.stop_at_parity is not None and self.stop_at_parity < 0:
+            raise UnitlensError(f"stop_at_parity is a margin past parity (0 or more, e.g. 0.1), got {self.stop_at_parity}.")
 
     def describe(self, size: int) -> dict:
-        d = {k: getattr(self, k) for k in self.__dataclass_fields__ if k not in ("warps", "batch_size",
-                                                                                   "max_batch")}
+        d = {k: getattr(self, k) for k in (f.name for f in fields(self)) if k not in ("warps", "batch_size", "max_batch")
+             and not (k in self._LATER and getattr(self, k) == self._LATER[k])}
         d["size"] = size
         d["warps"] = None if self.warps.identity else self.warps.describe(size)
         return d
@@ -95,6 +108,8 @@ class UnitResult:
     traces: list[np.ndarray]  # M objective traces (value under that step's transform), one per step run
     steps: list[int]  # steps used per image (<= config.steps when stopped early)
     layer: str = ""
+    parity_steps: list[int | None] = field(default_factory=list)  # first step at parity per image (None: not
+    # reached, or no reference given); from the traced values, so only a cheap early sign of the final check
 
 
 def seed_for(seed: int, layer: str, target: int, m: int, purpose: str) -> int:
@@ -116,6 +131,7 @@ class _Unit:
         self.step = torch.zeros(M, dtype=torch.long)
         self.done = torch.zeros(M, dtype=torch.bool)
         self.redraws = torch.zeros(M, dtype=torch.long)  # new starts drawn because the unit was silent
+        self.parity = torch.full((M,), -1, dtype=torch.long)  # first step at parity, -1 until then
         self.rngs = [np.random.default_rng(seed_for(c.seed, engine.layer, target, m, "transforms")) for m in range(M)]
         self.traces: list[list[float]] = [[] for _ in range(M)]
 
@@ -131,6 +147,7 @@ class _Batch:
         self.step = torch.cat([u.step for u in units])  # (B,)
         self.done = torch.cat([u.done for u in units])
         self.redraws = torch.cat([u.redraws for u in units])
+        self.parity = torch.cat([u.parity for u in units])
         self.targets = torch.tensor([u.target for u in units for _ in range(M)])
         self.groups = torch.arange(len(units)).repeat_interleave(M)
         self.rngs = [r for u in units for r in u.rngs]
@@ -141,17 +158,20 @@ class _Batch:
             rows = slice(k * self.M, (k + 1) * self.M)
             u.params, u.m1, u.m2 = self.P[rows], self.m1[rows], self.m2[rows]
             u.step, u.done, u.redraws = self.step[rows], self.done[rows], self.redraws[rows]
+            u.parity = self.parity[rows]
 
 
 class _Engine:
     def __init__(self, model, layer: str, targets, config: SynthConfig, goal: Goal | None,
-                 colour: ColourBasis | None):
+                 colour: ColourBasis | None, references: dict[int, float] | None = None):
         config.validate()
         self.model, self.layer, self.config = model, layer, config
         self.targets = [int(t) for t in targets]
         goal = goal if goal is not None else Goal()
         goal.check(model, layer, self.targets)  # before the first step
         self.score: Scorer = goal.scorer(layer)
+        # parity threshold per target, in the score's direction (the exemplar's objective times the sign)
+        self.reference = {t: self.score.sign * float(v) for t, v in (references or {}).items()}
         self.size = config.size or model.preprocess.side
         C = model.preprocess.channels
         mean = colour.mean if colour else ColourBasis.default(C).mean
@@ -271,11 +291,24 @@ class _Engine:
         self._update(b.P, b.m1, b.m2, g, b.step, None if bool(live.all()) else torch.nonzero(live).flatten())
         b.step += live.long()
         vals, steps_now = values.tolist(), b.step.tolist()
+        targets = b.targets.tolist()
         for i in torch.nonzero(live).flatten().tolist():
             b.traces[i].append(vals[i])
-            if steps_now[i] >= c.steps or _stalled(b.traces[i], c.stop_window, c.stop_gain):
+            past = self._parity(b, i, steps_now[i], targets[i])
+            if steps_now[i] >= c.steps or past or _stalled(b.traces[i], c.stop_window, c.stop_gain):
                 b.done[i] = True
         return bool(b.done.view(-1, b.M).all(1).any())
+
+    def _parity(self, b: _Batch, i: int, step: int, target: int) -> bool:
+        """Record the first checked step at which image i's recent values reach its reference; True
+        when it should stop there (stop_at_parity: that far past the reference)."""
+        c, ref = self.config, self.reference.get(target)
+        if ref is None or step % c.parity_every or len(b.traces[i]) < c.parity_window:
+            return False
+        recent = sum(b.traces[i][-c.parity_window:]) / c.parity_window
+        if recent >= ref and b.parity[i] < 0:
+            b.parity[i] = step
+        return c.stop_at_parity is not None and recent >= ref + c.stop_at_parity * abs(ref)
 
     def _redraw_silent(self, b: _Batch, values: torch.Tensor, g: torch.Tensor) -> torch.Tensor:
         """Rows that start where the unit is silent (objective exactly 0, no gradient: e.g. a ReLU
@@ -316,7 +349,8 @@ class _Engine:
         with torch.no_grad():
             px = self.basis.pixels(u.params)  # (M, C, S, S)
         return UnitResult(u.index, u.target, px.permute(0, 2, 3, 1).numpy().astype(np.float32),
-                          [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step], self.layer)
+                          [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step], self.layer,
+                          [int(p) if p >= 0 else None for p in u.parity.tolist()])
 
 
 def adam_step(P: torch.Tensor, m1: torch.Tensor, m2: torch.Tensor, g: torch.Tensor, step: torch.Tensor,
@@ -348,11 +382,13 @@ def is_out_of_memory(e: BaseException) -> bool:
 
 
 def iter_layer(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,
-               colour: ColourBasis | None = None, on_step=None):
+               colour: ColourBasis | None = None, on_step=None, references: dict[int, float] | None = None):
     """Optimise one image set per target of `layer` (the goal's units aside); yield lists of
     UnitResult as units finish. The goal is checked against `targets` before the first step.
-    `on_step(units, step)`, if given, hears after every step how far the work is (see _Engine.run)."""
-    yield from _Engine(model, layer, targets, config, goal, colour).run(on_step)
+    `on_step(units, step)`, if given, hears after every step how far the work is (see _Engine.run).
+    `references` {target: objective of its best natural exemplar} lets the loop note (and with
+    config.stop_at_parity, stop at) the step where an image reaches it."""
+    yield from _Engine(model, layer, targets, config, goal, colour, references).run(on_step)
 
 
 def step_seconds(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,

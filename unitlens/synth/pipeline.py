@@ -8,9 +8,9 @@ import torch
 
 from .. import dist
 from ..errors import UnitlensError, interrupted
-from ..store import Run, _atomic, disk_bytes, read_json, space_for, write_json, write_npz
+from ..store import Run, _atomic, disk_bytes, read_json, read_npz, space_for, write_json, write_npz
 from ..facets import NaturalNeighbours, synth_neighbours
-from .evidence import assess
+from .evidence import assess, exemplar_references, parity
 from .bases import ColourBasis
 from .goal import Goal
 from .loop import SynthConfig, iter_layer
@@ -123,13 +123,20 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
     scorer = goal.scorer(lu.layer)
     extract = model.extractor([lu.layer])
     near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
+    refs = {}
+    if todo:
+        images, have = exemplar_images(run, model, lu.layer, todo, size)
+        if have:
+            refs = exemplar_references(model, lu.layer, images, have, scorer, spec, colour.mean, config.seed,
+                                       config.checks, extract)
     try:
         if todo:
-            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour, on_step), lu,
-                                        table):
+            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour, on_step,
+                                                   references=refs), lu, table):
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, scorer, spec, colour,
-                                                                config, best.get(r.target), extract, near)
+                                                                config, best.get(r.target), extract, near,
+                                                                refs.get(r.target))
                 write_json(own, table)  # the finished batch counts from here on
                 g.check(f"in synthesis of {lu.layer}")
                 if g.main:
@@ -174,7 +181,37 @@ def _interruptible(batches, lu, table):
                           "Run the same command to resume.") from None
 
 
-def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, extract, near=None) -> dict:
+def exemplar_images(run: Run, model, layer: str, units, size: int) -> tuple[torch.Tensor, list[int]]:
+    """The best natural exemplar of each mined unit as mining saw it (the model's input frame),
+    resized to the synthesis square if that differs: (N, C, size, size) uint8 and the N units that have one."""
+    import torch.nn.functional as F
+
+    from ..corpus import CorpusDataset
+
+    C = model.preprocess.channels
+    none = torch.zeros((0, C, size, size), dtype=torch.uint8), []
+    path = run.layer_dir(layer) / "index.npz"
+    if not path.is_file():
+        return none
+    idx = read_npz(path)
+    row = {int(u): k for k, u in enumerate(idx["units"])}
+    corpus = run.corpus()
+    have = [u for u in units if u in row and np.isfinite(idx["top_score"][row[u], 0])
+            and int(idx["top_image"][row[u], 0]) < len(corpus)]
+    data = CorpusDataset(corpus, model.preprocess.frame, [int(idx["top_image"][row[u], 0]) for u in have])
+    items = [data[k] for k in range(len(data))]
+    have = [u for u, it in zip(have, items) if it[1] is not None]  # a file gone since mining: no reference
+    if not have:
+        return none
+    x = torch.stack([it[1] for it in items if it[1] is not None])  # (N, C, H, W) uint8
+    if tuple(x.shape[-2:]) != (size, size):
+        x = F.interpolate(x.float(), size=(size, size), mode="bilinear", antialias=True, align_corners=False)
+        x = x.round().clamp(0, 255).to(torch.uint8)
+    return x, have
+
+
+def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, extract, near=None,
+                reference=None) -> dict:
     from PIL import Image
 
     u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, C)
@@ -193,9 +230,11 @@ def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, ex
     for m in range(M):
         c = checks[m]
         ratio = c["max_activation"] / best if best is not None and best > 0 else None
+        first = r.parity_steps[m] if r.parity_steps else None
         images.append({"file": files[m], "steps": r.steps[m], "objective": float(r.traces[m][-1]),
-                       **c, "vs_best_exemplar": ratio})
-    rec = {"unit": r.target, "best_exemplar": best, "trace": f"unit-{r.target:04d}.npz", "images": images}
+                       **c, "vs_best_exemplar": ratio, "parity": parity(c, reference, scorer.sign, first)})
+    rec = {"unit": r.target, "best_exemplar": best, "exemplar_objective": reference,
+           "trace": f"unit-{r.target:04d}.npz", "images": images}
     if near is not None:  # nearest natural images in the layer's embedding (facets.py)
         hits, rec["nearest_strip"] = synth_neighbours(near, model, layer, u8, extract, d, f"near-{r.target:04d}")
         for im, h in zip(images, hits):

@@ -6,11 +6,16 @@ Layout, beside the mining pass (every file readable without unitlens):
                                   steps (M,) steps used
   synth/<layer>/units.json        {"layer", "units": {"37": record}}; a record holds "unit",
                                   "best_exemplar" (mining's top score, spatial max; null if not
-                                  mined), "trace" (the npz) and "images": one entry per image with
+                                  mined), "exemplar_objective" (the unit's objective on that
+                                  image under the robustness transforms; null if not mined),
+                                  "trace" (the npz) and "images": one entry per image with
                                   "file", "steps", "objective" (last step, under its transform),
                                   "activation", "max_activation", "vs_best_exemplar" (null when
                                   unknown), "rank", "channels", "robustness" {n, mean, std,
-                                  relative} (see evidence.py), and, when the layer was mined,
+                                  relative} (see evidence.py), "parity" (null when the layer was
+                                  not mined): {reached, step (first step the loop saw it reached,
+                                  null if never), synthesised (robustness mean), exemplar (the
+                                  same on the best exemplar)}, and, when the layer was mined,
                                   "nearest": [{index, id, similarity}] the closest corpus images
                                   in the layer's embedding (cosine, facets.py); the record's
                                   "nearest_strip" names their thumbnails (near-0037.jpg)

@@ -79,6 +79,9 @@
       if (C.csi[i] !== null) add(nums, "span", "n-csi", "sel " + fmt(C.csi[i], 2));
     }
     if (C.ratio[i] !== null) add(nums, "span", "n-ratio", "synth ×" + fmt(C.ratio[i], 2));
+    const par = C.parity ? C.parity[i] : null;
+    if (par !== null && par !== undefined) add(nums, "span", "n-parity" + (par < 1 ? " warn" : ""),
+      par >= 1 ? "parity" : par > 0 ? "parity " + pct(par) : "below parity");
     built[i] = a;
     return a;
   }
@@ -399,6 +402,12 @@
       fig.appendChild(synthImg(im.src, 128, "synthesised image " + (m + 1) + " for unit " + C.units[i]));
       const rows = [];
       if (im.ratio !== null) rows.push(["vs best natural", "×" + fmt(im.ratio, 3), im.ratio < 1 ? "warn" : ""]);
+      if (im.parity) {
+        const p = im.parity;
+        rows.push(["parity with best exemplar", (p.reached ? "reached" : "not reached") + " (" + fmt(p.synthesised) + " vs " + fmt(p.exemplar) + ")",
+          p.reached ? "" : "warn"]);
+        rows.push(["first at parity", p.step === null ? "never seen in the loop" : "step " + p.step]);
+      }
       rows.push(["spatial max", fmt(im.max_activation, 4)]);
       rows.push(["reduced value on saved image", fmt(im.activation, 4)]);
       if (im.rank) rows.push(["rank among " + (im.channels || "?") + " channels", String(im.rank), im.rank > 1 ? "warn" : ""]);
@@ -416,6 +425,7 @@
     if (rec.images.some(im => im.rank > 1)) notes.push("a rank above 1 means other channels of the layer respond more strongly to that image");
     if (rec.images.some(im => im.robustness && im.robustness.relative !== null && im.robustness.relative < 0.5)) notes.push("an image that loses most of its effect under small warps works only as it stands");
     if (rec.images.some(im => im.ratio !== null && im.ratio < 1)) notes.push("below ×1 the image excites the unit less than the best natural exemplar");
+    if (rec.images.some(im => im.parity && !im.parity.reached)) notes.push("below parity the image, under random warps, drives the unit's objective less than its best natural exemplar does");
     if (notes.length) add(sec, "p", "note warn", "Mind: " + notes.join("; ") + ".");
     if (rec.trace && rec.trace.some(t => t.step.length)) {
       const box = add(sec, "div", "plotbox");
