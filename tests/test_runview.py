@@ -1,0 +1,190 @@
+"""A run folder as Python objects (unitlens/runview.py) and their inline display (unitlens/_view_html.py):
+the numbers are `show --json`'s, crops are the original's pixels at the stored box, the HTML escapes
+hostile names, carries no script and stays small."""
+import json
+from html.parser import HTMLParser
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+import torch
+from conftest import TESTS, cli
+from PIL import Image
+
+from unitlens import (
+    UnitlensError,
+    load_model,
+    load_run,
+    mine,
+    open_corpus,
+    parse_layers,
+)
+
+HOSTILE = "<img src=x onerror=alert(1)>"  # a corpus file name
+HOSTILE_CLASS = "<script>alert(2)</script>"  # a folder name, so a class label
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory):
+    """Swatches plus a hostile file and class, mined with a small net (layer 3: ReLU; 6: goes negative),
+    a few units of 6 synthesised."""
+    from unitlens.demo.swatches import write_corpus
+    from unitlens.synth import Goal, SynthConfig, synthesize
+
+    d = tmp_path_factory.mktemp("view")
+    corpus = d / "corpus"
+    write_corpus(corpus, count=14, size=48)
+    (corpus / "factors.csv").unlink(missing_ok=True)
+    rng = np.random.default_rng(3)
+    Image.fromarray(rng.integers(0, 255, (40, 56, 3), dtype=np.uint8)).save(corpus / "stripe" / f"{HOSTILE}.png")
+    (corpus / HOSTILE_CLASS.replace("/", "_")).mkdir()
+    Image.fromarray(rng.integers(0, 255, (44, 52, 3), dtype=np.uint8)).save(corpus / HOSTILE_CLASS.replace("/", "_") / "r.png")
+    torch.manual_seed(0)
+    model = load_model(f"{TESTS / 'nets.py'}:digits_net", size=32)
+    run = mine(model, open_corpus(corpus, labels="folders"), parse_layers(model, ["3", "6"]), d / "run",
+               __import__("unitlens").MineConfig(top_k=5, workers=0, thumb=32))
+    synthesize(model, Goal(("6:0-1",)), d / "run", SynthConfig(steps=6, checks=2, per_unit=2))
+    return SimpleNamespace(path=run.path, view=load_run(run.path))
+
+
+def test_unit_numbers_are_those_of_show_json(tiny, capsys):
+    for layer, ch in (("3", 0), ("6", 1)):
+        code, out, err = cli(capsys, "show", tiny.path, f"{layer}:{ch}", "--json")
+        assert code == 0, err
+        shown = json.loads(out)
+        u = tiny.view.unit(f"{layer}:{ch}")
+        assert json.loads(json.dumps(u.summary)) == shown
+        assert u.stats == shown["stats"] and u.histogram == shown["histogram"]
+        assert [(e.rank, e.id, str(e.path), e.score, list(e.box)) for e in u.exemplars] == \
+            [(e["rank"], e["id"], e["image"], e["score"], e["box"]) for e in shown["exemplars"]]
+        assert [e.id for e in u.negative_exemplars] == [e["id"] for e in shown.get("negative_exemplars", [])]
+        assert [str(s.path) for s in u.synthesised] == [s["image"] for s in shown["synth"]]
+        # the layer table's row of the same unit holds the same numbers
+        row = next(r for r in tiny.view.units(layer) if r["unit"] == ch)
+        st = shown["stats"]
+        assert (row["peak"], row["mean"], row["fire_rate"], row["class_selectivity"]) == \
+            (st["max"], st["mean_max"], st["fire_rate"], st["class_selectivity"])
+        ratios = [s["vs_best_exemplar"] for s in shown["synth"] if s.get("vs_best_exemplar") is not None]
+        assert row["ratio"] == (max(ratios) if ratios else None)
+        assert row["synthesised"] == len(shown["synth"])
+    assert tiny.view.unit("6:0").negative_exemplars, "layer 6 goes negative: it has negative exemplars"
+
+
+def test_crop_is_the_original_cut_at_the_stored_box(tiny):
+    u = tiny.view.unit("6:0")
+    checked = 0
+    for e in [*u.exemplars, *u.negative_exemplars]:
+        with Image.open(e.path) as im:  # PIL as the reference: no EXIF in these files, so no turn
+            ref = np.asarray(im.convert("RGB").crop(e.box))
+        got = np.asarray(e.crop())
+        assert got.shape == ref.shape and (got == ref).all(), e.id
+        sheet = e.crop(sheet=True)
+        assert sheet.size == (32, 32)  # the sprite-sheet cell: thumb x thumb
+        checked += 1
+    assert checked >= 5
+
+
+def test_synthesised_images_evidence_and_nearest(tiny):
+    u = tiny.view.unit("6:1")
+    assert len(u.synthesised) == 2
+    s = u.synthesised[0]
+    with Image.open(s.path) as im:
+        assert (np.asarray(s.image()) == np.asarray(im.convert("RGB"))).all()
+    assert {"max_activation", "rank", "channels", "robustness"} <= set(s.evidence)
+    corpus = tiny.view.corpus_files
+    for p in u.nearest:
+        assert p.path == corpus.path(corpus.files.index(p.id))
+    # facets group the unit's top 64 images; with 16 readable images that is every one, once
+    members = sorted(p.id for g in u.facets for p in g)
+    assert members == sorted(corpus.files) and len(members) == 16
+
+
+class _Tags(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.tags, self.handlers, self.urls = [], [], []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        self.handlers += [k for k, _ in attrs if k.lower().startswith("on")]
+        self.urls += [v for k, v in attrs if k in ("src", "href") and v and not v.startswith("data:image/")]
+
+
+def _parse(html: str) -> _Tags:
+    p = _Tags()
+    p.feed(html)
+    p.close()
+    return p
+
+
+def test_html_escapes_hostile_names_and_has_no_script(tiny):
+    label = HOSTILE_CLASS.replace("/", "_")
+    units = [tiny.view.unit(f"3:{c}") for c in range(32)]
+    file_seen = label_seen = 0
+    for html in [u._repr_html_() for u in units] + [tiny.view.layer("3")._repr_html_(), tiny.view._repr_html_(),
+                                                    tiny.view.unit("6:0")._repr_html_(), tiny.view.units("6")._repr_html_()]:
+        p = _parse(html)
+        assert "script" not in p.tags and not p.handlers and not p.urls
+        assert HOSTILE not in html and label not in html
+        file_seen += "&lt;img src=x onerror=alert(1)&gt;" in html  # the file name, as text
+        label_seen += "&lt;script&gt;alert(2)&lt;_script&gt;" in html  # the class label, as text
+    assert file_seen and label_seen
+
+
+def test_html_of_a_unit_with_64_exemplars_stays_bounded(tmp_path):
+    from unitlens import _view_html
+    from unitlens.runview import Exemplar
+
+    src = tmp_path / f"{HOSTILE}.png"
+    Image.fromarray(np.random.default_rng(0).integers(0, 255, (300, 400, 3), dtype=np.uint8)).save(src)
+    ex = [Exemplar(rank=r + 1, id=src.name, path=src, score=1.0 - r / 64, box=(0, 0, 300, 300), position=(0, 0))
+          for r in range(64)]
+    unit = SimpleNamespace(layer=HOSTILE, channel=3, exemplars=ex, negative_exemplars=ex, synthesised=[], facets=[],
+                           histogram={"edges": [0.0, 1.0], "counts": [64]},
+                           stats={"images": 64, "mean_max": 0.5, "std_max": 0.1, "min": 0.0, "max": 1.0,
+                                  "fire_rate": 1.0, "class_selectivity": None})
+    html = _view_html.unit_html(unit)
+    p = _parse(html)
+    assert p.tags.count("img") == _view_html.SHOW_TOP + _view_html.SHOW_NEGATIVE
+    assert len(html) < 250_000, len(html)  # noise crops are the worst case for JPEG
+    assert "script" not in p.tags and not p.handlers and not p.urls
+
+
+def test_units_table_as_records_and_dataframe(tiny):
+    t = tiny.view.units("3")
+    assert [r["unit"] for r in t] == list(range(len(t))) and len(t) > 0
+    pandas = pytest.importorskip("pandas")  # installed with the [test] extra
+    f = t.frame()
+    assert isinstance(f, pandas.DataFrame) and list(f["unit"]) == [r["unit"] for r in t]
+    assert list(f.columns) == list(t[0])
+
+
+def test_plain_reprs_are_short(tiny):
+    for obj in (tiny.view, tiny.view.layer("6"), tiny.view.unit("6:0"), tiny.view.units("6")):
+        r = repr(obj)
+        assert "\n" not in r and len(r) < 300, r
+
+
+def test_bad_input_is_one_clear_error(tiny, tmp_path):
+    with pytest.raises(UnitlensError, match="not a unitlens run folder"):
+        load_run(tmp_path)
+    with pytest.raises(UnitlensError, match="No layer 'nope'.*Layers: 3, 6"):
+        tiny.view.layer("nope")
+    with pytest.raises(UnitlensError, match="not mined"):
+        tiny.view.unit("3:999")
+
+
+def test_package_names_for_completion_and_type_checkers():
+    import ast
+
+    import unitlens
+
+    assert set(unitlens.__all__) == {*unitlens._EXPORTS, "__version__"}
+    assert set(unitlens.__all__) <= set(dir(unitlens))
+    # every export is imported under TYPE_CHECKING, from the module the lazy table names
+    tree = ast.parse(Path(unitlens.__file__).read_text())
+    typed = {a.name: n.module for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) and n.level == 1
+             for a in n.names}
+    assert {k: typed.get(k) for k in unitlens._EXPORTS} == unitlens._EXPORTS
+    assert (Path(unitlens.__file__).parent / "py.typed").is_file()
