@@ -1,8 +1,11 @@
 """The `unitlens` command: thin typed wrappers over the library; no computation here."""
 from __future__ import annotations
 
+import contextlib
 import json
+import logging
 import sys
+import warnings
 from pathlib import Path
 from typing import Optional
 
@@ -484,11 +487,47 @@ for _c in app.registered_commands:
     _c.callback = _one_line_on_interrupt(_c.callback)
 
 
+class _Stderr(logging.Handler):
+    """Prints each record's message on sys.stderr as it is at that moment (a redirected stream is used)."""
+
+    def emit(self, record):
+        print(self.format(record), file=sys.stderr)
+
+
+@contextlib.contextmanager
+def report_to_stderr():
+    """While the command runs, what the library reports (errors.py) reaches the terminal: each
+    UnitlensWarning as one `Warning: ...` line, the `unitlens` logger's records as their message."""
+    from .errors import UnitlensWarning, log
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, UnitlensWarning):
+            print(f"Warning: {message}", file=sys.stderr)
+        else:
+            other(message, category, filename, lineno, file, line)
+
+    handler, level, propagate = _Stderr(), log.level, log.propagate
+    log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    log.propagate = False
+    with warnings.catch_warnings():
+        other = warnings.showwarning
+        warnings.showwarning = show
+        warnings.simplefilter("always", UnitlensWarning)  # every crop that failed, not the first of each line
+        try:
+            yield
+        finally:
+            log.removeHandler(handler)
+            log.setLevel(level)
+            log.propagate = propagate
+
+
 def main() -> None:
     from .errors import UnitlensError, shown
 
     try:
-        app()
+        with report_to_stderr():
+            app()
     except UnitlensError as e:
         from .dist import fail
 

@@ -21,7 +21,6 @@ from __future__ import annotations
 
 import math
 import os
-import sys
 from dataclasses import asdict, dataclass, field
 from functools import partial
 from pathlib import Path
@@ -30,7 +29,7 @@ import numpy as np
 import torch
 
 from ._cka import _cka_matrix, _cross, _MinibatchTally, _moments, _pooled_interval
-from .errors import UnitlensError, interrupted
+from .errors import UnitlensError, interrupted, log, shown
 from .store import Run, _atomic, check_folder, now, safe_name, write_json
 from .summary import _num
 
@@ -350,7 +349,7 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
         for batch in loader:
             for i, reason in batch.failures:
                 plan.ok[i] = False
-                print(f"Skipped {plan.corpus.files[i]}: {reason}", file=sys.stderr)
+                log.warning(f"Skipped {shown(plan.corpus.files[i])}: {reason}")
             if len(batch.indices):
                 rows = batch.indices.numpy()
                 grams = {}
@@ -525,8 +524,8 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
                             "load_model(spec, weights); a run folder is what `unitlens mine --out` made.")
     for r in plan.recomputed:
         where = "every layer" if r["layer"] is None else r["layer"]
-        print(f"Note: recomputing {r['what']} of {where} in {r['model'].upper()} from the model named in "
-              f"the run's manifest, over the run's corpus: {r['why']}.", file=sys.stderr)
+        log.warning(f"Note: recomputing {r['what']} of {where} in {r['model'].upper()} from the model named in "
+                    f"the run's manifest, over the run's corpus: {r['why']}.")
     tally = _sweep(plan, config, progress)
     summary = _summarise(plan, config, tally)
     out = out if out is not None else plan.default_out

@@ -18,7 +18,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from .errors import UnitlensError, closest
+from .errors import UnitlensError, UnitlensWarning, closest
 
 IMAGENET_MEAN = (0.485, 0.456, 0.406)
 IMAGENET_STD = (0.229, 0.224, 0.225)
@@ -435,7 +435,7 @@ def _model_file(path: Path, allow_pickle: bool):
             f"pass the file as --weights (e.g. torchvision:resnet50 --weights {path}). If it is a whole "
             "pickled module and you trust its source, add --allow-pickle (unpickling can run code)."
         )
-    print(f"Warning: loading a pickled module from {path}; this runs code from the file.", file=sys.stderr)
+    warnings.warn(f"loading a pickled module from {path}; this runs code from the file.", UnitlensWarning, stacklevel=2)
     try:
         obj = torch.load(path, map_location="cpu", weights_only=False)
     except Exception as e:
