@@ -188,3 +188,44 @@ def test_package_names_for_completion_and_type_checkers():
              for a in n.names}
     assert {k: typed.get(k) for k in unitlens._EXPORTS} == unitlens._EXPORTS
     assert (Path(unitlens.__file__).parent / "py.typed").is_file()
+
+
+def test_probe_and_comparison_results_draw_and_keep_their_json(tiny, tmp_path):
+    import csv
+
+    from unitlens import CompareConfig, MineConfig, ProbeConfig, compare, probe, unit_summary
+
+    p = probe(tiny.path, "6:0", config=ProbeConfig(top_k=3, attribute=2, methods=("gxi",), workers=0))
+    assert json.loads(json.dumps(p)) == json.loads((p.folder / "probe.json").read_text())
+    assert p.unit.summary == unit_summary(tiny.path, "6", 0)
+    html = p._repr_html_()
+    t = _parse(html)
+    assert "script" not in t.tags and not t.handlers and not t.urls
+    assert html.count("gradient-x-input") >= 2  # the heat maps of both attributed exemplars
+    assert "\n" not in repr(p)
+
+    torch.manual_seed(1)
+    model = load_model(f"{TESTS / 'nets.py'}:digits_net", size=32)
+    b = mine(model, open_corpus(tiny.path.parent / "corpus", labels="folders"), parse_layers(model, ["6"]),
+             tmp_path / "b", MineConfig(top_k=5, workers=0, thumb=32))
+    c = compare(tiny.path, b.path, layers=["6"], out=tmp_path / "cmp", config=CompareConfig(workers=0, bootstrap=20),
+                atlas=False)
+    assert json.loads(json.dumps(c)) == json.loads((tmp_path / "cmp" / "compare.json").read_text())
+    [row] = c.layers()
+    assert row["layer"] == "6" and row["cka"] == c["layers"][0]["cka"]
+    with open(tmp_path / "cmp" / "units_6.csv") as f:  # the table the comparison wrote, as the reference
+        written = {int(r["unit"]): r for r in csv.DictReader(f)}
+    units = c.units("6")
+    assert sorted(r["unit"] for r in units) == sorted(written)
+    assert [r["rank"] for r in units] == sorted(int(r["rank"]) for r in written.values())
+    for r in units:
+        assert float(written[r["unit"]]["corr"] or "nan") == pytest.approx(r["corr"] if r["corr"] is not None
+                                                                           else float("nan"), nan_ok=True)
+    pair = c.pair("6", 3)
+    assert pair.a.summary == unit_summary(tiny.path, "6", 3) and pair.b.summary == unit_summary(b.path, "6", 3)
+    for html in (c._repr_html_(), pair._repr_html_()):
+        t = _parse(html)
+        assert "script" not in t.tags and not t.handlers and not t.urls
+    assert pair._repr_html_().count('<span class="uv-unit">3</span>') == 2  # A and B side by side
+    with pytest.raises(UnitlensError, match="No layer '3' in this comparison"):
+        c.units("3")

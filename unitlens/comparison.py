@@ -30,6 +30,7 @@ import torch
 
 from ._cka import _cka_matrix, _cross, _MinibatchTally, _moments, _pooled_interval
 from .errors import UnitlensError, interrupted, log, shown
+from .runview import Comparison
 from .store import Run, _atomic, check_folder, now, safe_name, write_json
 from .summary import _num
 
@@ -491,8 +492,9 @@ def _check(cfg: CompareConfig) -> None:
 
 
 def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: CompareConfig = CompareConfig(),
-            progress: bool = False, allow_pickle: bool = False, atlas: bool = True) -> dict:
-    """Compare A with B layer by layer and unit by unit; return the summary (see the module doc).
+            progress: bool = False, allow_pickle: bool = False, atlas: bool = True) -> Comparison:
+    """Compare A with B layer by layer and unit by unit; return the summary (see the module doc), a
+    dict with tables and views for notebooks (runview.Comparison).
 
     `a`, `b`: two LoadedModels (then `corpus` and `layers` are needed; `layers_b` pairs other layers
     of B in depth order, e.g. for another architecture), or two run folders mined over the same
@@ -535,4 +537,4 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
             from .atlas.comparison_page import render_comparison
 
             summary["atlas"] = str(render_comparison(out))
-    return summary
+    return Comparison(summary)

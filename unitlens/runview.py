@@ -353,3 +353,98 @@ class RunView:
         from ._view_html import run_html
 
         return run_html(self)
+
+
+# -- results of probe() and compare(): the same dicts as their JSON, with a view -----------------
+
+class Probed(dict):
+    """What `probe` returns: the object of `probe --json` (a plain dict, so JSON as before), plus
+    `.unit` (the UnitView of the run it read) and an inline display with the exemplars' heat maps."""
+
+    @property
+    def folder(self) -> Path:
+        """The probe's page folder (its crops and heat maps)."""
+        return Path(self["page"]).parent
+
+    @cached_property
+    def unit(self) -> UnitView:
+        return load_run(self["run"]).unit((self["layer"], int(self["unit"])))
+
+    def __repr__(self) -> str:
+        st = self["stats"]
+        return (f"<probe {shown(self['layer'])}:{self['unit']} of {shown(self.get('model', '?'))}: "
+                f"{len(self['exemplars'])} exemplars with heat maps, peak {st['max']:.4g}; page {shown(self['page'])}>")
+
+    def _repr_html_(self) -> str:
+        from ._view_html import probe_html
+
+        return probe_html(self)
+
+
+@dataclass(frozen=True)
+class UnitPair:
+    """One unit of a comparison: its row of the layer's unit table, and each side's unit where that
+    side is a run folder holding it (None otherwise)."""
+
+    layer: str
+    unit: int
+    row: dict
+    a: UnitView | None
+    b: UnitView | None
+
+    def _repr_html_(self) -> str:
+        from ._view_html import pair_html
+
+        return pair_html(self)
+
+
+class Comparison(dict):
+    """What `compare` returns: the object of `compare --json` (a plain dict), plus tables and views."""
+
+    def layers(self) -> Table:
+        """One row per compared layer pair: CKA with its interval, units compared, mean correlation and
+        overlap, dead units."""
+        rows = []
+        for e in self["layers"]:
+            lo, hi = e.get("cka_ci") or (None, None)
+            rows.append({"layer": e["layer"], "layer_b": e["layer_b"], "cka": e["cka"], "cka_low": lo, "cka_high": hi,
+                         "cka_full_maps": e.get("cka_full_maps"), "units": e["units_compared"],
+                         "mean_corr": e["mean_corr"], "mean_jaccard": e["mean_jaccard"], "dead": e["dead"]})
+        return Table(rows, title="comparison")
+
+    def _entry(self, layer: str) -> dict:
+        for e in self["layers"]:
+            if e["layer"] == layer:
+                return e
+        raise UnitlensError(f"No layer {shown(layer)!r} in this comparison. Layers: "
+                            f"{', '.join(shown(e['layer']) for e in self['layers'])}.")
+
+    def units(self, layer: str) -> Table:
+        """The unit table of one layer pair (as units_<layer>.csv): most changed first."""
+        return Table(sorted(self._entry(layer)["units"], key=lambda r: r["rank"]), title=f"comparison / {layer}")
+
+    def pair(self, layer: str, unit: int) -> UnitPair:
+        """Unit `unit` of `layer`, A and B side by side."""
+        e = self._entry(layer)
+        row = next((r for r in e["units"] if r["unit"] == unit), None)
+        if row is None:
+            raise UnitlensError(f"Unit {unit} of {shown(layer)} was not compared ({e['units_compared']} units were"
+                                f"{'; ' + e['units_note'] if e.get('units_note') else ''}).")
+        views = []
+        for side, name in (("a", e["layer"]), ("b", e["layer_b"])):
+            s = self[side]
+            try:
+                views.append(load_run(s["run"]).unit((name, unit)) if s.get("source") == "run" else None)
+            except UnitlensError:  # the side's run did not mine this unit
+                views.append(None)
+        return UnitPair(layer, unit, row, *views)
+
+    def __repr__(self) -> str:
+        parts = [f"{shown(e['layer'])} {e['cka']:.3f}" if e["cka"] is not None else shown(e["layer"])
+                 for e in self["layers"]]
+        return f"<comparison, CKA per layer: {', '.join(parts)}>"
+
+    def _repr_html_(self) -> str:
+        from ._view_html import comparison_html
+
+        return comparison_html(self)
