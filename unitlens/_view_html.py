@@ -32,6 +32,7 @@ CSS_EXTRA = f"""
 .{SCOPE} table.nb-table td, .{SCOPE} table.nb-table th {{ padding: 2px 8px; border-bottom: 1px solid var(--soft); text-align: right; }}
 .{SCOPE} .nb-side {{ display: grid; grid-template-columns: 1fr 1fr; gap: 12px; }}
 .{SCOPE} .nb-bars {{ display: flex; align-items: flex-end; gap: 1px; height: 40px; }}
+.{SCOPE} .syn .near img {{ outline: none; }}  /* natural images beside a synthesised one: not drawn as synthesised */
 .{SCOPE} .nb-bars span {{ display: block; width: 6px; background: var(--nat); }}
 """
 
