@@ -3,7 +3,6 @@ real Jupyter kernel (nbclient + ipykernel, test-only dependencies)."""
 import os
 
 import pytest
-
 from conftest import ROOT
 
 
@@ -31,7 +30,7 @@ def test_readme_notebook_example_runs(demo, monkeypatch):
     assert 'load_run("unitlens-demo")' in code
     monkeypatch.chdir(demo)
     ns: dict = {}
-    exec(compile(code, "README.md", "exec"), ns)
+    exec(compile(code, "README.md", "exec"), ns)  # noqa: S102 (our own README)
     assert ns["crop"].size == tuple(b - a for a, b in zip(ns["unit"].exemplars[0].box[:2], ns["unit"].exemplars[0].box[2:]))
     assert isinstance(ns["table"].frame(), pandas.DataFrame) and len(ns["table"]) == 2
     assert ns["evidence"]["max_activation"] == ns["unit"].summary["synth"][0]["max_activation"]

@@ -133,22 +133,24 @@ def test_html_escapes_hostile_names_and_has_no_script(tiny):
 
 
 def test_html_of_a_unit_with_64_exemplars_stays_bounded(tmp_path):
-    from unitlens import _view_html
-    from unitlens.runview import Exemplar
+    from test_atlas import fake_run
 
-    src = tmp_path / f"{HOSTILE}.png"
-    Image.fromarray(np.random.default_rng(0).integers(0, 255, (300, 400, 3), dtype=np.uint8)).save(src)
-    ex = [Exemplar(rank=r + 1, id=src.name, path=src, score=1.0 - r / 64, box=(0, 0, 300, 300), position=(0, 0))
-          for r in range(64)]
-    unit = SimpleNamespace(layer=HOSTILE, channel=3, exemplars=ex, negative_exemplars=ex, synthesised=[], facets=[],
-                           histogram={"edges": [0.0, 1.0], "counts": [64]},
-                           stats={"images": 64, "mean_max": 0.5, "std_max": 0.1, "min": 0.0, "max": 1.0,
-                                  "fire_rate": 1.0, "class_selectivity": None})
-    html = _view_html.unit_html(unit)
+    from unitlens import _view_html
+
+    layer = "<svg onload=alert(3)>"
+    fake_run(tmp_path / "run", layer=layer, units=2, k=64, images=128, thumb=64, negative=True)  # noise cells
+    c = json.loads((tmp_path / "run" / "corpus.json").read_text())  # the atlas needs less of it than a unit
+    (tmp_path / "run" / "corpus.json").write_text(json.dumps({**c, "classes": ["a", "b", "c", "d"], "fingerprint": "x"}))
+    u = load_run(tmp_path / "run").unit((layer, 1))
+    assert len(u.exemplars) == len(u.negative_exemplars) == 64 and len(u.synthesised) == 1
+    html = u._repr_html_()
     p = _parse(html)
-    assert p.tags.count("img") == _view_html.SHOW_TOP + _view_html.SHOW_NEGATIVE
-    assert len(html) < 250_000, len(html)  # noise crops are the worst case for JPEG
+    assert p.tags.count("img") == _view_html.SHOW_TOP + _view_html.SHOW_NEGATIVE + 1
+    assert "48 more not drawn" in html and "56 more not drawn" in html
+    print(f"unit HTML: {len(html):,} characters")
+    assert len(html) < 200_000, len(html)  # 25 pictures of at most 96 px of noise (JPEG's worst case)
     assert "script" not in p.tags and not p.handlers and not p.urls
+    assert layer not in html and "&lt;svg onload=alert(3)&gt;" in html
 
 
 def test_units_table_as_records_and_dataframe(tiny):
@@ -193,7 +195,14 @@ def test_package_names_for_completion_and_type_checkers():
 def test_probe_and_comparison_results_draw_and_keep_their_json(tiny, tmp_path):
     import csv
 
-    from unitlens import CompareConfig, MineConfig, ProbeConfig, compare, probe, unit_summary
+    from unitlens import (
+        CompareConfig,
+        MineConfig,
+        ProbeConfig,
+        compare,
+        probe,
+        unit_summary,
+    )
 
     p = probe(tiny.path, "6:0", config=ProbeConfig(top_k=3, attribute=2, methods=("gxi",), workers=0))
     assert json.loads(json.dumps(p)) == json.loads((p.folder / "probe.json").read_text())
@@ -229,3 +238,13 @@ def test_probe_and_comparison_results_draw_and_keep_their_json(tiny, tmp_path):
     assert pair._repr_html_().count('<span class="uv-unit">3</span>') == 2  # A and B side by side
     with pytest.raises(UnitlensError, match="No layer '3' in this comparison"):
         c.units("3")
+
+
+def test_tables_need_no_pandas(tiny, monkeypatch):
+    import sys
+
+    monkeypatch.setitem(sys.modules, "pandas", None)  # as if not installed: importing it fails
+    t = tiny.view.units("6")
+    assert len(t) == 10 and all(isinstance(r, dict) for r in t) and "<table" in t._repr_html_()
+    with pytest.raises(UnitlensError, match=r"needs pandas.*unitlens\[tables\]"):
+        t.frame()
