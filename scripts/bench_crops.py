@@ -57,7 +57,7 @@ def _reference_image_cells(path, entries, field, size, thumb):
 
 def per_sheet_reference(run, model, corpus, layers, thumb: int) -> None:
     """The per-sheet crop stage, kept here only to measure against."""
-    size, R = model.preprocess.size, ucrops.SHEET_ROWS
+    size, R = model.preprocess.side, ucrops.SHEET_ROWS
     for lu in layers:
         d = run.layer_dir(lu.layer)
         idx = read_npz(d / "index.npz")

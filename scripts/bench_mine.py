@@ -225,7 +225,7 @@ def loop_start_rss() -> float:
 
 def variant(model, kind: str, n: int, layer: str, out: Path) -> dict:
     """Top-16 of every channel of `layer` over n generated images, the unitlens way or the plain way."""
-    K, size = 16, model.preprocess.size
+    K, size = 16, model.preprocess.side
     if kind == "naive":
         vals, pos = [], []
 

@@ -37,3 +37,34 @@ class RedDetector(nn.Module):
 
 def red_detector() -> nn.Module:
     return RedDetector()
+
+
+def extreme_net() -> nn.Module:
+    """Layer '1' reaches about 1e6 (far above float16's largest value, 65504) and layer '2' about 1e-8
+    (below float16's smallest subnormal, 6e-8). Positive weights after the ReLU: no cancellation."""
+    torch.manual_seed(0)
+    net = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.Conv2d(4, 3, 1, bias=False))
+    with torch.no_grad():
+        net[0].weight.mul_(1e6)
+        net[0].bias.fill_(0.0)
+        net[2].weight.uniform_(0.5, 1.0).mul_(1e-14)
+    return net
+
+
+def grey_net() -> nn.Module:
+    """A seeded random network on one input channel, as for X-ray, microscopy or document images."""
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Conv2d(1, 8, 3, padding=1), nn.ReLU(), nn.Conv2d(8, 6, 3, stride=2, padding=1), nn.ReLU())
+
+
+class Carried(nn.Sequential):
+    """A network that carries its own data configuration, as timm models do (`pretrained_cfg`)."""
+
+    def __init__(self):
+        super().__init__(nn.Conv2d(3, 4, 3), nn.ReLU())
+        self.pretrained_cfg = {"input_size": (3, 40, 56), "mean": (0.5, 0.4, 0.3), "std": (0.2, 0.25, 0.3),
+                               "interpolation": "bicubic", "crop_pct": 0.9}
+
+
+def carried() -> nn.Module:
+    return Carried()

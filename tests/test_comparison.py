@@ -312,7 +312,7 @@ def test_cli_runs_uses_what_they_hold_and_says_what_it_recomputes(digits, tmp_pa
     assert (runs["base"] / "compare" / "tuned" / "compare.json").is_file()  # the default folder
     e1, e3 = _by_layer(s)["1"], _by_layer(s)["3"]
     assert [u["unit"] for u in e3["units"]] == list(range(16))  # the mined units
-    # the same numbers as comparing the models (runs store float16 values)
+    # the same numbers as comparing the models (runs store float32 values)
     ref = _by_layer(compare(_load(digits["base"]), _load(digits["tuned"]), corpus=digits["corpus"],
                             layers=["1,3"], config=CompareConfig(workers=0, bootstrap=0, top_k=8)))
     assert e1["cka"] == pytest.approx(ref["1"]["cka"], abs=1e-3)

@@ -428,3 +428,32 @@ def test_batches_are_deterministic_across_workers_and_batch_sizes(tmp_path):
         assert first[2:] == other[2:]
     tail = run(start=5, workers=0, batch_size=2)
     assert torch.equal(tail[0], first[0][first[0] >= 5]) and torch.equal(tail[1], first[1][first[0] >= 5])
+
+
+@pytest.mark.parametrize("width,height,frame", [(300, 170, (48, 80)), (170, 300, (48, 80)), (90, 211, (40, 40)),
+                                                (257, 101, (64, 21))])
+def test_every_input_pixel_maps_back_to_the_original_pixel_it_came_from(tmp_path, width, height, frame):
+    # Each original pixel carries its own coordinates (R, B: x; G: y). With nearest resampling an
+    # input pixel holds exactly one original pixel; Placement.to_original of that input pixel's box
+    # must contain it and be at most one scaled pixel (plus rounding) wide.
+    from unitlens.corpus import Frame
+
+    ys, xs = np.mgrid[0:height, 0:width]
+    coded = np.stack([xs % 256, ys, xs // 256], axis=-1).astype(np.uint8)  # (H, W, 3)
+    path = _save(tmp_path / "coded.png", coded)
+    f = Frame(*frame, resample="nearest")
+    pixels, place = fit(decode(path), f, (width, height))
+    assert pixels.shape == (3, *frame)
+    x_of = pixels[0].astype(int) + 256 * pixels[2].astype(int)  # (H, W) original x of each input pixel
+    y_of = pixels[1].astype(int)
+    assert x_of.max() - x_of.min() < width and len(np.unique(x_of)) > 1
+    reach = 1 / place.scale + 2
+    for i in range(frame[0]):
+        for j in range(frame[1]):
+            x0, y0, x1, y1 = place.to_original((j, i, j + 1, i + 1))
+            assert x0 <= x_of[i, j] < x1 and y0 <= y_of[i, j] < y1, (i, j)
+            assert x1 - x0 <= reach and y1 - y0 <= reach
+    # the frame is centred in the original and covers it along one side exactly
+    whole = place.to_original((0, 0, frame[1], frame[0]))
+    assert whole[0] + whole[2] == width or whole[1] + whole[3] == height
+    assert (whole[0], whole[2]) == (0, width) or (whole[1], whole[3]) == (0, height)

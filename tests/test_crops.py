@@ -101,7 +101,7 @@ def _reference_sheets(run, model, corpus, layer, thumb):
     from unitlens.crops import input_box
     from unitlens.store import read_npz
 
-    idx, size, field = read_npz(run.layer_dir(layer) / "index.npz"), model.preprocess.size, model.layer(layer).field
+    idx, size, field = read_npz(run.layer_dir(layer) / "index.npz"), model.preprocess.side, model.layer(layer).field
     U, K = idx["top_image"].shape
     kinds = [("top", 0)] + ([("bottom", K)] if (idx["low"] < 0).any() else [])
     crops = [(u, c0 + r, kind, r, int(idx[f"{kind}_image"][u, r]), input_box(field, idx[f"{kind}_y"][u, r],

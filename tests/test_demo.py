@@ -33,7 +33,7 @@ def model():
 
 def test_shipped_weights_are_small_and_classify_fresh_swatches(model):
     assert net.WEIGHTS.stat().st_size <= 5 * 2**20
-    assert model.preprocess.size == net.INPUT_SIZE and model.preprocess.source == "PREPROCESS in net.py"
+    assert model.preprocess.size == (net.INPUT_SIZE,) * 2 and model.preprocess.source == "PREPROCESS in net.py"
     # Seed 9 was used neither in training (1), in its held-out check (2) nor by the demo corpus (0).
     fresh = [swatches.sample(i, seed=9) for i in range(240)]
     with torch.no_grad():
@@ -99,6 +99,17 @@ def test_demo_command_builds_an_atlas(tmp_path):
     assert len(list((out / "corpus").rglob("*.png"))) == 36
     again = run_cli("demo", "--out", str(out), "--count", "36", "--units", "2", "--steps", "4", "--threads", "1")
     assert again.stdout.strip().splitlines()[-1] == str(index)  # resumed: nothing left to do
+    # ... and it says so, with the option that would redo it, instead of "mining 36 images"
+    assert "Nothing was redone" in again.stderr and "--force" in again.stderr
+    assert "mining 36 images" not in again.stderr and "left" not in again.stderr
+    # other settings need --force, which the message names and the command has
+    other = run_cli("demo", "--out", str(out), "--count", "40", "--units", "2", "--steps", "4", "--threads", "1",
+                    check=False)
+    assert other.returncode == 1 and "--force" in other.stderr
+    forced = run_cli("demo", "--out", str(out), "--count", "40", "--units", "2", "--steps", "4", "--threads", "1",
+                     "--force")
+    assert "Nothing was redone" not in forced.stderr and Run(out).manifest()["corpus"]["count"] == 40
+    assert all((out / "synth" / layer / "unit-0001.npz").is_file() for layer in LAYERS)
 
 
 def test_demo_refuses_a_folder_that_is_not_its_own(tmp_path):
@@ -116,3 +127,64 @@ def test_training_script_runs_and_writes_loadable_weights(tmp_path):
     assert r.returncode == 0, r.stderr
     assert "held-out accuracy per class" in r.stdout
     net.swatch_net().load_state_dict(torch.load(out, weights_only=True))
+
+
+def test_the_demo_folder_is_ignored_by_git_in_a_clone():
+    # the README's first command writes unitlens-demo/ into the clone; git must not offer to commit it
+    probe = ["unitlens-demo/atlas/index.html", "unitlens-demo/corpus/dots/dots-00000.png", "unitlens-demo/manifest.json"]
+    r = subprocess.run(["git", "check-ignore", "--no-index", *probe], cwd=ROOT, capture_output=True, text=True,
+                       check=False)
+    assert r.returncode == 0 and r.stdout.split() == probe, r.stderr
+
+
+def test_packaged_code_is_named_by_module_and_old_site_packages_manifests_still_open(tmp_path):
+    import json
+
+    from unitlens import load_model
+    from unitlens._specs import canonical_spec
+    from unitlens.synth import model_from_run
+
+    model = demo_model()
+    assert model.spec == "unitlens.demo.net:swatch_net"  # no path: reinstalling moves the files
+    by_path = load_model(f"{ROOT / 'unitlens' / 'demo' / 'net.py'}:swatch_net", str(net.WEIGHTS))
+    assert by_path.spec == str(ROOT / "unitlens" / "demo" / "net.py") + ":swatch_net"  # user code: its path
+    assert all(torch.equal(a, b) for a, b in zip(model.module.state_dict().values(), by_path.module.state_dict().values()))
+    corpus = open_corpus(demo_corpus(tmp_path / "corpus", 12), labels="folders")
+    layers = parse_layers(model, ["block1:0-1"])
+    out = tmp_path / "run"
+    mine(model, corpus, layers, out, MineConfig(top_k=2, workers=0))
+    assert Run(out).manifest()["model"]["spec"] == "unitlens.demo.net:swatch_net"
+
+    # A manifest written by `pip install .` names files in site-packages that `pip install -e .` removed.
+    gone = "/gone/venv/lib/python3.11/site-packages/unitlens/demo"
+    assert canonical_spec(f"{gone}/net.py:swatch_net") == "unitlens.demo.net:swatch_net"
+    man = json.loads((out / "manifest.json").read_text())
+    for d in (man["model"], man["mine"]["settings"]["model"]):
+        d["spec"] = f"{gone}/net.py:swatch_net"
+        d["weights"]["path"] = f"{gone}/swatch_net.pt"
+    (out / "manifest.json").write_text(json.dumps(man))
+    again = model_from_run(out)
+    assert again.spec == "unitlens.demo.net:swatch_net" and again.weights["sha256"] == model.weights["sha256"]
+    mine(model, corpus, layers, out, MineConfig(top_k=2, workers=0))  # the finished pass is recognised, not refused
+    r = run_cli("probe", out, "block1:1", "--attribution", "none", "--no-synth", "--top", "2", "--json")
+    assert json.loads(r.stdout)["model"] == "unitlens.demo.net:swatch_net"
+
+
+def test_module_specs_that_do_not_import_say_what_to_do():
+    from unitlens import UnitlensError, load_model
+
+    with pytest.raises(UnitlensError, match="Cannot import the model's module 'no_such_pkg.nets'.*file.py:function"):
+        load_model("no_such_pkg.nets:build")
+    with pytest.raises(UnitlensError, match="has no function 'nope'"):
+        load_model("unitlens.demo.net:nope")
+
+
+def test_code_in_another_environments_site_packages_keeps_its_path(tmp_path):
+    from unitlens._specs import canonical_spec
+
+    pkg = tmp_path / "lib" / "site-packages" / "not_importable_here_pkg"
+    pkg.mkdir(parents=True)
+    (pkg / "nets.py").write_text("")
+    spec = f"{pkg / 'nets.py'}:build"
+    assert canonical_spec(spec) == spec  # the file is there, its package does not import: keep the file
+    assert canonical_spec("/elsewhere/site-packages/unitlens/demo/net.py:swatch_net") == "unitlens.demo.net:swatch_net"

@@ -230,3 +230,13 @@ def test_cuda_is_refused_clearly_where_there_is_none(setup):
     with pytest.raises(UnitlensError, match="CUDA is not available here"):
         dist.place(m, "cuda")
     assert dist.place(m, "cpu") is m and m.device == "cpu"
+
+
+def test_merged_colour_sums_keep_the_channel_count_of_a_grey_model():
+    from types import SimpleNamespace
+
+    # two ranks that both measured the same grey pixels: the merge is exactly twice one rank's sums
+    colour = [torch.tensor([3.0], dtype=torch.float64), torch.tensor([[5.0]], dtype=torch.float64), 7]
+    g = SimpleNamespace(world=2, main=True, gather=lambda obj, what: [obj, obj])
+    _tallies, total, _skipped = dist.merge_tallies(g, {}, colour, [], [])
+    assert total[0].tolist() == [6.0] and total[1].tolist() == [[10.0]] and total[2] == 14

@@ -211,7 +211,7 @@ def test_embedding_manifest_entry_is_right(faceted_run, tmp_path, monkeypatch):
     e = run.manifest()["mine"]["layers"]["2"]["embedding"]
     path = run.path / e["path"]
     assert e["path"] == "mine/2/means.npy"  # every channel of a narrow layer mined: the means are the embedding
-    assert e["bytes"] == path.stat().st_size and e["dtype"] == "float16" and e["shape"] == [len(corpus), 3]
+    assert e["bytes"] == path.stat().st_size and e["dtype"] == "float32" and e["shape"] == [len(corpus), 3]
     # a wider layer than EMBED_DIM, one unit mined: pooled features reduced by PCA (scikit-learn's PCA as reference)
     from sklearn.decomposition import PCA
 

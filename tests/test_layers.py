@@ -281,10 +281,10 @@ def test_synthesis_checks_the_input_size_first(tmp_path, monkeypatch):
     model = load_model(f"{code}:build")
     chosen = Goal("conv:0-1")
     out = tmp_path / "run"
-    with pytest.raises(UnitlensError, match=r"does not take 48x48 images.*Wrong image width.*--size 32"):
+    with pytest.raises(UnitlensError, match=r"does not take 48x48 images.*Wrong image width.*--synth-size 32"):
         synthesize(model, chosen, out, SynthConfig(size=48, steps=2, checks=0))
     assert not out.exists()  # nothing written, so nothing for the next attempt to trip on
-    r = run_cli("synth", f"{code}:build", "--layers", "conv:0", "--size", "48", "--out", out, check=False)
+    r = run_cli("synth", f"{code}:build", "--layers", "conv:0", "--synth-size", "48", "--out", out, check=False)
     assert r.returncode == 1 and r.stderr.strip().splitlines()[-1].startswith("Error: ") \
         and "Traceback" not in r.stderr, r.stderr
 

@@ -25,7 +25,7 @@ def _brute_force(model, corpus, layer, units):
     h = model.module.get_submodule(layer).register_forward_hook(lambda m, i, o: seen.append(o[:, units]))
     ids = []
     with torch.no_grad():
-        for b in batches(corpus, model.preprocess.size, batch_size=5, workers=0):
+        for b in batches(corpus, model.preprocess.frame, batch_size=5, workers=0):
             model.module(model.normalize(b.images))
             ids.append(b.indices)
     h.remove()
@@ -263,7 +263,7 @@ def test_a_run_stopped_while_finishing_completes_when_run_again(tmp_path, smooth
 
     values = run.layer_dir("layer1") / "values.npy"
     assert _open_values(values, (len(corpus), 4), fresh=False).shape == (len(corpus), 4)
-    with pytest.raises(UnitlensError, match="Cannot resume mining: .*holds float16"):
+    with pytest.raises(UnitlensError, match="Cannot resume mining: .*holds float32"):
         _open_values(values, (len(corpus), 5), fresh=False)
     values.unlink()
     with pytest.raises(UnitlensError, match="Cannot resume mining: .*values.npy is missing"):
@@ -324,13 +324,13 @@ def test_an_interrupt_inside_a_batch_resumes_to_the_uninterrupted_result(tmp_pat
     cfg = MineConfig(top_k=3, workers=0, batch_size=3, checkpoint_seconds=0.0)
     whole = mine(model, corpus, layers, tmp_path / "whole", cfg)
     target, real = {"forward": ("forward_batch", mining_module.forward_batch),
-                    "after_tally": ("_f16", mining_module._f16)}[where]
+                    "after_tally": ("_fit", mining_module._fit)}[where]
     calls = []
 
     def interrupt_on_second_batch(*args, **kw):
         calls.append(1)
         out = real(*args, **kw)
-        if len(calls) == (2 if where == "forward" else 7):  # _f16: 3 calls per layer and batch
+        if len(calls) == (2 if where == "forward" else 7):  # _fit: 3 calls per layer and batch
             raise KeyboardInterrupt
         return out
 
@@ -479,3 +479,48 @@ def test_a_disk_filling_up_mid_pass_is_one_error_line_and_the_rerun_resumes(tmp_
     a, b = Run(tmp_path / "whole").index("layer1"), Run(tmp_path / "r").index("layer1")
     for key in a:
         np.testing.assert_array_equal(a[key], b[key], err_msg=key)
+
+
+def test_stored_per_image_values_keep_activations_beyond_float16(tmp_path, smooth_corpus):
+    # Oracle: the same network in float64, plain torch. float16's relative precision is 2**-11
+    # (IEEE 754 binary16: 11 significant bits); the stored values must be at least that close.
+    from unitlens.corpus import batches
+
+    model = load_model(f"{TESTS / 'nets.py'}:extreme_net", size=32)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["1", "2"])
+    run = mine(model, corpus, layers, tmp_path / "r", MineConfig(top_k=3, workers=0))
+    ref = {"1": [], "2": []}
+    net = model.module.double()
+    with torch.no_grad():
+        for b in batches(corpus, 32, batch_size=8, workers=0):
+            x = model.normalize(b.images).double()
+            h1 = net[1](net[0](x))
+            for name, f in (("1", h1), ("2", net[2](h1))):
+                ref[name].append(torch.stack([f.flatten(2).amax(2), f.flatten(2).mean(2)]))
+    model.module.float()
+    for name in ("1", "2"):
+        mx, mean = torch.cat(ref[name], 1).numpy()  # (N, C) each
+        for kind, want in (("values", mx), ("means", mean)):
+            got = np.load(run.layer_dir(name) / f"{kind}.npy")
+            np.testing.assert_allclose(got, want, rtol=2**-11, atol=0)
+    assert np.load(run.layer_dir("1") / "values.npy").max() > 65504 * 10
+    small = np.load(run.layer_dir("2") / "means.npy")
+    assert 0 < small[small > 0].min() and small.max() < 6e-8
+
+
+def test_a_mining_pass_started_by_an_older_version_with_float16_files_resumes(tmp_path, smooth_corpus, r18_weights):
+    model = load_model("torchvision:resnet18", str(r18_weights), size=64)
+    corpus = open_corpus(smooth_corpus)
+    layers = parse_layers(model, ["layer1:0-3"])
+    cfg = MineConfig(top_k=3, workers=0, batch_size=4)
+    whole = mine(model, corpus, layers, tmp_path / "whole", cfg)
+    mine(model, corpus, layers, tmp_path / "r", cfg, _stop_after=8)
+    d = Run(tmp_path / "r").layer_dir("layer1")
+    for f in ("values.npy", "means.npy", "pooled.npy"):
+        np.save(d / f, np.load(d / f).astype(np.float16))  # as earlier versions wrote them
+    run = mine(model, corpus, layers, tmp_path / "r", cfg)
+    got, want = np.load(d / "values.npy"), np.load(whole.layer_dir("layer1") / "values.npy")
+    assert got.dtype == np.float16
+    np.testing.assert_allclose(got, want, rtol=2**-10, atol=1e-6)
+    assert unit_summary(run, "layer1", 0)["exemplars"]

@@ -3,6 +3,7 @@ import json
 import warnings
 from urllib.error import URLError
 
+import numpy as np
 import pytest
 import torch
 import torchvision
@@ -21,15 +22,15 @@ def test_state_dict_file_loads_with_preprocessing_defaults(r18_weights):
     ref = torchvision.models.resnet18()
     ref.load_state_dict(torch.load(r18_weights, weights_only=True))
     assert torch.equal(m.module.conv1.weight, ref.conv1.weight)
-    assert m.preprocess.size == 224 and m.preprocess.mean == (0.485, 0.456, 0.406)
+    assert m.preprocess.size == (224, 224) and m.preprocess.mean == (0.485, 0.456, 0.406)
     assert m.weights["kind"] == "file" and len(m.weights["sha256"]) == 64
     m = load_model("torchvision:inception_v3")
-    assert m.preprocess.size == 299  # torchvision's metadata for Inception v3
+    assert m.preprocess.size == (299, 299)  # torchvision's metadata for Inception v3
 
 
 def test_overrides_are_recorded(r18_weights):
     m = load_model("torchvision:resnet18", str(r18_weights), size=128, mean=(0.5, 0.5, 0.5))
-    assert m.preprocess.size == 128 and m.preprocess.mean == (0.5, 0.5, 0.5)
+    assert m.preprocess.size == (128, 128) and m.preprocess.mean == (0.5, 0.5, 0.5)
     assert "overridden: size, mean" in m.describe()["preprocess"]["source"]
 
 
@@ -71,8 +72,10 @@ def test_pickled_module_needs_opt_in(tmp_path, capsys):
         m = load_model(str(tmp_path / "whole.pt"), allow_pickle=True)
     assert capsys.readouterr().err == ""  # the library warns; the CLI decides what to print
     assert list(m.layers()) == ["0"]
-    code, out, err = cli(capsys, "layers", tmp_path / "whole.pt", "--allow-pickle", "--size", "16")
-    assert code == 0 and err.count("Warning: loading a pickled module") == 1, err
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", UnitlensWarning)  # pyproject's test settings ignore it
+        code, out, err = cli(capsys, "layers", tmp_path / "whole.pt", "--allow-pickle", "--size", "16")
+    assert code == 0 and err.count("Warning: loading a pickled module") == 1, (code, out, err)
 
 
 def test_mining_notes_skipped_files_on_the_logger_not_stderr(tmp_path, capsys, caplog):
@@ -175,7 +178,7 @@ def test_architectures_end_to_end(arch, layer, size, tmp_path, smooth_corpus):
     rows = {row["name"]: row for row in json.loads(r.stdout)}
     assert layer in rows and rows[layer]["rf_size"] > 1 and rows[layer]["rf_stride"] >= 1
     m = load_model(f"torchvision:{arch}")
-    assert m.preprocess.size == size
+    assert m.preprocess.size == (size, size)
     ext = m.extractor([layer])
     assert ext.strategy == "fx"
     x = torch.randn(1, 3, size, size)
@@ -222,10 +225,151 @@ def test_user_code_declares_its_preprocessing(tmp_path):
     code.write_text("import torch\nPREPROCESS = {'size': 40, 'mean': (0.5, 0.5, 0.5), 'std': (0.2, 0.2, 0.2)}\n"
                     "def build():\n    return torch.nn.Sequential(torch.nn.Conv2d(3, 4, 3), torch.nn.ReLU())\n")
     m = load_model(f"{code}:build")
-    assert (m.preprocess.size, m.preprocess.mean, m.preprocess.std) == (40, (0.5,) * 3, (0.2,) * 3)
+    assert (m.preprocess.size, m.preprocess.mean, m.preprocess.std) == ((40, 40), (0.5,) * 3, (0.2,) * 3)
     assert m.preprocess.source == "PREPROCESS in tiny.py"
-    assert load_model(f"{code}:build", size=64).preprocess.size == 64  # the command line still wins
+    assert load_model(f"{code}:build", size=64).preprocess.size == (64, 64)  # the command line still wins
     code.write_text("import torch\nPREPROCESS = {'size': 40, 'colour': 'rgb'}\n"
                     "def build():\n    return torch.nn.Conv2d(3, 4, 3)\n")
     with pytest.raises(UnitlensError, match="keys size, mean, std"):
         load_model(f"{code}:build")
+
+
+def test_torchscript_model_is_recorded_by_its_absolute_path(tmp_path, monkeypatch):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        torch.jit.save(torch.jit.script(nn.Sequential(nn.Conv2d(3, 4, 3))), str(tmp_path / "seq.pt"))
+    monkeypatch.chdir(tmp_path)
+    m = load_model("seq.pt", size=32)
+    assert m.spec == str((tmp_path / "seq.pt").resolve()) and m.describe()["spec"] == m.spec
+    monkeypatch.chdir(TESTS)
+    assert list(load_model(m.spec, size=32).layers()) == ["0"]  # reopened from another directory
+
+
+def test_user_code_imports_the_files_beside_it(tmp_path):
+    import sys
+
+    d = tmp_path / "project"
+    d.mkdir()
+    (d / "blocks_beside.py").write_text("from torch import nn\ndef stem():\n    return nn.Conv2d(3, 5, 3)\n")
+    (d / "net.py").write_text("from torch import nn\nimport blocks_beside\n"
+                              "def build():\n    return nn.Sequential(blocks_beside.stem(), nn.ReLU())\n")
+    before = list(sys.path)
+    m = load_model(f"{d / 'net.py'}:build", size=32)
+    assert m.layer("0").channels == 5
+    assert sys.path == before  # the folder is on the import path only while the file loads
+
+
+def test_a_model_file_that_exits_says_so(tmp_path):
+    code = tmp_path / "script_like.py"
+    code.write_text("import sys\nfrom torch import nn\ndef build():\n    return nn.Conv2d(3, 4, 3)\nsys.exit(3)\n")
+    with pytest.raises(UnitlensError, match=r"called sys.exit\(3\)"):
+        load_model(f"{code}:build")
+    r = run_cli("layers", f"{code}:build", check=False)
+    assert r.returncode == 1 and r.stderr.startswith("Error: ") and "sys.exit(3)" in r.stderr
+    code.write_text("import sys\ndef build():\n    sys.exit('no gpu')\n")
+    with pytest.raises(UnitlensError, match=r"build\(\) called sys.exit\('no gpu'\)"):
+        load_model(f"{code}:build")
+
+
+def test_training_checkpoints_nest_and_prefix_their_weights(tmp_path, capsys):
+    torch.manual_seed(2)
+    net = torchvision.models.resnet18(num_classes=5)
+    # as a training framework saves it: weights under 'state_dict', keys prefixed by the attribute
+    # that held the network, a loss with a weight of its own beside it
+    sd = {f"model.{k}": v for k, v in net.state_dict().items()}
+    torch.save({"epoch": 7, "state_dict": {**sd, "criterion.weight": torch.ones(5)}}, tmp_path / "ckpt.pth")
+    m = load_model("torchvision:resnet18", str(tmp_path / "ckpt.pth"))
+    assert m.module.fc.out_features == 5 and torch.equal(m.module.layer2[1].conv2.weight, net.layer2[1].conv2.weight)
+    err = capsys.readouterr().err
+    assert "prefix 'model.'" in err and "1 other keys left out (first: criterion.weight)" in err
+    # user code: a network held as `self.backbone`, saved under 'model' with an EMA copy beside it
+    code = tmp_path / "small.py"
+    code.write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU())\n")
+    small = nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU())
+    torch.save({"model": {f"backbone.{k}": v for k, v in small.state_dict().items()},
+                "model_ema": {f"backbone.{k}": v * 0 for k, v in small.state_dict().items()}}, tmp_path / "s.pt")
+    m = load_model(f"{code}:build", str(tmp_path / "s.pt"))
+    assert torch.equal(m.module[0].weight, small[0].weight)
+    assert "using 'model'" in capsys.readouterr().err
+    # weights that do not fit user code: no advice about --arch-option, which user code cannot take
+    torch.save({"net.0.weight": torch.zeros(8, 3, 3, 3), "net.0.bias": torch.zeros(8)}, tmp_path / "bad.pt")
+    with pytest.raises(UnitlensError, match="do not fit") as e:
+        load_model(f"{code}:build", str(tmp_path / "bad.pt"))
+    assert "--arch-option" not in str(e.value) and "small.py:build" in str(e.value)
+
+
+def test_a_module_carrying_its_data_configuration_is_preprocessed_by_it(tmp_path):
+    from PIL import Image
+
+    from unitlens.corpus import CorpusDataset
+
+    m = load_model(f"{NETS}:carried")
+    p = m.preprocess
+    assert (p.size, p.mean, p.std, p.interpolation) == ((40, 56), (0.5, 0.4, 0.3), (0.2, 0.25, 0.3), "bicubic")
+    assert p.source.startswith("the model's pretrained_cfg")
+    assert m.describe()["preprocess"]["interpolation"] == "bicubic" and m.describe()["preprocess"]["size"] == [40, 56]
+    # an original of the input's own aspect is resized as a whole: PIL's bicubic resize is the oracle
+    rng = np.random.default_rng(0)
+    img = Image.fromarray(rng.integers(0, 256, (80, 112, 3), dtype=np.uint8))
+    img.save(tmp_path / "a.png")
+    _, pixels, _, _ = CorpusDataset(open_corpus(tmp_path), p.frame)[0]
+    want = np.asarray(img.resize((56, 40), Image.Resampling.BICUBIC)).transpose(2, 0, 1)
+    np.testing.assert_array_equal(pixels.numpy(), want)
+    # the file's PREPROCESS and the command line still win
+    assert load_model(f"{NETS}:carried", size=32, mean=(0.1, 0.1, 0.1)).preprocess.size == (32, 32)
+
+
+def test_input_channels_follow_the_model(tmp_path):
+    m = load_model(f"{NETS}:grey_net", size=24)  # no statistics given: ImageNet's, averaged over R,G,B
+    assert m.preprocess.channels == 1 and m.preprocess.mean == pytest.approx((sum((0.485, 0.456, 0.406)) / 3,))
+    assert "averaged over R,G,B" in m.preprocess.source
+    assert load_model(f"{NETS}:grey_net", size=24, mean=(0.5,), std=(0.25,)).preprocess.std == (0.25,)
+    for kw, message in (({"mean": (0.5, 0.5, 0.5), "std": (0.2, 0.2, 0.2)}, "need 1 number"),
+                        ({"mean": (0.5,), "std": (0.2, 0.2)}, "--mean has 1 numbers and --std 2")):
+        with pytest.raises(UnitlensError, match=message):
+            load_model(f"{NETS}:grey_net", **kw)
+    with pytest.raises(UnitlensError, match=r"need 3 number\(s\) \(R,G,B\)"):
+        load_model("torchvision:resnet18", mean=(0.5,), std=(0.5,))
+    code = tmp_path / "depthwise.py"  # a grouped first convolution: its weight holds 1 of the 3 channels
+    code.write_text("from torch import nn\ndef build():\n    return nn.Sequential(nn.Conv2d(3, 6, 3, groups=3))\n")
+    assert load_model(f"{code}:build", size=24).preprocess.channels == 3
+    code = tmp_path / "four.py"
+    code.write_text("from torch import nn\ndef build():\n    return nn.Conv2d(4, 2, 3)\n")
+    with pytest.raises(UnitlensError, match="takes 4 input channels; images decode to 1"):
+        load_model(f"{code}:build")
+    r = run_cli("layers", f"{NETS}:grey_net", "--size", "24", "--mean", "0.5", "--std", "0.25")
+    assert "input 1x24x24" in r.stdout
+
+
+def test_sizes_are_n_or_height_by_width_and_bounded_by_memory():
+    r = run_cli("layers", f"{NETS}:red_detector", "--size", "48x80")
+    assert "input 3x48x80" in r.stdout and " 1x48x80 " in r.stdout  # the colour layer keeps the input's shape
+    for bad in ("48x", "x80", "48x80x3", "big"):
+        r = run_cli("layers", f"{NETS}:red_detector", "--size", bad, check=False)
+        assert r.returncode == 1 and r.stderr.startswith("Error: --size takes N") and "Traceback" not in r.stderr
+    r = run_cli("layers", "torchvision:resnet18", "--size", "100000", check=False)
+    assert r.returncode == 1 and r.stderr.startswith("Error: Input size 100000 needs about") and r.stderr.count("\n") == 1
+
+
+def test_a_model_built_without_weights_warns_once(r18_weights, smooth_corpus, tmp_path, monkeypatch):
+    from unitlens import model as model_module
+    from unitlens.errors import UnitlensWarning
+
+    monkeypatch.setattr(model_module, "_WARNED", set())  # as in a fresh process
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")  # whatever the filters, the library says it once per model
+        load_model("torchvision:resnet18")
+        load_model("torchvision:resnet18")
+        load_model("torchvision:resnet18", str(r18_weights))
+        load_model(f"{NETS}:digits_net")
+    texts = [str(w.message) for w in seen if issubclass(w.category, UnitlensWarning)]
+    assert len(texts) == 2 and "torchvision:resnet18" in texts[0] and "digits_net" in texts[1]
+    assert all("random" in t and "--weights" in t for t in texts)
+    # the command line prints it as one Warning: line, for mine as for every other command
+    r = run_cli("mine", f"{NETS}:digits_net", "--size", "32", "--corpus", smooth_corpus, "--layers", "0:0-1",
+                "--top", "2", "--workers", "0", "--out", tmp_path / "run")
+    lines = [line for line in r.stderr.splitlines() if "random" in line]
+    assert len(lines) == 1 and lines[0].startswith("Warning: ") and "UnitlensWarning" not in r.stderr
+    r = run_cli("mine", "torchvision:resnet18", "--weights", r18_weights, "--size", "32", "--corpus", smooth_corpus,
+                "--layers", "layer1:0-1", "--top", "2", "--workers", "0", "--out", tmp_path / "run2")
+    assert "Warning" not in r.stderr

@@ -432,6 +432,16 @@ def test_synth_from_a_model_without_a_run(tmp_path, capsys):
     assert e["vs_best_exemplar"] is None and e["steps"] == 4
     code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1")
     assert code == 1 and "--out" in err
+    # --size is the network's input, as in every command; --synth-size the synthesised image's side
+    code, _, err = cli(capsys, "synth", f"{PLANTED}:gabor_net", "--layers", "1:3", "--size", "32",
+                       "--synth-size", "24", "--steps", "2", "--out", tmp_path / "r24")
+    assert code == 0, err
+    assert json.loads((tmp_path / "r24" / "manifest.json").read_text())["model"]["preprocess"]["size"] == 32
+    from PIL import Image
+
+    assert Image.open(unit_images(tmp_path / "r24", "1", 3)[0]["image"]).size == (24, 24)
+    code, _, err = cli(capsys, "synth", out, "--size", "32")
+    assert code == 1 and "--size apply only when TARGET is a model" in err
 
 
 def test_a_goal_from_python_and_from_the_command_line_gives_the_same_images(tmp_path, capsys):
@@ -619,3 +629,31 @@ def test_synthesis_is_refused_up_front_when_its_images_do_not_fit_on_the_disk(tm
                                             r"and the disk has 50 KB free"):
         synthesize(r18, layers, tmp_path / "r", SynthConfig(steps=2, **QUICK))
     assert not (tmp_path / "r" / "synth").exists()
+
+
+def test_progress_moves_with_every_step_not_only_per_batch(tmp_path, monkeypatch):
+    from unitlens import _progress
+
+    seen = []
+
+    class Recorder:  # stands in for the terminal bar
+        def __init__(self, total, done, *args, **kw):
+            seen.append(("start", total, done))
+
+        def advance(self, done, note=""):
+            seen.append((done, note))
+
+        def close(self):
+            seen.append(("close",))
+
+    monkeypatch.setattr(_progress, "Progress", Recorder)
+    m = load_model(f"{NETS}:digits_net", size=16)
+    steps = 5
+    synthesize(m, Goal("2:0-3"), tmp_path / "r", SynthConfig(steps=steps, batch_size=2, **QUICK),
+               progress=True)
+    assert seen[0] == ("start", 4, 0) and seen[-1] == ("close",)
+    ticks = seen[1:-1]
+    # two batches of two units, every image runs all 5 steps: one tick per step, in units of work
+    assert [d for d, _ in ticks] == pytest.approx([k / steps * 2 for k in range(1, steps + 1)]
+                                                  + [2 + k / steps * 2 for k in range(1, steps + 1)])
+    assert [n for _, n in ticks] == [f"step {k}/{steps}" for k in range(1, steps + 1)] * 2

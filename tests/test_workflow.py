@@ -41,13 +41,17 @@ def test_plan_worked_examples():
     p = plan(600, 1000, LAYERS, 256, 128, CALIB)
     assert p.steps == 128 and p.size == 128 and p.estimate_s == pytest.approx(523.5)
     # Very tight: steps hit their floor, then the size shrinks (to 96 px: cost x 0.5625), then
-    # the units: 80 - 11.5 = 68.5 s fit one batch per layer (a 18 s + b 36 s), not two of a.
+    # the units. All units at 64 steps, 96 px: a 64/16 * 64 * 0.5 * 0.5625 = 72 s, b 2 * 64 * 0.5625
+    # = 72 s; 80 - 11.5 = 68.5 s left is a fraction 0.4757 of 144 s: a keeps int(64 * 0.4757) = 30
+    # units (33.75 s), b 15 (33.75 s), 67.5 s in all: it fits, so the estimate is 79 s.
     p = plan(80, 1000, LAYERS, 256, 128, CALIB)
-    assert p.steps == MIN_STEPS and p.size == 96 and p.estimate_s <= 80
-    assert [len(lu.units) <= 16 for lu in p.layers] == [True, True] and all(lu.units for lu in p.layers)
-    assert p.layers[0].units[:3] == (0, 4, 8) or len(p.layers[0].units) < 16  # evenly spread
+    assert p.steps == MIN_STEPS and p.size == 96 and p.estimate_s == pytest.approx(79.0)
+    assert [len(lu.units) for lu in p.layers] == [30, 15]
+    assert p.layers[0].units[:4] == (0, 2, 4, 6) and p.layers[1].units[:3] == (0, 2, 4)  # evenly spread
+    assert p.parts == pytest.approx({"mining": 11.5, "a": 33.75, "b": 33.75})
+    # one unit per layer: a 1/16 * 64 * 0.5 * 0.5625 = 1.125 s + b 2.25 s; 14 - 11.5 = 2.5 s do not hold it
     with pytest.raises(UnitlensError, match="Even one unit per layer"):
-        plan(60, 1000, LAYERS, 256, 128, CALIB)
+        plan(14, 1000, LAYERS, 256, 128, CALIB)
     with pytest.raises(UnitlensError, match="Mining 1000 images alone"):
         plan(5, 1000, LAYERS, 256, 128, CALIB)
 
@@ -91,6 +95,10 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
     assert (whole / "atlas" / "index.html").is_file()
     expect = _atlas_data(whole)
     assert expect
+    again = subprocess.run(_cmd(corpus, whole, r18_weights), cwd=ROOT, capture_output=True, text=True)
+    assert again.returncode == 0 and "Nothing was redone" in again.stderr and "--force" in again.stderr
+    assert "mining 24 images" not in again.stderr and "min left" not in again.stderr
+    assert _atlas_data(whole) == expect
 
     def mining_started(out):
         return lambda: (out / "mine" / "state.json").is_file()
@@ -107,3 +115,37 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
         r = subprocess.run(_cmd(corpus, out, r18_weights), cwd=ROOT, capture_output=True, text=True)
         assert r.returncode == 0, r.stderr
         assert _atlas_data(out) == expect, f"killed during {name}"
+
+
+def test_plan_counts_each_units_evidence_and_reports_mining_whole():
+    # Worked by hand: as the first example, plus 0.25 s of evidence per unit: a 64 * 0.25 = 16 s,
+    # b 32 * 0.25 = 8 s, so 1035.5 + 24 = 1059.5 s; every unit is still synthesised.
+    calib = {**CALIB, "synth_s_per_unit": {"a": 0.25, "b": 0.25}}
+    p = plan(2000, 1000, LAYERS, 256, 128, calib)
+    assert p.estimate_s == pytest.approx(1059.5) and [len(lu.units) for lu in p.layers] == [64, 32]
+    # already mined: the mining term is 0 whatever the corpus size
+    assert plan(2000, 10**9, LAYERS, 256, 128, calib, already_mined=True).estimate_s == pytest.approx(1048)
+
+
+def test_a_budget_cuts_synthesised_units_never_mined_ones(tmp_path, monkeypatch):
+    from unitlens import MineConfig, load_model, open_corpus, parse_layers, run_all, workflow
+    from unitlens.store import Run
+    from unitlens.synth import SynthConfig
+
+    # Calibration numbers fixed (no timing in tests): a batch of 2 units costs 1 s per step, mining nothing.
+    fixed = {"mine_s_per_image": 0.0, "synth_s_per_step": {"2": 1.0}, "synth_s_per_unit": {"2": 0.0},
+             "batch": 2, "size": 16}
+    monkeypatch.setattr(workflow, "calibrate", lambda *a, **k: fixed)
+    m = load_model(f"{ROOT / 'tests' / 'nets.py'}:digits_net", size=16)
+    layers = parse_layers(m, ["2:0-7"])
+    corpus = open_corpus(_corpus(tmp_path / "c", 6))
+    out = tmp_path / "run"
+    # 64 steps (the floor) x 1 s per batch of 2: 4 batches need 256 s; 150 s fit 2 batches, 4 units.
+    lines = []
+    run_all(m, corpus, layers, out, MineConfig(top_k=2, workers=0), SynthConfig(steps=64, checks=0),
+            budget="150s", log=lines.append)
+    man = Run(out).manifest()
+    assert man["mine"]["settings"]["layers"] == {"2": list(range(8))}  # every unit mined
+    assert man["budget"]["plan"]["units"] == {"2": 4} and man["synth"]["layers"]["2"]["channels"] == "0,2,4,6"
+    assert man["budget"]["plan"]["estimate_s"] == pytest.approx(128)
+    assert any("mining all 8 units" in line for line in lines), lines

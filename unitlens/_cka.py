@@ -1,6 +1,6 @@
 """The estimators behind `compare`: linear CKA (Kornblith et al. 2019), the unbiased HSIC (Song et al.
 2012) and its minibatch CKA (Nguyen, Raghu & Kornblith 2021), bootstrap intervals, and float64
-moments of (N, C) arrays read in row blocks, so float16 memory maps are never copied whole.
+moments of (N, C) arrays read in row blocks, so memory maps are never copied whole.
 """
 from __future__ import annotations
 

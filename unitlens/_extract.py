@@ -37,15 +37,17 @@ def _not_observable(spec: str) -> UnitlensError:
     )
 
 
-def observe_shapes(model, size: int, *, partial: bool = False) -> dict[str, tuple[tuple[int, ...], bool]]:
+def observe_shapes(model, size: int | tuple[int, int], *,
+                   partial: bool = False) -> dict[str, tuple[tuple[int, ...], bool]]:
     """{layer: (shape without the batch dim, is_block)} for every call of a submodule whose output
     is a 3-D or 4-D tensor, in the order produced; a module called k times gives k layers (_calls).
 
     `partial`: a model that fails on this size (a fixed input size, a classifier sized for one
     input) still tells the shapes of the layers it produced before failing."""
     module = model.module
+    h, w = (size, size) if isinstance(size, int) else size
     param = next((p for p in module.parameters() if p.is_floating_point()), None)
-    x = torch.zeros(1, 3, size, size, dtype=param.dtype if param is not None else None)
+    x = torch.zeros(1, model.preprocess.channels, h, w, dtype=param.dtype if param is not None else None)
     seen: dict[str, tuple[tuple[int, ...], bool]] = {}
     seq = script_sequence(module)
     if isinstance(module, torch.jit.ScriptModule) and seq is None:
@@ -81,8 +83,8 @@ def observe_shapes(model, size: int, *, partial: bool = False) -> dict[str, tupl
         if partial:
             return seen
         raise UnitlensError(
-            f"{model.spec} failed on a 1x3x{size}x{size} input ({e.__class__.__name__}: {e}). "
-            "Check the input size (--size) and that the model takes RGB images."
+            f"{model.spec} failed on a 1x{model.preprocess.channels}x{h}x{w} input ({e.__class__.__name__}: {e}). "
+            "Check the input size (--size) and the number of input channels (--mean/--std take one number each)."
         ) from None
     return seen
 
@@ -151,7 +153,7 @@ def function_outputs(model) -> dict[str, tuple[str, str]]:
             graph, order, layer_of = _traced(model.module)
             gm = torch.fx.GraphModule(model.module, graph)
             p = next(iter(model.module.parameters()), torch.zeros(()))  # the input's dtype and device
-            ShapeProp(gm).propagate(torch.zeros(1, 3, model.preprocess.size, model.preprocess.size,
+            ShapeProp(gm).propagate(torch.zeros(1, model.preprocess.channels, *model.preprocess.size,
                                                 dtype=p.dtype, device=p.device))
     except Exception:  # does not trace: the hooks see module outputs only
         return {}

@@ -15,34 +15,44 @@ app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,
     help="Find out what the units (channels) of a convolutional network respond to.",
 )
 
 # -- shared options ------------------------------------------------------------------------
 Weights = typer.Option(None, "--weights", help="State-dict file, or a torchvision weights name (DEFAULT, IMAGENET1K_V2).")
-Size = typer.Option(None, "--size", help="Input size in pixels (default: from the weights' metadata).")
-Mean = typer.Option(None, "--mean", help="Normalisation mean, R,G,B (e.g. 0.5,0.5,0.5).")
-Std = typer.Option(None, "--std", help="Normalisation std, R,G,B.")
+Size = typer.Option(None, "--size", help="Input size in pixels, N (square) or HxW, e.g. 96x160 (default: from the weights' metadata).")
+Mean = typer.Option(None, "--mean", help="Normalisation mean, one per input channel: R,G,B (e.g. 0.5,0.5,0.5) or one for grey.")
+Std = typer.Option(None, "--std", help="Normalisation std, one per input channel.")
 AllowPickle = typer.Option(False, "--allow-pickle", help="Allow a whole pickled module as MODEL (runs code from the file).")
-ArchOption = typer.Option(None, "--arch-option", help="Constructor option for torchvision models, key=value (repeatable).")
+ArchOption = typer.Option(None, "--arch-option", metavar="KEY=VALUE", help="Constructor option for torchvision models, key=value (repeatable).")
 Json = typer.Option(False, "--json", help="Print JSON instead of a table.")
 Device = typer.Option("cpu", "--device", help="Where the network runs: cpu, cuda or cuda:N (under torchrun, cuda is the GPU of LOCAL_RANK).")
 Dedupe = typer.Option(False, "--dedupe", help="Near-identical images (thumbnail cosine >= 0.99) count once in each "
                                              "unit's exemplars; off: the exact top-K.")
 
 
-def _triple(text: Optional[str], name: str):
+def _numbers(text: Optional[str], name: str):
     if text is None:
         return None
     from .errors import UnitlensError
 
     try:
-        vals = tuple(float(v) for v in text.split(","))
+        return tuple(float(v) for v in text.split(","))
     except ValueError:
-        raise UnitlensError(f"--{name} takes three numbers like 0.485,0.456,0.406, got '{text}'.") from None
-    if len(vals) != 3:
-        raise UnitlensError(f"--{name} takes three numbers (R,G,B), got {len(vals)}.")
-    return vals
+        raise UnitlensError(f"--{name} takes one number per input channel, like 0.485,0.456,0.406 (RGB) or 0.5 "
+                            f"(grey), got '{text}'.") from None
+
+
+def _size(text):
+    if text is None or isinstance(text, int):
+        return text
+    from .errors import UnitlensError
+
+    parts = text.lower().split("x")
+    if len(parts) > 2 or not all(p.strip().isdigit() for p in parts):
+        raise UnitlensError(f"--size takes N (a square input) or HxW (height x width, e.g. 96x160), got '{text}'.")
+    return int(parts[0]) if len(parts) == 1 else (int(parts[0]), int(parts[1]))
 
 
 def _arch_options(items: Optional[list[str]]) -> dict:
@@ -67,7 +77,7 @@ def place(model, device: str):
 def _load(model, weights, size, mean, std, allow_pickle, arch_option):
     from . import load_model
 
-    return load_model(model, weights, size=size, mean=_triple(mean, "mean"), std=_triple(std, "std"),
+    return load_model(model, weights, size=_size(size), mean=_numbers(mean, "mean"), std=_numbers(std, "std"),
                       allow_pickle=allow_pickle, arch_options=_arch_options(arch_option))
 
 
@@ -89,8 +99,8 @@ def _model_layers_corpus(model, weights, size, mean, std, allow_pickle, arch_opt
 # -- commands ------------------------------------------------------------------------------
 @app.command()
 def layers(
-    model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    model: str = typer.Argument(..., metavar="MODEL", help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
     as_json: bool = Json,
 ):
@@ -113,9 +123,10 @@ def layers(
         print(json.dumps(rows, indent=1))
         return
     p = m.preprocess
-    print(f"{m.spec}  input 3x{p.size}x{p.size}  ({p.source})")
+    print(f"{m.spec}  input {p.channels}x{p.size[0]}x{p.size[1]}  ({p.source})")
     print(f"{'layer':<34} {'C x H x W':>16} {'field':>9} {'stride':>7} {'offset':>8}  kind")
     reused = {r["module"] for r in rows if r["call"]}
+    wide = pooled = False
     for r in rows:
         shape = f"{r['channels']}x{r['height']}x{r['width']}"
         fs = "x".join(map(str, dict.fromkeys(r["rf_size_hw"]))) if r["rf_size_hw"] else "?"
@@ -124,16 +135,26 @@ def layers(
         kind = ["block" if r["block"] else "op"]
         kind += [f"call {r['call'] + 1} of {r['module']}"] if r["module"] in reused else []
         kind += {"NHWC": ["channels-last"], "?": ["layout unknown: not selectable"]}.get(r["layout"], [])
+        if r["rf_stride_hw"] and 0 in r["rf_stride_hw"]:  # geometry's mark of a global pool
+            fs, st, off, pooled = "global", "-", "-", True
+        elif r["rf_size"] and r["rf_size"] > max(p.size):
+            fs, wide = fs + "*", True
         print(f"{r['name']:<34} {shape:>16} {fs:>9} {st:>7} {off:>8}  {', '.join(kind)}")
+    if wide:
+        print(f"* wider than the {p.size_text()} px input: the field counts the padding beyond the edges; "
+              "crops are clipped to the image.")
+    if pooled:
+        print("global: every value pools the whole input (as a global average pool does), so each "
+              "position's crop is the whole image.")
     for note in layer_notes(m):
         print(note)
 
 
 @app.command("mine")
 def mine_cmd(
-    model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
+    model: str = typer.Argument(..., metavar="MODEL", help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
     corpus: Path = typer.Option(..., "--corpus", help="Folder of images (searched recursively) or a text file of paths."),
-    layers: list[str] = typer.Option(..., "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
+    layers: list[str] = typer.Option(..., "--layers", metavar="LAYERS", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
     out: Path = typer.Option(..., "--out", help="Run folder to write (resumed if it exists)."),
     units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
     top: int = typer.Option(16, "--top", min=1, help="Exemplars kept per unit (top and bottom)."),
@@ -144,7 +165,7 @@ def mine_cmd(
     force: bool = typer.Option(False, "--force", help="Start the run folder's mining over."),
     checkpoint_every: float = typer.Option(5.0, "--checkpoint-every", min=0.0, help="Seconds between saved checkpoints."),
     dedupe: bool = Dedupe, device: str = Device,
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Pass 1: find each unit's top- and bottom-activating images and their crops."""
@@ -168,8 +189,8 @@ def mine_cmd(
 
 @app.command()
 def show(
-    run: Path = typer.Argument(..., help="A run folder."),
-    unit: str = typer.Argument(..., help="LAYER:CHANNEL, e.g. layer3:37."),
+    run: Path = typer.Argument(..., metavar="RUN", help="A run folder."),
+    unit: str = typer.Argument(..., metavar="UNIT", help="LAYER:CHANNEL, e.g. layer3:37."),
     as_json: bool = Json,
 ):
     """Print one unit's exemplars and statistics."""
@@ -205,9 +226,9 @@ def show(
 
 @app.command("run")
 def run_cmd(
-    model: str = typer.Argument(..., help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
+    model: str = typer.Argument(..., metavar="MODEL", help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),
     corpus: Path = typer.Option(..., "--corpus", help="Folder of images (searched recursively) or a text file of paths."),
-    layers: list[str] = typer.Option(..., "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
+    layers: list[str] = typer.Option(..., "--layers", metavar="LAYERS", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable)."),
     out: Path = typer.Option(..., "--out", help="Run folder (resumed if it exists)."),
     units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
     top: int = typer.Option(16, "--top", min=1, help="Exemplars kept per unit (top and bottom)."),
@@ -219,8 +240,9 @@ def run_cmd(
     batch_size: int = typer.Option(32, "--batch-size", min=1, help="Images per forward pass when mining."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    force: bool = typer.Option(False, "--force", help="Start the run folder's mining and synthesis over."),
     dedupe: bool = Dedupe, device: str = Device,
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Mine, synthesise and draw the atlas in one resumable command (kill it and run it again)."""
@@ -232,18 +254,18 @@ def run_cmd(
                                         layers, units, corpus, labels, device, threads)
     run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
                   SynthConfig(steps=steps, size=synth_size, seed=seed), budget=budget,
-                  progress=sys.stderr.isatty())
+                  progress=sys.stderr.isatty(), force=force)
     print(run.path / "atlas" / "index.html")
 
 
 @app.command("synth")
 def synth(
-    target: str = typer.Argument(..., help="A run folder (model and units from its manifest), or a MODEL (then give --layers and --out)."),
-    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable; default: those mined)."),
+    target: str = typer.Argument(..., metavar="TARGET", help="A run folder (model and units from its manifest), or a MODEL (then give --layers and --out)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Layer names, comma-separated, or LAYER:CHANNELS (repeatable; default: those mined)."),
     units: Optional[str] = typer.Option(None, "--units", help="Channels for layers given without any, e.g. 0-63,100."),
     out: Optional[Path] = typer.Option(None, "--out", help="Run folder to write when TARGET is a model (resumed if it exists)."),
     steps: int = typer.Option(256, "--steps", min=1, help="Adam steps per image at most (Olah et al. 2017 used 2560)."),
-    size: Optional[int] = typer.Option(None, "--size", help="Image size in px (default: the model's input size; for a MODEL also its input size)."),
+    synth_size: Optional[int] = typer.Option(None, "--synth-size", help="Synthesised image size in px (default: the model's input size)."),
     per_unit: int = typer.Option(1, "--per-unit", min=1, help="Images per unit."),
     seed: int = typer.Option(0, "--seed", help="Seed; a unit's images depend only on it, the layer, the channel and the image number."),
     basis: str = typer.Option("spectral", "--basis", help="What the optimiser moves: spectral (Fourier coefficients scaled 1/f, whitened colour) or pixel (plain RGB)."),
@@ -260,8 +282,8 @@ def synth(
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
     force: bool = typer.Option(False, "--force", help="Redo synthesised images made with other settings."),
     device: str = Device,
-    weights: Optional[str] = Weights, mean: Optional[str] = Mean, std: Optional[str] = Std,
-    allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
+    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
 ):
     """Pass 2: synthesise images that drive each unit, many units per batch."""
     import torch
@@ -280,7 +302,8 @@ def synth(
     if run_dir.is_dir():
         if out is not None:
             raise UnitlensError(f"{target} is a run folder; --out is for synthesising from a MODEL.")
-        given = [n for n, v in (("--weights", weights), ("--mean", mean), ("--std", std), ("--arch-option", arch_option)) if v]
+        given = [n for n, v in (("--weights", weights), ("--size", size), ("--mean", mean), ("--std", std),
+                                ("--arch-option", arch_option)) if v]
         if given:
             raise UnitlensError(f"{target} is a run folder, whose manifest names the model; {', '.join(given)} "
                                 "apply only when TARGET is a model.")
@@ -296,7 +319,7 @@ def synth(
         run_dir = out
     chosen = goal.layers(m, Run(run_dir).manifest() if Run(run_dir).exists() else None)
     place(m, device)
-    config = SynthConfig(steps=steps, size=size, per_unit=per_unit, seed=seed, lr=lr, basis=basis,
+    config = SynthConfig(steps=steps, size=synth_size, per_unit=per_unit, seed=seed, lr=lr, basis=basis,
                          warps=Warps.none() if no_warps else Warps(),
                          blur_period=blur_period, stop_gain=SynthConfig.stop_gain if early_stop else None,
                          batch_size=batch_size)
@@ -313,8 +336,8 @@ def compare_cmd(
     weights_a: Optional[str] = typer.Option(None, "--weights-a", help="Weights of model A: state-dict file or torchvision weights name."),
     weights_b: Optional[str] = typer.Option(None, "--weights-b", help="Weights of model B."),
     corpus: Optional[Path] = typer.Option(None, "--corpus", help="Probe images for two models (runs carry their corpus)."),
-    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Layers of A (and of B without --layers-b), comma-separated; LAYER:CHANNELS limits the unit tables. Runs: default, all mined in both."),
-    layers_b: Optional[list[str]] = typer.Option(None, "--layers-b", help="Layers of B, paired with --layers in depth order (e.g. another architecture)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Layers of A (and of B without --layers-b), comma-separated; LAYER:CHANNELS limits the unit tables. Runs: default, all mined in both."),
+    layers_b: Optional[list[str]] = typer.Option(None, "--layers-b", metavar="LAYERS", help="Layers of B, paired with --layers in depth order (e.g. another architecture)."),
     out: Optional[Path] = typer.Option(None, "--out", help="Folder for compare.json and the CSV tables (runs: default RUN_A/compare/<RUN_B name>)."),
     full_maps: bool = typer.Option(False, "--full-maps", help="Also CKA of whole feature maps (minibatch estimator, unbiased HSIC)."),
     top: int = typer.Option(16, "--top", min=1, help="Size of the top exemplar sets whose overlap (Jaccard) is reported."),
@@ -322,9 +345,10 @@ def compare_cmd(
     batch_size: int = typer.Option(64, "--batch-size", min=1, help="Images per forward pass (the minibatch of --full-maps)."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
-    size: Optional[int] = typer.Option(None, "--size", help="Input size of both models (default: from the weights' metadata)."),
+    size: Optional[str] = typer.Option(None, "--size", help="Input size of both models, N or HxW (default: from the weights' metadata)."),
     mean: Optional[str] = typer.Option(None, "--mean", help="Normalisation mean of both models, R,G,B."),
     std: Optional[str] = typer.Option(None, "--std", help="Normalisation std of both models, R,G,B."),
+    arch_option: Optional[list[str]] = typer.Option(None, "--arch-option", metavar="KEY=VALUE", help="Constructor option for torchvision models, key=value, for both models (repeatable)."),
     allow_pickle: bool = AllowPickle, as_json: bool = Json, device: str = Device,
 ):
     """Compare two checkpoints (or two mined runs) on one corpus: CKA per layer, drift per unit."""
@@ -338,7 +362,7 @@ def compare_cmd(
     config = CompareConfig(top_k=top, full_maps=full_maps, bootstrap=bootstrap, batch_size=batch_size, workers=workers)
     if Path(a).is_dir() or Path(b).is_dir():
         given = [n for n, v in (("--weights-a", weights_a), ("--weights-b", weights_b), ("--size", size),
-                                ("--mean", mean), ("--std", std)) if v]
+                                ("--mean", mean), ("--std", std), ("--arch-option", arch_option)) if v]
         if given:
             raise UnitlensError(f"{', '.join(given)} apply to models; a run folder's manifest names its model.")
         s = compare(a, b, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
@@ -346,8 +370,8 @@ def compare_cmd(
     else:
         if out is None:
             raise UnitlensError("Comparing two models writes a folder: give --out DIR.")
-        ma = place(_load(a, weights_a, size, mean, std, allow_pickle, None), device)
-        mb = place(_load(b, weights_b, size, mean, std, allow_pickle, None), device)
+        ma = place(_load(a, weights_a, size, mean, std, allow_pickle, arch_option), device)
+        mb = place(_load(b, weights_b, size, mean, std, allow_pickle, arch_option), device)
         s = compare(ma, mb, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
                     progress=sys.stderr.isatty())
     if as_json:
@@ -366,8 +390,8 @@ def compare_cmd(
 
 @app.command("atlas")
 def atlas_cmd(
-    run: Path = typer.Argument(..., help="A run folder (mined, synthesised, or both), or a folder written by `compare`."),
-    layers: Optional[list[str]] = typer.Option(None, "--layers", help="Redraw only these layers, comma-separated (repeatable; default: all)."),
+    run: Path = typer.Argument(..., metavar="RUN", help="A run folder (mined, synthesised, or both), or a folder written by `compare`."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Redraw only these layers, comma-separated (repeatable; default: all)."),
 ):
     """Draw the run's static HTML atlas into RUN/atlas/ (opens from file://, no server, no network).
 
@@ -380,8 +404,8 @@ def atlas_cmd(
 
 @app.command("probe")
 def probe_cmd(
-    target: str = typer.Argument(..., help="A model (then give --corpus and --out, or --image), or a mined run folder."),
-    unit: Optional[str] = typer.Argument(None, help="LAYER:CHANNEL, e.g. layer3:37 (leave out with --image)."),
+    target: str = typer.Argument(..., metavar="TARGET", help="A model (then give --corpus and --out, or --image), or a mined run folder."),
+    unit: Optional[str] = typer.Argument(None, metavar="UNIT", help="LAYER:CHANNEL, e.g. layer3:37 (leave out with --image)."),
     corpus: Optional[Path] = typer.Option(None, "--corpus", help="Images to mine the unit over (a model only)."),
     out: Optional[Path] = typer.Option(None, "--out", help="Run folder to write (a model only; resumed if it exists)."),
     top: int = typer.Option(9, "--top", min=1, help="Exemplars to keep and print; with --image, units to list."),
@@ -401,7 +425,7 @@ def probe_cmd(
     labels: Optional[str] = typer.Option(None, "--labels", help="'folders': class labels from first-level subfolders."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
-    weights: Optional[str] = Weights, size: Optional[int] = Size, mean: Optional[str] = Mean,
+    weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
     as_json: bool = Json,
 ):
@@ -454,6 +478,7 @@ def demo_cmd(
     steps: Optional[int] = typer.Option(None, "--steps", min=1, help="Optimisation steps per synthesised image, at most (default 128)."),
     units: Optional[int] = typer.Option(None, "--units", min=1, help="Only the first N units of each layer (default: all 208)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help="Torch compute threads."),
+    force: bool = typer.Option(False, "--force", help="Start the run over (the generated corpus is kept if it fits)."),
 ):
     """Build a whole atlas of the shipped swatch network on generated swatches (no downloads), print its path."""
     import torch
@@ -463,7 +488,7 @@ def demo_cmd(
     if threads:
         torch.set_num_threads(threads)
     given = {k: v for k, v in (("count", count), ("steps", steps)) if v is not None}
-    print(build_demo(out, units=units, progress=sys.stderr.isatty(), **given))
+    print(build_demo(out, units=units, progress=sys.stderr.isatty(), force=force, **given))
 
 
 def _one_line_on_interrupt(command):
@@ -513,7 +538,6 @@ def report_to_stderr():
     with warnings.catch_warnings():
         other = warnings.showwarning
         warnings.showwarning = show
-        warnings.simplefilter("always", UnitlensWarning)  # every crop that failed, not the first of each line
         try:
             yield
         finally:

@@ -12,7 +12,7 @@ and firing rate (max > 0), the Jaccard overlap of the top-K exemplar sets, and a
 
 Memory: never N x C x H x W. A sweep keeps per chosen layer and model the per-image channel means
 and maxima of all channels, (N, C) float32 each; cross-products are accumulated in float64 over
-row chunks, so run folders' float16 memory maps are read, not copied. Whole-map CKA holds one
+row chunks, so run folders' memory maps are read, not copied. Whole-map CKA holds one
 batch's (B, B) Gram matrix per layer and keeps a few numbers per layer pair per minibatch. The
 pooled-CKA interval reweights (m, m) float64 Gram matrices, m <= bootstrap_images (2048: ~35 MB each).
 The estimators themselves live in `_cka.py`.
@@ -186,9 +186,9 @@ def _plan_models(a, b, corpus, layers, layers_b) -> _Plan:
                                 "give as many of each (they are paired in depth order).")
     else:
         names_b = [b.layer(n).name for n in names_a]
-    if a.preprocess.size != b.preprocess.size:
-        raise UnitlensError(f"Model A takes {a.preprocess.size} px inputs and model B {b.preprocess.size} px; "
-                            "both must see the same images. Give both one size with --size.")
+    if a.preprocess.frame != b.preprocess.frame:
+        raise UnitlensError(f"Model A takes {_input_text(a)} inputs and model B {_input_text(b)}; both must see "
+                            "the same images. Give both one size with --size.")
     corpus = corpus if isinstance(corpus, Corpus) else open_corpus(corpus)
     plan = _Plan(
         corpus=corpus, ok=np.ones(len(corpus), dtype=bool), names_a=names_a, names_b=names_b,
@@ -201,6 +201,11 @@ def _plan_models(a, b, corpus, layers, layers_b) -> _Plan:
     for side, names in (("a", names_a), ("b", names_b)):
         plan.need[side] = {n: {"pooled", "maxima"} if n in units else {"pooled"} for n in names}
     return plan
+
+
+def _input_text(model) -> str:
+    p = model.preprocess
+    return f"{p.size_text()} px {'RGB' if p.channels == 3 else 'grey'} ({p.interpolation})"
 
 
 def _layer_names(texts, flag: str) -> list[str]:
@@ -249,6 +254,8 @@ def _model_from_run(run: Run, allow_pickle: bool):
 
 
 def _plan_runs(ra: Run, rb: Run, layers, layers_b, full_maps: bool, allow_pickle: bool) -> _Plan:
+    from ._specs import canonical_spec
+
     ma, mb = ra.manifest(), rb.manifest()
     for label, r, m in (("A", ra, ma), ("B", rb, mb)):
         if not (m.get("mine") or {}).get("done"):
@@ -281,7 +288,7 @@ def _plan_runs(ra: Run, rb: Run, layers, layers_b, full_maps: bool, allow_pickle
         corpus=corpus, ok=_skipped_mask(corpus, (ma, mb)), names_a=names_a, names_b=names_b,
         chosen={n: held["a"][n].units for n in names_a}, held=held,
         loaders={"a": lambda: _model_from_run(ra, allow_pickle), "b": lambda: _model_from_run(rb, allow_pickle)},
-        same_architecture=(ma["model"]["spec"] == mb["model"]["spec"]
+        same_architecture=(canonical_spec(ma["model"]["spec"]) == canonical_spec(mb["model"]["spec"])
                            and (ma["model"].get("arch_options") or {}) == (mb["model"].get("arch_options") or {})),
         sides={"a": {"source": "run", "run": str(ra.path), "model": ma["model"]},
                "b": {"source": "run", "run": str(rb.path), "model": mb["model"]}},
@@ -323,9 +330,9 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
     if not sides:
         return None
     models = {s: plan.model(s) for s in sides}
-    sizes = {models[s].preprocess.size for s in sides}
+    sizes = {models[s].preprocess.frame for s in sides}
     if len(sizes) > 1:
-        raise UnitlensError(f"The two runs' models take different input sizes ({' and '.join(map(str, sorted(sizes)))} px), "
+        raise UnitlensError(f"The two runs' models take different inputs ({' and '.join(_input_text(models[s]) for s in sides)}), "
                             "so recomputed features would not come from the same images. Compare the models with one --size.")
     size = sizes.pop()
     names = {"a": plan.names_a, "b": plan.names_b}

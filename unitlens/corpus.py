@@ -3,7 +3,7 @@ remember how each input was cut from its original file so crops can go back to i
 
 >>> corpus = open_corpus("photos/", labels="folders")          # doctest: +SKIP
 >>> for batch in batches(corpus, size=224):                      # doctest: +SKIP
-...     batch.images.shape, batch.failures                       # (B, 3, 224, 224) uint8, [(i, reason)]
+...     batch.images.shape, batch.failures                       # (B, C, H, W) uint8, [(i, reason)]
 """
 from __future__ import annotations
 
@@ -17,13 +17,15 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from functools import partial
 from pathlib import Path, PurePosixPath
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
 
 import numpy as np
-import torch
 from PIL import Image, ImageOps, UnidentifiedImageError
 
 from .errors import UnitlensError
+
+if TYPE_CHECKING:
+    import torch
 
 IMAGE_EXTENSIONS = (".jpg", ".jpeg", ".png", ".webp", ".bmp", ".tif", ".tiff", ".gif")
 LABEL_CHOICES = (None, "folders")
@@ -305,12 +307,38 @@ def _to_8bit(a: np.ndarray, sixteen_bit: bool) -> np.ndarray:
 
 # ----------------------------------------------------------------------------- geometry of the input
 
+RESAMPLING = ("bilinear", "bicubic", "nearest", "lanczos", "box", "hamming")
+
+
+@dataclass(frozen=True)
+class Frame:
+    """The network input an image is brought to: height x width pixels of `channels` (1: grey,
+    3: RGB), resized with `resample` (a PIL filter name). An int size n means Frame(n, n)."""
+    height: int
+    width: int
+    channels: int = 3
+    resample: str = "bilinear"
+
+    @property
+    def side(self) -> int:
+        """The longer side: an original whose shorter side has this many pixels covers the frame."""
+        return max(self.height, self.width)
+
+
+def as_frame(size: int | tuple[int, int] | Frame) -> Frame:
+    if isinstance(size, Frame):
+        return size
+    if isinstance(size, int):
+        return Frame(size, size)
+    return Frame(int(size[0]), int(size[1]))
+
+
 @dataclass(frozen=True)
 class Placement:
-    """How a network input of size x size was cut from the original image (after EXIF orientation)."""
+    """How a network input was cut from the original image (after EXIF orientation)."""
     width: int
     height: int    # original image size, EXIF orientation applied
-    scale: float   # network-input pixels per original pixel
+    scale: float   # network-input pixels per original pixel (the same along x and y)
     left: float
     top: float     # offset, in network-input pixels, of the centre crop within the resized image
 
@@ -324,26 +352,41 @@ class Placement:
                 min(max(math.ceil(u1 - eps), 0), w), min(max(math.ceil(v1 - eps), 0), h))
 
 
-def fit(img: Image.Image, size: int, original: tuple[int, int]) -> tuple[np.ndarray, Placement]:
-    """Resize the shorter side to `size`, centre-crop size x size. Returns uint8 (3, size, size) and
-    the Placement in ORIGINAL pixels, even when `img` is a draft-reduced decode of it."""
+def fit(img: Image.Image, size: int | tuple[int, int] | Frame, original: tuple[int, int]
+        ) -> tuple[np.ndarray, Placement]:
+    """Scale the original by one factor until it covers the frame (for a square frame: its shorter
+    side to the frame's), centre-crop the frame. Returns uint8 (C, H, W) and the Placement in
+    ORIGINAL pixels, even when `img` is a draft-reduced decode of it. One factor for both axes
+    keeps every box mapping back exactly, also for non-square frames."""
+    f = as_frame(size)
     width, height = original
-    side = min(width, height)
-    x0, y0 = (width - side) / 2, (height - side) / 2  # the centred square, in original pixels
+    cw, ch = _covered(width, height, f)
+    x0, y0 = (width - cw) / 2, (height - ch) / 2  # the centred region, in original pixels
     rx, ry = _reduction(img.size, original)
-    # Resampling straight from that square (PIL takes a float box) keeps the crop exact; bilinear
+    # Resampling straight from that region (PIL takes a float box) keeps the crop exact; bilinear
     # is what torchvision's Resize uses, and PIL widens the filter when shrinking (antialiased).
-    out = img.resize((size, size), Image.Resampling.BILINEAR,
-                     box=(x0 * rx, y0 * ry, (x0 + side) * rx, (y0 + side) * ry))
-    pixels = np.ascontiguousarray(np.asarray(out, dtype=np.uint8).transpose(2, 0, 1))  # (3, S, S)
-    return pixels, placement(width, height, size)
+    out = img.resize((f.width, f.height), Image.Resampling[f.resample.upper()],
+                     box=(x0 * rx, y0 * ry, (x0 + cw) * rx, (y0 + ch) * ry))
+    if f.channels == 1:
+        out = out.convert("L")  # ITU-R 601 luma, as PIL converts; grey originals come back unchanged
+    a = np.asarray(out, dtype=np.uint8).reshape(f.height, f.width, -1)  # (H, W, C)
+    # one copy at most: a grey (H, W, 1) transposes to a contiguous but read-only view of PIL's buffer
+    return np.require(a.transpose(2, 0, 1), requirements=["C", "W"]), placement(width, height, f)  # (C, H, W)
 
 
-def placement(width: int, height: int, size: int) -> Placement:
-    """The Placement `fit` gives an image of this original size: the centred square, scaled to `size`."""
-    side = min(width, height)
-    scale = size / side
-    return Placement(width, height, scale, (width - side) / 2 * scale, (height - side) / 2 * scale)
+def _covered(width: int, height: int, f: Frame) -> tuple[float, float]:
+    """Width and height, in original pixels, of the centred region the frame shows."""
+    if f.width * height <= f.height * width:  # the original is wider than the frame: its height fits
+        return f.width * height / f.height, float(height)
+    return float(width), f.height * width / f.width
+
+
+def placement(width: int, height: int, size: int | tuple[int, int] | Frame) -> Placement:
+    """The Placement `fit` gives an image of this original size: the centred region, scaled to the frame."""
+    f = as_frame(size)
+    cw, ch = _covered(width, height, f)
+    scale = f.height / ch if ch == height else f.width / cw
+    return Placement(width, height, scale, (width - cw) / 2 * scale, (height - ch) / 2 * scale)
 
 
 def _reduction(size: tuple[int, int], original: tuple[int, int]) -> tuple[float, float]:
@@ -360,17 +403,20 @@ def _reduction(size: tuple[int, int], original: tuple[int, int]) -> tuple[float,
 
 class Batch(NamedTuple):
     indices: torch.Tensor            # (B,) int64 corpus indices of the decoded images
-    images: torch.Tensor             # (B, 3, S, S) uint8
+    images: torch.Tensor             # (B, C, H, W) uint8
     placements: list[Placement]      # B of them
     failures: list[tuple[int, str]]  # (corpus index, reason) of files that could not be used
 
 
-class CorpusDataset(torch.utils.data.Dataset):
-    """Item k: (corpus index, uint8 (3, S, S) or None, Placement or None, reason or None)."""
+class CorpusDataset:
+    """Item k: (corpus index, uint8 (C, H, W) or None, Placement or None, reason or None).
 
-    def __init__(self, corpus: Corpus, size: int, indices: Sequence[int] | None = None,
+    A map-style dataset for torch's DataLoader (which needs only __len__ and __getitem__); not a
+    subclass of torch's Dataset, so reading a run's corpus (`show`, the atlas) never imports torch."""
+
+    def __init__(self, corpus: Corpus, size: int | tuple[int, int] | Frame, indices: Sequence[int] | None = None,
                  max_pixels: int = DEFAULT_MAX_PIXELS):
-        self.corpus, self.size, self.max_pixels = corpus, size, max_pixels
+        self.corpus, self.frame, self.max_pixels = corpus, as_frame(size), max_pixels
         self.indices = range(len(corpus)) if indices is None else list(indices)
 
     def __len__(self) -> int:
@@ -379,20 +425,25 @@ class CorpusDataset(torch.utils.data.Dataset):
     def __getitem__(self, k: int):
         i = self.indices[k]
         try:
-            img, original = _decode(self.corpus.path(i), self.size, self.max_pixels)
+            img, original = _decode(self.corpus.path(i), self.frame.side, self.max_pixels)
         except ImageProblem as problem:
             return i, None, None, problem.reason
-        pixels, placement = fit(img, self.size, original)
+        import torch
+
+        pixels, placement = fit(img, self.frame, original)
         return i, torch.from_numpy(pixels), placement, None
 
 
-def collate(items, size: int | None = None) -> Batch:
+def collate(items, size: int | tuple[int, int] | Frame = 0) -> Batch:
     """Stack the decoded items; `size` shapes the empty tensor of a batch where every file failed."""
+    import torch
+
     good = [item for item in items if item[3] is None]
     if good:
         images = torch.stack([pixels for _, pixels, _, _ in good])
     else:
-        images = torch.empty((0, 3, size or 0, size or 0), dtype=torch.uint8)
+        f = as_frame(size)
+        images = torch.empty((0, f.channels, f.height, f.width), dtype=torch.uint8)
     return Batch(torch.tensor([i for i, *_ in good], dtype=torch.long), images,
                  [placement for _, _, placement, _ in good],
                  [(i, reason) for i, _, _, reason in items if reason is not None])
@@ -403,15 +454,17 @@ def default_workers() -> int:
     return min(4, max(cpus - 1, 0))  # leave one core for the network
 
 
-def batches(corpus: Corpus, size: int, start: int = 0, batch_size: int = 32, workers: int | None = None,
+def batches(corpus: Corpus, size: int | tuple[int, int] | Frame, start: int = 0, batch_size: int = 32, workers: int | None = None,
             max_pixels: int = DEFAULT_MAX_PIXELS, indices: Sequence[int] | None = None) -> Iterator[Batch]:
     """Decode corpus[start:] (or the `indices` from `start` on, e.g. one rank's shard) in DataLoader
     workers, in corpus order. Bad files come back in Batch.failures and never stop the run; a batch
     may hold zero images."""
     if not 0 <= start <= len(corpus):
         raise ValueError(f"start {start} outside the corpus (0-{len(corpus)})")
+    from torch.utils.data import DataLoader
+
     todo = range(start, len(corpus)) if indices is None else [i for i in indices if i >= start]
     dataset = CorpusDataset(corpus, size, todo, max_pixels)
-    yield from torch.utils.data.DataLoader(
+    yield from DataLoader(
         dataset, batch_size=batch_size, shuffle=False, collate_fn=partial(collate, size=size),
         num_workers=default_workers() if workers is None else workers)

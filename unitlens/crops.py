@@ -26,12 +26,16 @@ SHEET_MEMORY = 512 * 2**20
 _WORKERS = min(8, os.cpu_count() or 1)  # Pillow decodes and resizes with the GIL released
 
 
-def input_box(field, y: int, x: int, size: int) -> tuple[float, float, float, float]:
-    """Receptive-field box of feature position (y, x), in network-input pixels, clipped to the input."""
+def input_box(field, y: int, x: int, size) -> tuple[float, float, float, float]:
+    """Receptive-field box of feature position (y, x), in network-input pixels, clipped to the input
+    (`size`: an int, (height, width) or a corpus.Frame)."""
+    from .corpus import as_frame
+
+    f = as_frame(size)
     if field is None:  # unknown field: the whole input is the honest answer
-        return (0.0, 0.0, float(size), float(size))
+        return (0.0, 0.0, float(f.width), float(f.height))
     x0, y0, x1, y1 = field.box(int(y), int(x))
-    return (float(max(x0, 0)), float(max(y0, 0)), float(min(x1, size)), float(min(y1, size)))
+    return (float(max(x0, 0)), float(max(y0, 0)), float(min(x1, f.width)), float(min(y1, f.height)))
 
 
 def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
@@ -45,7 +49,7 @@ def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
     return np.asarray(canvas)
 
 
-def image_cells(path: Path, entries, size: int, thumb: int):
+def image_cells(path: Path, entries, size, thumb: int):
     """Decode one image and cut every cell it is needed for. entries: [(input-pixel box, need)],
     where `need` is the decode size (see _plan) the entry's sheet asks of this image.
 
@@ -53,8 +57,9 @@ def image_cells(path: Path, entries, size: int, thumb: int):
     draft gives different pixels, so entries are grouped by the draft their `need` selects and the
     image is decoded once per group: once in all for formats without drafts, and in practice once
     for a JPEG unless its crops differ a lot in size. Returns (boxes, cells, reason)."""
-    from .corpus import ImageProblem, decode_original, placement
+    from .corpus import ImageProblem, as_frame, decode_original, placement
 
+    grey = as_frame(size).channels == 1  # a grey model's crops show what it saw, not the file's colours
     needs = sorted({n for *_, n in entries})
     key = {n: n for n in needs} if len(needs) == 1 else _draft_sizes(path, needs)
     boxes: list = [None] * len(entries)
@@ -65,6 +70,8 @@ def image_cells(path: Path, entries, size: int, thumb: int):
             img, (W, H), (rx, ry) = decode_original(path, size=max(entries[j][1] for j in group))
         except ImageProblem as e:
             return None, None, e.reason
+        if grey:
+            img = img.convert("L").convert("RGB")
         place = placement(W, H, size)
         for j in group:
             b = place.to_original(entries[j][0])
@@ -89,12 +96,16 @@ def _draft_sizes(path: Path, needs) -> dict:
     return out
 
 
-def _plan(idx, n_images: int, field, size: int, thumb: int):
+def _plan(idx, n_images: int, field, size, thumb: int):
     """Every crop of one layer's index: (kinds, cols, {sheet: {image: [(u, col, kind, r, box, need)]}}).
 
     `box` is in network-input pixels. `need` is the decode size of the (sheet, image) pair: only as
-    large as its smallest crop needs to fill a thumbnail. An input-pixel box of side b shows
-    (short side / size) * b original pixels, so thumb * size / b pixels on the short side do."""
+    large as its smallest crop needs to fill a thumbnail. An input-pixel box of side b shows at most
+    (short side / side) * b original pixels (side: the input's longer side), so thumb * side / b
+    pixels on the short side do."""
+    from .corpus import as_frame
+
+    side = as_frame(size).side
     U, K = idx["top_image"].shape
     negative = bool((idx["low"] < 0).any())
     kinds = [("top", 0)] + ([("bottom", K)] if negative else [])
@@ -108,7 +119,7 @@ def _plan(idx, n_images: int, field, size: int, thumb: int):
     for per_image in wanted.values():
         for i, es in per_image.items():
             smallest = min(max(1.0, min(b[2] - b[0], b[3] - b[1])) for *_, b in es)
-            need = int(np.ceil(thumb * size / smallest))
+            need = int(np.ceil(thumb * side / smallest))
             per_image[i] = [(*e, need) for e in es]
     return kinds, K * len(kinds), wanted
 
@@ -124,7 +135,7 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
     from ._progress import Progress
     from .store import read_npz
 
-    size = model.preprocess.size
+    size = model.preprocess.frame
     plans, sheets = [], []  # sheets: (plan number, sheet number, rows)
     for lu in layers:
         idx = read_npz(run.layer_dir(lu.layer) / "index.npz")

@@ -358,7 +358,7 @@ def shutdown() -> None:
 def merge_tallies(g: Group, tallies: dict, colour: list, skipped: list, files) -> tuple | None:
     """Rank 0 gets the exact merge of every rank's mining state; the others get None.
 
-    tallies {layer: LayerTally}; colour [sum (3,), outer (3, 3), n]; skipped [(file, reason)],
+    tallies {layer: LayerTally}; colour [sum (C,), outer (C, C), n]; skipped [(file, reason)],
     returned in corpus order (`files`: the corpus's file list) as one process lists them.
     """
     if g.world == 1:
@@ -374,7 +374,7 @@ def merge_tallies(g: Group, tallies: dict, colour: list, skipped: list, files) -
         return LayerTally(tuple(t.units.tolist()), 0, t.width, t.k, t.class_count.numel())
 
     merged = {name: blank(t) for name, t in tallies.items()}
-    total = [torch.zeros(3, dtype=torch.float64), torch.zeros(3, 3, dtype=torch.float64), 0]
+    total = [torch.zeros_like(colour[0]), torch.zeros_like(colour[1]), 0]  # (C,), (C, C): RGB or grey
     bad = []
     for states, (s, o, n), sk in parts:  # rank order; the merge itself does not depend on it
         for name, t in merged.items():

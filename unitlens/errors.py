@@ -25,16 +25,20 @@ class UnitlensError(Exception):
         self.status = status
 
 
-class UnitlensWarning(UserWarning):
-    """Something the user should know that does not stop the command."""
-
-
 log = logging.getLogger("unitlens")
 
 
 def interrupted(message: str) -> UnitlensError:
     """The error for Ctrl-C: `message` says how far the command got and what was kept."""
     return UnitlensError(f"Interrupted {message}", status=130)
+
+
+class UnitlensWarning(UserWarning):
+    """Something the user should know that does not stop the work (e.g. random weights).
+
+    The library issues it through `warnings` (shown once per distinct message by default); the
+    CLI prints it as one ``Warning: ...`` line.
+    """
 
 
 def closest(name: str, choices: Iterable[str], n: int = 3) -> list[str]:

@@ -4,7 +4,7 @@ Everything that searches or clusters goes through faiss (imported inside the fun
 importing this module stays cheap); numpy checks the borderline cases exactly.
 
 Embedding of a layer: each image's spatially pooled feature map (the mean of every channel over
-space). A layer of at most EMBED_DIM channels keeps them as they are (float16); a wider one is
+space). A layer of at most EMBED_DIM channels keeps them as they are (float32); a wider one is
 reduced to EMBED_DIM dimensions by PCA fitted on at most PCA_SAMPLE images spread evenly over
 the corpus. When every channel of a narrow layer was mined, mining's means.npy already is the
 embedding and nothing more is written. Search space: the embedding minus its corpus mean,
@@ -44,7 +44,7 @@ PAD = 2**62  # as in mining: an empty slot
 # -- near-duplicates ---------------------------------------------------------------------------
 
 def thumbnails(images: torch.Tensor) -> np.ndarray:
-    """uint8 (B, 3, H, W) network inputs -> uint8 (B, 3*THUMB*THUMB) area-averaged thumbnails."""
+    """uint8 (B, C, H, W) network inputs -> uint8 (B, C*THUMB*THUMB) area-averaged thumbnails."""
     t = torch.nn.functional.adaptive_avg_pool2d(images.float(), THUMB)  # pixel sums are exact in float32
     return t.round().clamp(0, 255).to(torch.uint8).reshape(len(images), -1).numpy()
 
@@ -147,9 +147,9 @@ def finish_embedding(layer_dir: Path, skipped: np.ndarray) -> dict:
             sample = ok[np.linspace(0, len(ok) - 1, min(len(ok), PCA_SAMPLE)).round().astype(int)] if len(ok) else ok
             mean, comp = _pca(x[sample].astype(np.float64), EMBED_DIM)
             path, tmp = layer_dir / "embed.npy", layer_dir / ".embed.npy.tmp"
-            out = new_array(tmp, (N, comp.shape[0]), np.float16)
+            out = new_array(tmp, (N, comp.shape[0]), np.float32)
             for a in range(0, N, 8192):
-                out[a:a + 8192] = np.clip((x[a:a + 8192].astype(np.float64) - mean) @ comp.T, -65504, 65504)
+                out[a:a + 8192] = (x[a:a + 8192].astype(np.float64) - mean) @ comp.T
             out.flush()
             del out, x
             os.replace(tmp, path)
@@ -330,7 +330,7 @@ def facets_of(x: np.ndarray, seed: int = SEED) -> tuple[np.ndarray, float]:
 def top_images(idx: dict, column: np.ndarray | None, u: int, skipped: np.ndarray, n: int,
                groups: np.ndarray | None) -> np.ndarray:
     """Unit u's top-n images: the index's exact top-K in order, then the next ones by per-image
-    maximum (`column`: the unit's column of values.npy, float16; ties by corpus order), one per
+    maximum (`column`: the unit's column of values.npy; ties by corpus order), one per
     near-duplicate group if `groups` is given."""
     N = len(skipped)
     top = [int(i) for i in idx["top_image"][u] if i < N]
@@ -411,7 +411,7 @@ NEAR_THUMB = 64  # their thumbnails (the network's view of the whole image) in a
 
 def synth_neighbours(near: NaturalNeighbours, model, layer: str, u8: np.ndarray, extract, out_dir: Path,
                      stem: str) -> tuple[list[list[dict]], str]:
-    """Nearest corpus images of synthesised images u8 (M, H, W, 3) in the layer's embedding.
+    """Nearest corpus images of synthesised images u8 (M, H, W, C) in the layer's embedding.
 
     The images are brought to the network's input size and 8 bits first, as a corpus image is.
     Writes `<stem>.jpg`: row m holds image m's neighbours, best first, NEAR_THUMB px each.
@@ -421,10 +421,10 @@ def synth_neighbours(near: NaturalNeighbours, model, layer: str, u8: np.ndarray,
     from .corpus import CorpusDataset
     from .store import _atomic
 
-    size = model.preprocess.size
+    size = model.preprocess.size  # (H, W)
     x = torch.from_numpy(u8).permute(0, 3, 1, 2).float() / 255.0
-    if x.shape[-1] != size:
-        x = torch.nn.functional.interpolate(x, size=(size, size), mode="bilinear", antialias=True, align_corners=False)
+    if tuple(x.shape[-2:]) != size:
+        x = torch.nn.functional.interpolate(x, size=size, mode="bilinear", antialias=True, align_corners=False)
     x = (x * 255).round().clamp(0, 255) / 255.0
     with torch.no_grad():
         f = extract(model.normalize(x))

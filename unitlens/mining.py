@@ -178,8 +178,9 @@ def _merge(val, img, pos, new_val, new_img, new_pos, k, largest, groups=None):
 
 
 def colour_moments(images: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, int]:
-    """Sums for the RGB mean and covariance of uint8 images (B,3,H,W): (sum (3,), sum xx^T (3,3), n)."""
-    x = images.permute(1, 0, 2, 3).reshape(3, -1).float() / 255.0  # (3, pixels)
+    """Sums for the colour mean and covariance of uint8 images (B,C,H,W): (sum (C,), sum xx^T (C,C), n)."""
+    C = images.shape[1]
+    x = images.permute(1, 0, 2, 3).reshape(C, -1).float() / 255.0  # (C, pixels)
     return x.sum(1, dtype=torch.float64), (x @ x.T).double(), x.shape[1]  # no float64 copy of every pixel
 
 
@@ -193,6 +194,24 @@ def _settings(model, corpus, layers, cfg) -> dict:
         "thumb": cfg.thumb,
         **({"dedupe": cfg.dedupe_threshold} if cfg.dedupe else {}),
     }
+
+
+def _same_settings(prev: dict | None, new: dict) -> bool:
+    """Equal mining settings, the model compared by what it is (spec, weights' SHA-256, preprocessing),
+    not by where its files lay: reinstalling a package moves them."""
+    from .synth.results import same_model
+
+    if not isinstance(prev, dict) or not isinstance(prev.get("model"), dict):
+        return prev == new
+    rest = lambda d: {k: v for k, v in d.items() if k != "model"}  # noqa: E731
+    return same_model(prev["model"], new["model"]) and rest(prev) == rest(new)
+
+
+def mined(out: str | Path, model, corpus, layers, config: MineConfig = MineConfig()) -> bool:
+    """True when `out` holds a finished mining pass with these settings (so `mine` would do nothing)."""
+    m = read_json(Run(out).manifest_path) or {}
+    return bool((m.get("mine") or {}).get("done")) and _same_settings(m["mine"].get("settings"),
+                                                                     _settings(model, corpus, layers, config))
 
 
 def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config: MineConfig = MineConfig(),
@@ -251,7 +270,7 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
                             "--out a new or empty folder.")
     if old and old.get("mine") and not force:
         prev = old["mine"].get("settings")
-        if prev != settings:
+        if not _same_settings(prev, settings):
             raise UnitlensError(
                 f"{run.path} already holds a mining pass with other settings ({_diff(prev, settings)}). "
                 "Use another --out folder, or --force to start that folder over."
@@ -284,7 +303,8 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
     infos = {lu.layer: model.layer(lu.layer) for lu in layers}
     tallies = {lu.layer: LayerTally(lu.units, infos[lu.layer].channels, infos[lu.layer].width,
                                     config.top_k, n_classes) for lu in layers}
-    colour = [torch.zeros(3, dtype=torch.float64), torch.zeros(3, 3, dtype=torch.float64), 0]
+    C = model.preprocess.channels
+    colour = [torch.zeros(C, dtype=torch.float64), torch.zeros(C, C, dtype=torch.float64), 0]
     skipped: list[tuple[str, str]] = []
     start = 0
     state_path, meta_path = g.part(mdir / "state.npz"), g.part(mdir / "state.json")
@@ -322,7 +342,7 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
                 values[lu.layer] += (rows_file(d / "pooled.npy", infos[lu.layer].channels),)
     dedupe = None
     if config.dedupe:
-        dedupe = NearDuplicates(_open_values(mdir / "thumbs.npy", (N, 3 * THUMB * THUMB), start == 0, np.uint8),
+        dedupe = NearDuplicates(_open_values(mdir / "thumbs.npy", (N, C * THUMB * THUMB), start == 0, np.uint8),
                                 config.dedupe_threshold)
         dedupe.extend(start)  # groups of the images before a resume point are recomputed from their thumbnails
         for t in tallies.values():
@@ -356,7 +376,7 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
     last_save = time.monotonic()
     stopped = False
     try:
-        for batch in batches(corpus, model.preprocess.size, start=start, batch_size=config.batch_size,
+        for batch in batches(corpus, model.preprocess.frame, start=start, batch_size=config.batch_size,
                              workers=config.workers, indices=shard):
             tallies, colour, skipped, next_index = done
             for i, reason in batch.failures:
@@ -379,10 +399,11 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
                         tallies[name], mx, mean = t.added(feats[name], ids, cls)
                         if name in values:
                             rows = g.row(ids.numpy(), config.batch_size)
-                            values[name][0][rows] = _f16(mx)
-                            values[name][1][rows] = _f16(mean)
+                            rows_of = (mx, mean)
                             if len(values[name]) > 2:
-                                values[name][2][rows] = _f16(mean if t.all_units else feats[name].float().mean((2, 3)))
+                                rows_of += (mean if t.all_units else feats[name].float().mean((2, 3)),)
+                            for a, x in zip(values[name], rows_of):
+                                a[rows] = _fit(x, a.dtype)
             done = (tallies, colour, skipped, upto)  # the batch counts from here on
             if bar:
                 bar.advance(upto)
@@ -431,18 +452,23 @@ def _check_usable(corpus, tallies: dict, skipped: list) -> None:
                         "run again with --force.")
 
 
-_VALUE_BYTES = 2  # per-image rows are float16 (_f16)
+_VALUE_BYTES = 4  # per-image rows are float32 (_fit)
 
 
-def _f16(t: torch.Tensor) -> np.ndarray:
-    return t.clamp(-65504, 65504).numpy().astype(np.float16)
+def _fit(t: torch.Tensor, dtype) -> np.ndarray:
+    """Rows for a per-image file. float32 keeps activations of any size (float16 read 65504 above its
+    range and 0 below 6e-8); float16 files come from older runs being resumed."""
+    if dtype == np.float16:
+        t = t.clamp(-65504, 65504)
+    return t.numpy().astype(dtype)
 
 
-def _open_values(path: Path, shape, fresh: bool, dtype=np.float16):
+def _open_values(path: Path, shape, fresh: bool, dtype=np.float32):
     if fresh:
         return new_array(path, shape, dtype)
     a = np.load(path, mmap_mode="r+") if path.is_file() else None
-    if a is None or a.shape != shape or a.dtype != dtype:
+    older = dtype == np.float32 and a is not None and a.dtype == np.float16  # written by an earlier version
+    if a is None or a.shape != shape or (a.dtype != dtype and not older):
         # Resuming over a missing or foreign file would leave zeros in the rows mined before.
         found = "is missing" if a is None else f"holds {a.dtype} {a.shape}, not {np.dtype(dtype)} {tuple(shape)}"
         raise UnitlensError(f"Cannot resume mining: {path} {found}. Use --force to start this run's mining over.")
@@ -483,7 +509,7 @@ def _finish(run, model, corpus, layers, tallies, colour, skipped, config, progre
     m = run.manifest()
     m["corpus"] = _corpus_summary(corpus, skipped)
     m["mine"]["colour"] = {"mean": mu.tolist(), "cov": cov.tolist(), "pixels": colour[2],
-                           "source": "measured on this run's corpus (network inputs, RGB in [0, 1])"}
+                           "source": f"measured on this run's corpus (network inputs, {'RGB' if len(mu) == 3 else 'grey'} in [0, 1])"}
     m["mine"]["config"] = asdict(config)
     run.save_manifest(m)
     for name, entry in finish_layers(run, corpus, layers, skipped, groups).items():

@@ -3,6 +3,7 @@
 A model spec is one of
   ``torchvision:<arch>``      any classification architecture in torchvision.models
   ``path/to/file.py:function`` the user's own code; ``function()`` returns an nn.Module
+  ``package.module:function``  the same from an installed package (recorded so: files move on reinstall)
   ``path/to/model.pt``         a TorchScript archive (or, with ``allow_pickle``, a pickled module)
 """
 from __future__ import annotations
@@ -12,12 +13,14 @@ import importlib.util
 import pickle
 import sys
 import warnings
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
 from torch import nn
 
+from ._specs import MODULE_SPEC, canonical_spec
 from .errors import UnitlensError, UnitlensWarning, closest
 
 IMAGENET_MEAN = (0.485, 0.456, 0.406)
@@ -26,12 +29,39 @@ IMAGENET_STD = (0.229, 0.224, 0.225)
 
 @dataclass(frozen=True)
 class Preprocess:
-    """How an image becomes a network input: shorter side resized to `size`, centre crop, normalised."""
+    """How an image becomes a network input: scaled to cover `size` = (height, width), centre crop,
+    `len(mean)` channels (3: RGB, 1: grey), normalised per channel."""
 
-    size: int
-    mean: tuple[float, float, float]
-    std: tuple[float, float, float]
+    size: tuple[int, int]
+    mean: tuple[float, ...]
+    std: tuple[float, ...]
     source: str  # where these numbers came from, shown in the manifest and the atlas
+    interpolation: str = "bilinear"
+
+    def __post_init__(self):
+        if isinstance(self.size, int):  # a square input given by its side
+            object.__setattr__(self, "size", (self.size, self.size))
+
+    @property
+    def channels(self) -> int:
+        return len(self.mean)
+
+    @property
+    def frame(self):
+        """The corpus.Frame images are decoded to."""
+        from .corpus import Frame
+
+        return Frame(*self.size, self.channels, self.interpolation)
+
+    @property
+    def side(self) -> int:
+        """The longer side: synthesised images are squares of this size unless told otherwise."""
+        return max(self.size)
+
+    def size_text(self) -> str:
+        """'224' for a square input, '96x160' (height x width) otherwise."""
+        h, w = self.size
+        return str(h) if h == w else f"{h}x{w}"
 
 
 @dataclass(frozen=True)
@@ -125,33 +155,37 @@ class LoadedModel:
         (a vision transformer's fixed 224, a model whose maps vanish at a small size)."""
         try:
             with torch.no_grad():
-                maps = self.extractor(names)(torch.zeros(1, 3, size, size))
+                maps = self.extractor(names)(torch.zeros(1, self.preprocess.channels, size, size))
         except UnitlensError:
             raise
         except Exception as e:
             maps = f"{e.__class__.__name__}: {str(e)[:200]}"
         if isinstance(maps, str) or any(0 in v.shape[2:] for v in maps.values()):
             why = maps if isinstance(maps, str) else "a feature map is empty"
-            p = self.preprocess.size
+            p = self.preprocess.size_text()
             raise UnitlensError(f"{self.spec} does not take {size}x{size} images up to {', '.join(names)} "
-                                f"({why}); its input size is {p}x{p}. Use --size {p}, or leave --size out.")
+                                f"({why}); its input size is {p}. Synthesise at that size (--synth-size {p}), or leave --synth-size out.")
 
     def normalize(self, images: torch.Tensor) -> torch.Tensor:
-        """uint8 (B,3,H,W) or float in [0,1] -> normalised network input (float32)."""
+        """uint8 (B,C,H,W) or float in [0,1] -> normalised network input (float32)."""
         x = images.float()
         if images.dtype == torch.uint8:
             x = x / 255.0
-        mean = torch.tensor(self.preprocess.mean, dtype=x.dtype, device=x.device).view(1, 3, 1, 1)
-        std = torch.tensor(self.preprocess.std, dtype=x.dtype, device=x.device).view(1, 3, 1, 1)
+        mean = torch.tensor(self.preprocess.mean, dtype=x.dtype, device=x.device).view(1, -1, 1, 1)
+        std = torch.tensor(self.preprocess.std, dtype=x.dtype, device=x.device).view(1, -1, 1, 1)
         return (x - mean) / std
 
     def describe(self) -> dict:
         p = self.preprocess
+        h, w = p.size
+        pre = {"size": h if h == w else [h, w], "mean": list(p.mean), "std": list(p.std), "source": p.source}
+        if p.interpolation != "bilinear":  # recorded only when it differs, so older manifests still match
+            pre["interpolation"] = p.interpolation
         return {
             "spec": self.spec,
             "weights": self.weights,
             "arch_options": self.arch_options,
-            "preprocess": {"size": p.size, "mean": list(p.mean), "std": list(p.std), "source": p.source},
+            "preprocess": pre,
         }
 
 
@@ -161,9 +195,9 @@ def load_model(
     spec: str,
     weights: str | None = None,
     *,
-    size: int | None = None,
-    mean: tuple[float, float, float] | None = None,
-    std: tuple[float, float, float] | None = None,
+    size: int | tuple[int, int] | None = None,
+    mean: tuple[float, ...] | None = None,
+    std: tuple[float, ...] | None = None,
     allow_pickle: bool = False,
     arch_options: dict | None = None,
 ) -> LoadedModel:
@@ -176,14 +210,15 @@ def load_model(
     arch_options = dict(arch_options or {})
     if spec.startswith("torchvision:"):
         module, wdesc, pre, arch_options = _torchvision(spec.split(":", 1)[1], weights, arch_options)
-    elif ".py:" in spec:
+    elif ".py:" in spec or (MODULE_SPEC.fullmatch(spec) and not Path(spec).is_file()):
         if arch_options:
             raise UnitlensError("Architecture options apply to torchvision:<arch> models only.")
-        module, declared = _user_code(spec)
-        file, func = spec.rsplit(":", 1)
-        spec = f"{Path(file).resolve()}:{func}"  # a run folder must find the code from any directory
-        wdesc = _load_weights_file(module, weights) if weights else {"kind": "none"}
-        pre = _declared_preprocess(declared, Path(file).name)
+        spec = canonical_spec(spec)  # code of an installed package goes by its module: files move
+        module, declared, file = _user_code(spec)
+        if ".py:" in spec:
+            spec = f"{Path(file).resolve()}:{spec.rsplit(':', 1)[1]}"  # found again from any directory
+        wdesc = _load_weights_file(module, weights, spec) if weights else {"kind": "none"}
+        pre = _declared_preprocess(declared, Path(file).name) or _carried_preprocess(module) or _DEFAULT
     elif Path(spec).is_file():
         if weights:
             raise UnitlensError(
@@ -191,29 +226,130 @@ def load_model(
                 "torchvision:<arch> or file.py:function."
             )
         module, wdesc = _model_file(Path(spec), allow_pickle)
-        pre = Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+        spec = str(Path(spec).resolve())  # like user code and weights: the run opens from any directory
+        pre = _DEFAULT
     else:
         raise UnitlensError(_bad_spec_message(spec))
 
     overridden = [k for k, v in (("size", size), ("mean", mean), ("std", std)) if v is not None]
     if overridden:
         pre = Preprocess(
-            size or pre.size,
+            _height_width(size) if size is not None else pre.size,
             tuple(mean) if mean else pre.mean,
             tuple(std) if std else pre.std,
             pre.source + f"; overridden: {', '.join(overridden)}",
+            pre.interpolation,
         )
-    if pre.size < 16:
-        raise UnitlensError(f"Input size {pre.size} is too small (at least 16 px).")
-    for name, v in (("mean", pre.mean), ("std", pre.std)):
-        if len(v) != 3:
-            raise UnitlensError(f"--{name} needs three numbers (R,G,B), got {len(v)}.")
-    if any(s <= 0 for s in pre.std):
-        raise UnitlensError(f"--std values must be positive, got {list(pre.std)}.")
+    pre = _check_preprocess(pre, _input_channels(module), given={k for k in ("mean", "std") if k in overridden})
     module.eval()
     for p in module.parameters():
         p.requires_grad_(False)
+    if wdesc["kind"] == "none":
+        _warn_random(spec)
     return LoadedModel(spec, module, pre, wdesc, arch_options)
+
+
+_DEFAULT = Preprocess((224, 224), IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+# Decoding makes grey (1 channel) or RGB (3 channels) images; other channel counts have no image to come from.
+_DECODED = {1: "grey", 3: "RGB"}
+# The largest feature map of common architectures is about 21 times the input (VGG's first convolution:
+# 64 channels at full resolution for 3 input channels) [E]; 32 leaves room for the rest of the pass.
+_MEMORY_PER_INPUT = 32
+
+
+def _height_width(size) -> tuple[int, int]:
+    if isinstance(size, int):
+        return (size, size)
+    h, w = size
+    return (int(h), int(w))
+
+
+def _input_channels(module: nn.Module) -> int | None:
+    """Channels the network's first convolution takes (the first module with a 4-D weight), None if
+    it has none. A grouped convolution's weight holds in_channels / groups of them."""
+    for m in module.modules():
+        w = getattr(m, "weight", None)
+        if isinstance(w, torch.Tensor) and w.dim() == 4:
+            return int(getattr(m, "in_channels", None) or w.shape[1] * int(getattr(m, "groups", 1)))
+    return None
+
+
+def _check_preprocess(pre: Preprocess, channels: int | None, given: set) -> Preprocess:
+    """One mean and std per input channel (default statistics averaged for a grey model), a size that
+    is large enough and fits in memory, a known interpolation."""
+    from ._memory import available_memory
+    from .corpus import RESAMPLING
+
+    h, w = pre.size
+    if min(h, w) < 16:
+        raise UnitlensError(f"Input size {pre.size_text()} is too small (at least 16 px a side).")
+    want = channels or len(pre.mean)
+    if want not in _DECODED:
+        raise UnitlensError(f"The model's first convolution takes {want} input channels; images decode to 1 (grey) "
+                            "or 3 (RGB) channels, so it cannot be fed from image files.")
+    if len(pre.mean) != len(pre.std):
+        raise UnitlensError(f"--mean has {len(pre.mean)} numbers and --std {len(pre.std)}; give one per input "
+                            f"channel ({want} for this model).")
+    if len(pre.mean) != want:
+        if want == 1 and len(pre.mean) == 3 and not given:
+            # common practice for a grey model with RGB statistics: their average over the channels
+            pre = Preprocess(pre.size, (sum(pre.mean) / 3,), (sum(pre.std) / 3,),
+                             pre.source + ", averaged over R,G,B for a 1-channel model", pre.interpolation)
+        else:
+            names = "R,G,B" if want == 3 else "grey"
+            raise UnitlensError(f"--mean and --std need {want} number(s) ({names}): the model's first convolution "
+                                f"takes {want} input channel(s); got {len(pre.mean)}.")
+    if any(s <= 0 for s in pre.std):
+        raise UnitlensError(f"--std values must be positive, got {list(pre.std)}.")
+    if pre.interpolation not in RESAMPLING:
+        raise UnitlensError(f"Unknown interpolation '{pre.interpolation}'; valid: {', '.join(RESAMPLING)}.")
+    need, free = _MEMORY_PER_INPUT * 4 * want * h * w, available_memory()
+    if need > free:
+        raise UnitlensError(f"Input size {pre.size_text()} needs about {need / 2**30:.1f} GiB for one image's feature "
+                            f"maps; {free / 2**30:.1f} GiB are free. Give a smaller --size (this model's usual "
+                            "inputs are a few hundred pixels a side).")
+    return pre
+
+
+def _carried_preprocess(module: nn.Module) -> Preprocess | None:
+    """The data configuration a module carries (timm models: `pretrained_cfg`, older ones `default_cfg`,
+    a dict with input_size (C, H, W), mean, std, interpolation), or None."""
+    from .corpus import RESAMPLING
+
+    for attr in ("pretrained_cfg", "default_cfg"):
+        cfg = getattr(module, attr, None)
+        if not isinstance(cfg, dict) or "input_size" not in cfg:
+            continue
+        try:
+            _c, h, w = (int(v) for v in cfg["input_size"])
+            mean = tuple(float(v) for v in cfg.get("mean", IMAGENET_MEAN))
+            std = tuple(float(v) for v in cfg.get("std", IMAGENET_STD))
+        except (TypeError, ValueError):
+            raise UnitlensError(f"The model's {attr} has an input_size, mean or std that are not numbers: "
+                                f"{ {k: cfg.get(k) for k in ('input_size', 'mean', 'std')} }.") from None
+        interp = str(cfg.get("interpolation", "bilinear"))
+        used = interp if interp in RESAMPLING else "bilinear"
+        note = "" if used == interp else f" (its interpolation '{interp}' is not one we have: bilinear)"
+        return Preprocess((h, w), mean, std, f"the model's {attr} (input_size, mean, std, interpolation){note}", used)
+    return None
+
+
+_WARNED: set[str] = set()  # specs warned about in this process
+
+
+def _warn_random(spec: str) -> None:
+    # A random network's units respond to nothing learnt, and every load draws new ones, so a run
+    # cannot be reopened with the same units; warn wherever such a model is built (once per spec).
+    if spec.startswith("torchvision:"):
+        what = f"{spec} has no weights: its units are a random initialisation"
+    else:
+        what = f"{spec} was given no weights: unless the function sets them, its units are a random initialisation"
+    # Once per spec and process ourselves: Python's own once-registry is cleared whenever any code
+    # changes the warning filters, which loading does (torchvision's constructors are silenced).
+    if spec in _WARNED:
+        return
+    _WARNED.add(spec)
+    warnings.warn(f"{what}, drawn anew at every load. Pass trained weights with --weights.", UnitlensWarning)
 
 
 def _bad_spec_message(spec: str) -> str:
@@ -226,7 +362,8 @@ def _bad_spec_message(spec: str) -> str:
         hint = " User code is given as path/to/file.py:function."
     return (
         f"Cannot understand model '{spec}'.{hint} Valid forms: torchvision:<arch> (e.g. "
-        "torchvision:resnet50), path/to/file.py:function, or an existing TorchScript file."
+        "torchvision:resnet50), path/to/file.py:function, package.module:function (an installed "
+        "package), or an existing TorchScript file."
     )
 
 
@@ -262,21 +399,21 @@ def _torchvision(arch: str, weights: str | None, options: dict):
                 f"on a machine with internet and pass the file: --weights /path/to/{Path(w.url).name}"
             ) from None
         t = w.transforms()
-        pre = Preprocess(int(t.crop_size[0]), tuple(t.mean), tuple(t.std), f"torchvision metadata of {w}")
+        pre = Preprocess(_height_width(int(t.crop_size[0])), tuple(t.mean), tuple(t.std), f"torchvision metadata of {w}")
         return module, {"kind": "torchvision", "name": str(w), "url": w.url}, pre, options
 
     t = enum.DEFAULT.transforms()
     pre = Preprocess(
-        int(t.crop_size[0]), tuple(t.mean), tuple(t.std),
+        _height_width(int(t.crop_size[0])), tuple(t.mean), tuple(t.std),
         f"torchvision metadata of {enum.DEFAULT} (the architecture's default recipe)",
     )
     build = _builder(arch, options)
     if not weights:
         return build(), {"kind": "none"}, pre, options
 
-    sd = _read_state_dict(Path(weights))
     # Adapt the constructor to what the checkpoint holds: a fine-tuned head, or no auxiliary heads.
     module = build()
+    sd = _unprefixed(_read_state_dict(Path(weights)), module.state_dict(), Path(weights))
     head = _last_linear(module)
     if head and f"{head}.weight" in sd and "num_classes" not in options:
         n = sd[f"{head}.weight"].shape[0]
@@ -287,7 +424,8 @@ def _torchvision(arch: str, weights: str | None, options: dict):
             options["aux_logits"] = False
     build = _builder(arch, options)
     module = build()
-    return module, _apply_state_dict(module, sd, Path(weights)), pre, options
+    return module, _apply_state_dict(module, sd, Path(weights), "pass constructor options with --arch-option "
+                                     "key=value"), pre, options
 
 
 def _builder(arch: str, options: dict):
@@ -329,16 +467,49 @@ def _read_state_dict(path: Path) -> dict:
         ) from None
     except Exception as e:
         raise UnitlensError(f"Cannot read weights file {path}: {e.__class__.__name__}: {e}") from None
-    if isinstance(obj, dict):
-        for key in ("state_dict", "model_state_dict", "model"):
-            if key in obj and isinstance(obj[key], dict):
-                obj = obj[key]
-                break
-    if not isinstance(obj, dict) or not all(isinstance(v, torch.Tensor) for v in obj.values()):
-        raise UnitlensError(f"{path} is not a state dict (a mapping of names to tensors).")
-    if obj and all(k.startswith("module.") for k in obj):  # saved from DataParallel / DDP
-        obj = {k[len("module."):]: v for k, v in obj.items()}
+    if isinstance(obj, dict) and not _tensors(obj):
+        # A training checkpoint: the weights sit under one entry beside epoch, optimiser state, ...
+        held = [k for k, v in obj.items() if _tensors(v)]
+        held.sort(key=lambda k: _NESTS.index(k) if k in _NESTS else len(_NESTS))
+        if held:
+            if len(held) > 1:
+                print(f"Note: {path} holds several sets of weights ({', '.join(held)}); using '{held[0]}'.",
+                      file=sys.stderr)
+            obj = obj[held[0]]
+    if not _tensors(obj):
+        raise UnitlensError(f"{path} is not a state dict (a mapping of names to tensors), nor a checkpoint "
+                            "holding one (e.g. under 'state_dict' or 'model').")
     return obj
+
+
+# Entries under which training frameworks keep the network's weights, most usual first (common practice).
+_NESTS = ("state_dict", "model_state_dict", "model", "net", "network", "module", "weights", "state_dict_ema",
+          "model_ema")
+
+
+def _tensors(obj) -> bool:
+    return isinstance(obj, dict) and bool(obj) and all(isinstance(v, torch.Tensor) for v in obj.values())
+
+
+def _unprefixed(sd: dict, own: dict, path: Path) -> dict:
+    """The checkpoint's keys with the one prefix removed that makes them the model's own: the attribute
+    that held the network in training (`module.` of DataParallel, `model.`, `net.`, `backbone.`, ...).
+    Keys outside that prefix (a loss, an EMA copy) are left out, and the note says so."""
+    if any(k in own for k in sd):
+        return sd
+    prefixes = dict.fromkeys(".".join(k.split(".")[:n]) + "." for k in sd for n in (1, 2) if k.count(".") >= n)
+    best, hits = None, 0
+    for p in prefixes:
+        n = sum(k[len(p):] in own for k in sd if k.startswith(p))
+        if n > hits:
+            best, hits = p, n
+    if best is None:
+        return sd
+    out = {k[len(best):]: v for k, v in sd.items() if k.startswith(best)}
+    rest = [k for k in sd if not k.startswith(best)]
+    left = f"; {len(rest)} other keys left out (first: {', '.join(rest[:3])})" if rest else ""
+    print(f"Note: loading the weights of {path} under the prefix '{best}' ({len(out)} keys){left}.", file=sys.stderr)
+    return out
 
 
 def _sha256(path: Path) -> str:
@@ -349,8 +520,9 @@ def _sha256(path: Path) -> str:
     return h.hexdigest()
 
 
-def _apply_state_dict(module: nn.Module, sd: dict, path: Path) -> dict:
+def _apply_state_dict(module: nn.Module, sd: dict, path: Path, remedy: str) -> dict:
     own = module.state_dict()
+    sd = _unprefixed(sd, own, path)
     missing = [k for k in own if k not in sd]
     unexpected = [k for k in sd if k not in own]
     wrong = [k for k in own if k in sd and tuple(own[k].shape) != tuple(sd[k].shape)]
@@ -367,58 +539,98 @@ def _apply_state_dict(module: nn.Module, sd: dict, path: Path) -> dict:
                 f"{tuple(own[k].shape)} in the model)"
             )
         raise UnitlensError(
-            f"Weights in {path} do not fit the model: " + "; ".join(parts) + ". "
-            "Check the architecture, or pass constructor options with --arch-option key=value."
+            f"Weights in {path} do not fit the model: " + "; ".join(parts) + f". Check the architecture, or {remedy}."
         )
     module.load_state_dict(sd, strict=True)
     return {"kind": "file", "path": str(path.resolve()), "sha256": _sha256(path)}
 
 
-def _load_weights_file(module: nn.Module, weights: str) -> dict:
-    return _apply_state_dict(module, _read_state_dict(Path(weights)), Path(weights))
+def _load_weights_file(module: nn.Module, weights: str, code: str) -> dict:
+    return _apply_state_dict(module, _read_state_dict(Path(weights)), Path(weights),
+                             f"make {code} build the network the checkpoint was saved from")
 
 
-def _declared_preprocess(declared, file: str) -> Preprocess:
-    """A user's code file may declare its input: PREPROCESS = {"size": 96, "mean": (..), "std": (..)}."""
+def _declared_preprocess(declared, file: str) -> Preprocess | None:
+    """A user's code file may declare its input: PREPROCESS = {"size": 96 or (96, 160), "mean": (..),
+    "std": (..)}, one mean and std per input channel."""
     if declared is None:
-        return Preprocess(224, IMAGENET_MEAN, IMAGENET_STD, "ImageNet statistics (default)")
+        return None
     if not isinstance(declared, dict) or not set(declared) <= {"size", "mean", "std"}:
         raise UnitlensError(f"PREPROCESS in {file} must be a dict with keys size, mean, std; got {declared!r}.")
     try:
-        return Preprocess(int(declared.get("size", 224)), tuple(float(v) for v in declared.get("mean", IMAGENET_MEAN)),
+        return Preprocess(_height_width(declared.get("size", 224)),
+                          tuple(float(v) for v in declared.get("mean", IMAGENET_MEAN)),
                           tuple(float(v) for v in declared.get("std", IMAGENET_STD)), f"PREPROCESS in {file}")
     except (TypeError, ValueError):
-        raise UnitlensError(f"PREPROCESS in {file} needs an integer size and three numbers each for mean and std; "
-                            f"got {declared!r}.") from None
+        raise UnitlensError(f"PREPROCESS in {file} needs a size (an integer, or height and width) and one number "
+                            f"per input channel for mean and std; got {declared!r}.") from None
 
 
-def _user_code(spec: str) -> tuple[nn.Module, object]:
-    """The module built by `function()` in the file, and the file's PREPROCESS declaration (or None)."""
+def _user_code(spec: str) -> tuple[nn.Module, object, str]:
+    """The module built by `function()` in the code file or Python module, the code's PREPROCESS
+    declaration (or None), and the code's file."""
     file, func = spec.rsplit(":", 1)
-    path = Path(file)
+    path = Path(file) if file.endswith(".py") else None
+    with _beside(path) if path is not None else nullcontext():
+        mod = _import_file(path) if path is not None else _import_module(file)
+        file = getattr(mod, "__file__", None) or file
+        fn = getattr(mod, func, None)
+        if not callable(fn):
+            found = [n for n in dir(mod) if callable(getattr(mod, n)) and not n.startswith("_")]
+            near = closest(func, found)
+            hint = f" Closest: {', '.join(near)}." if near else ""
+            raise UnitlensError(f"{file} has no function '{func}'.{hint}")
+        try:
+            module = fn()
+        except SystemExit as e:
+            raise UnitlensError(f"{spec}() called sys.exit({e.code!r}) instead of returning a model.") from None
+        except Exception as e:
+            raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
+    if not isinstance(module, nn.Module):
+        raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
+    return module, getattr(mod, "PREPROCESS", None), file
+
+
+def _import_file(path: Path):
     if not path.is_file():
-        raise UnitlensError(f"Model code file not found: {file}")
+        raise UnitlensError(f"Model code file not found: {path}")
     name = f"unitlens_user_{hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:10]}"
     mod_spec = importlib.util.spec_from_file_location(name, path)
     mod = importlib.util.module_from_spec(mod_spec)
     sys.modules[name] = mod  # lets dataclasses / pickling inside user code find their module
     try:
         mod_spec.loader.exec_module(mod)
+    except SystemExit as e:
+        raise UnitlensError(f"Importing {path} called sys.exit({e.code!r}), so no model was built. Keep "
+                            "script code under `if __name__ == \"__main__\":` in that file.") from None
     except Exception as e:
-        raise UnitlensError(f"Importing {file} failed: {e.__class__.__name__}: {e}") from None
-    fn = getattr(mod, func, None)
-    if not callable(fn):
-        found = [n for n in dir(mod) if callable(getattr(mod, n)) and not n.startswith("_")]
-        near = closest(func, found)
-        hint = f" Closest: {', '.join(near)}." if near else ""
-        raise UnitlensError(f"{file} has no function '{func}'.{hint}")
+        raise UnitlensError(f"Importing {path} failed: {e.__class__.__name__}: {e}") from None
+    return mod
+
+
+def _import_module(name: str):
     try:
-        module = fn()
+        return importlib.import_module(name)
+    except ModuleNotFoundError as e:
+        raise UnitlensError(f"Cannot import the model's module '{name}' ({e}). Install the package that "
+                            "holds it, or give its code file as path/to/file.py:function.") from None
     except Exception as e:
-        raise UnitlensError(f"{spec}() failed: {e.__class__.__name__}: {e}") from None
-    if not isinstance(module, nn.Module):
-        raise UnitlensError(f"{spec}() returned {type(module).__name__}, not a torch.nn.Module.")
-    return module, getattr(mod, "PREPROCESS", None)
+        raise UnitlensError(f"Importing {name} failed: {e.__class__.__name__}: {e}") from None
+
+
+@contextmanager
+def _beside(path: Path):
+    """The code file's folder on the import path while it loads, so it can import the files beside it
+    (as `python file.py` would)."""
+    folder = str(path.resolve().parent)
+    added = folder not in sys.path
+    if added:
+        sys.path.insert(0, folder)
+    try:
+        yield
+    finally:
+        if added and folder in sys.path:
+            sys.path.remove(folder)
 
 
 def _model_file(path: Path, allow_pickle: bool):
@@ -474,15 +686,15 @@ def _layer_table(model: LoadedModel) -> tuple[dict[str, LayerInfo], dict[str, tu
     from ._extract import observe_shapes
     from .geometry import receptive_fields
 
-    size = model.preprocess.size
-    shapes = observe_shapes(model, size)  # {layer: (shape without batch, is_block)} in execution order
+    p = model.preprocess
+    shapes = observe_shapes(model, p.size)  # {layer: (shape without batch, is_block)} in execution order
     # Spatial dims follow the input size, channels do not: a second, larger input tells them apart
     # where the receptive-field trace cannot (after attention, as in Swin).
-    grown = observe_shapes(model, size + _GROW, partial=True)
+    grown = observe_shapes(model, (p.size[0] + _GROW, p.size[1] + _GROW), partial=True)
     try:
         # Squeeze-excitation gates are global, but where a unit fires is decided locally: treat
         # them like normalisation statistics, or every crop after the first gate is the whole image.
-        fields = receptive_fields(_observable(model), (size, size), global_context=False)
+        fields = receptive_fields(_observable(model), p.size, global_context=False)
     except UnitlensError as e:
         warnings.warn(f"receptive fields unavailable: {e}")
         fields = {}

@@ -251,7 +251,7 @@ def _synth_goal_config(run: Run, model, lu, config: ProbeConfig):
     from .synth import Goal, SynthConfig, Warps
 
     quick = SynthConfig(steps=config.synth_steps, seed=config.seed, checks=8, batch_size=1,
-                        size=min(config.synth_size, model.preprocess.size))
+                        size=min(config.synth_size, model.preprocess.side))
     old = ((run.manifest().get("synth") or {}).get("settings") or {})
     d = old.get("config")
     if not d:
@@ -280,7 +280,7 @@ def _exemplar_files(model, run: Run, layer: str, channel: int, exemplars: list[d
     from .crops import image_cells, input_box
 
     info = model.layer(layer)
-    size = model.preprocess.size
+    size = model.preprocess.frame
     corpus = run.corpus()
     index = {f: i for i, f in enumerate(corpus.files)}
     extract = model.extractor([layer]) if config.methods and config.attribute else None
@@ -289,7 +289,7 @@ def _exemplar_files(model, run: Run, layer: str, channel: int, exemplars: list[d
         r = e["rank"]
         y, x = e["position"]
         box_in = input_box(info.field, y, x, size)
-        need = int(math.ceil(config.thumb * size / max(1.0, min(box_in[2] - box_in[0], box_in[3] - box_in[1]))))
+        need = int(math.ceil(config.thumb * size.side / max(1.0, min(box_in[2] - box_in[0], box_in[3] - box_in[1]))))
         boxes, cells, err = image_cells(Path(e["image"]), [(box_in, need)], size, config.thumb)
         if err is not None:
             e["crop"] = None
@@ -358,9 +358,9 @@ def probe_image(source, image: str | Path, layer: str, top: int = 10, *, allow_p
     path = Path(image)
     if not path.is_file():
         raise UnitlensError(f"Image not found: {image}. Give the path of one image file.")
-    size = model.preprocess.size
+    size = model.preprocess.frame
     try:
-        img, original, _ = decode_original(path, size=size)
+        img, original, _ = decode_original(path, size=size.side)
     except ImageProblem as e:
         raise UnitlensError(f"Cannot use {image}: {e.reason}.") from None
     pixels, place = fit(img, size, original)

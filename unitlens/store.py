@@ -5,8 +5,8 @@ Layout (every file readable without unitlens):
   corpus.json                   the image ids in corpus order (+ labels)
   mine/state.npz, state.json    checkpoint of an unfinished mining pass
   mine/<layer>/index.npz        top/bottom exemplars, boxes, statistics, histograms
-  mine/<layer>/values.npy       per-image spatial maxima (N, U) float16, memory-mapped
-  mine/<layer>/means.npy        per-image spatial means (N, U) float16 (pooled embedding)
+  mine/<layer>/values.npy       per-image spatial maxima (N, U) float32 (float16 in older runs)
+  mine/<layer>/means.npy        per-image spatial means (N, U) float32 (pooled embedding)
   mine/<layer>/sheet-NNN.jpg    exemplar crops, one row per unit (see crops.py)
   mine/<layer>/pooled.npy, embed.npy, embed-basis.npz, facets.npz   embedding and facets (facets.py)
   mine/thumbs.npy               near-duplicate thumbnails (N, 768) uint8, with --dedupe

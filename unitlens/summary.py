@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 
@@ -17,9 +18,12 @@ def _num(x) -> float | None:
 def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
     """Exemplars and statistics of channel `channel` of `layer` in a mined run.
 
+    Every path in the result (the run, exemplar images, synthesised images and traces) is
+    absolute, whatever the current folder, so the dict stays usable when passed on.
+
     >>> unit_summary("runs/r18", "layer3", 37)["exemplars"][0]["score"]  # doctest: +SKIP
     """
-    run = run if isinstance(run, Run) else Run(run)
+    run = Run(Path(run.path if isinstance(run, Run) else run).absolute())
     idx = run.index(layer)
     units = idx["units"].tolist()
     if channel not in units:
@@ -38,7 +42,7 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
                 continue
             e = {
                 "rank": r + 1,
-                "image": str(corpus.path(i)),
+                "image": str(corpus.path(i).absolute()),
                 "id": corpus.files[i],
                 "score": float(idx[f"{kind}_score"][u, r]),
                 "position": [int(idx[f"{kind}_y"][u, r]), int(idx[f"{kind}_x"][u, r])],
@@ -107,5 +111,5 @@ def unit_facets(run: Run, layer: str, channel: int, corpus) -> dict | None:
     groups: list[list[dict]] = [[] for _ in range(int(z["k"][j]))]
     for i, f in zip(z["image"][j], z["facet"][j]):
         if f >= 0 and i < len(corpus):
-            groups[int(f)].append({"id": corpus.files[int(i)], "image": str(corpus.path(int(i)))})
+            groups[int(f)].append({"id": corpus.files[int(i)], "image": str(corpus.path(int(i)).absolute())})
     return {"k": len(groups), "silhouette": _num(z["silhouette"][j]), "groups": groups}

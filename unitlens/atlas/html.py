@@ -117,6 +117,15 @@ def _weights(w: dict) -> Html:
     return join(parts)
 
 
+def _input_text(pre: dict) -> str:
+    """'3 × 224 × 224 px' (channels × height × width; grey models have one channel)."""
+    size = pre.get("size")
+    if not size:
+        return "unknown"
+    h, w = (size, size) if isinstance(size, int) else size
+    return f"{len(pre.get('mean') or (0, 0, 0))} × {h} × {w} px"
+
+
 def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_name: str,
                comparisons: Html = Html("")) -> str:
     """The run summary. `layers`: [{name, href|None, shape, mined, k, synthesised, synth_total, status}];
@@ -135,11 +144,12 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
         ("architecture", tag("code", model.get("spec", "unknown"))),
         ("weights", _weights(model.get("weights") or {})),
         ("constructor options", tag("code", json.dumps(model["arch_options"])) if model.get("arch_options") else None),
-        ("input", f"3 × {pre['size']} × {pre['size']} px" if pre.get("size") else "unknown"),
+        ("input", _input_text(pre)),
         ("normalisation", f"mean ({mean}), std ({std})" if mean else None),
         ("preprocessing", pre.get("source")),
-        ("cropping", "shorter side resized to the input size, centred square cut; exemplar crops are cut "
-                     "from the original files at the receptive-field box" if pre.get("size") else None),
+        ("cropping", f"scaled by one factor to cover the input ({pre.get('interpolation', 'bilinear')}), centred part "
+                     "cut; exemplar crops are cut from the original files at the receptive-field box"
+                     if pre.get("size") else None),
     ]), class_="panel")
 
     skipped = corpus.get("skipped") or []

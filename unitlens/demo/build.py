@@ -47,10 +47,11 @@ def demo_corpus(folder: Path, count: int = CORPUS_SIZE) -> Path:
 
 
 def build_demo(out: Path, *, count: int = CORPUS_SIZE, steps: int = STEPS, units: int | None = None,
-               progress: bool = False, log=None) -> Path:
+               progress: bool = False, log=None, force: bool = False) -> Path:
     """Generate the corpus into OUT/corpus, mine and synthesise every unit of the four conv stages
     into the run folder OUT, draw the atlas, and return the path of its index page. Resumes
-    whatever a previous call left unfinished. `units` keeps only the first n units per layer."""
+    whatever a previous call left unfinished. `units` keeps only the first n units per layer;
+    `force` mines and synthesises again (e.g. after --count or --units changed)."""
     from ..corpus import open_corpus
     from ..mining import MineConfig
     from ..synth import SynthConfig
@@ -67,5 +68,5 @@ def build_demo(out: Path, *, count: int = CORPUS_SIZE, steps: int = STEPS, units
     chosen = [f"{name}:0-{min(units, model.layer(name).channels) - 1}" if units else name for name in LAYERS]
     layers = parse_layers(model, chosen)
     run_all(model, corpus, layers, out, MineConfig(top_k=16), SynthConfig(steps=steps),
-            progress=progress, log=say)
+            progress=progress, log=say, force=force)
     return out / "atlas" / "index.html"

@@ -54,5 +54,6 @@ def swatch_net() -> SwatchNet:
 
 
 def spec() -> str:
-    """The model spec for `load_model`: this file and its builder function."""
-    return f"{Path(__file__).resolve()}:swatch_net"
+    """The model spec for `load_model`: this module and its builder function. By module, not by
+    file: a run folder must find the network again after unitlens is reinstalled elsewhere."""
+    return f"{__name__}:swatch_net"

@@ -2,10 +2,11 @@
 
 Both bases end the same way:
 
-    pixels = squash(mean + M @ z)          z (B, 3, H, W), one colour vector per pixel
+    pixels = squash(mean + M @ z)          z (B, C, H, W), one colour vector per pixel
 
-where ``M`` is a 3x3 colour factor with M @ M.T = Sigma (the RGB covariance of the corpus, or a
-natural-image default), so z is in whitened colour units, and ``squash`` maps to [0, 1]:
+where ``M`` is a CxC colour factor with M @ M.T = Sigma (the covariance of the corpus's C = 3 RGB
+or C = 1 grey channels, or a natural-image default), so z is in whitened colour units (for grey,
+M is the corpus's standard deviation: decorrelation is a scalar), and ``squash`` maps to [0, 1]:
 
   "sigmoid"  sigma(logit(mean) + (u - mean) / (mean * (1 - mean))) per channel, i.e. a logistic
              curve through the mean colour with slope 1 there: near the mean, pixels = mean + M z,
@@ -42,6 +43,10 @@ DEFAULT_SOURCE = ("natural-image default [from memory]: ImageNet channel std 0.2
 SQUASHES = ("sigmoid", "clip", "none")
 
 
+# Grey is the ITU-R BT.601 luma of the RGB default (what PIL's "L" conversion computes).
+LUMA = (0.299, 0.587, 0.114)
+
+
 def default_covariance() -> np.ndarray:
     s = np.array(DEFAULT_STD)
     return np.array(DEFAULT_CORR) * np.outer(s, s)
@@ -49,9 +54,10 @@ def default_covariance() -> np.ndarray:
 
 @dataclass(frozen=True)
 class ColourBasis:
-    """Mean colour (3,) and colour factor M (3, 3) with M @ M.T = covariance, RGB in [0, 1]."""
+    """Mean colour (C,) and colour factor M (C, C) with M @ M.T = covariance, values in [0, 1];
+    C = 3 (RGB) or 1 (grey)."""
 
-    mean: tuple[float, float, float]
+    mean: tuple[float, ...]
     factor: tuple[tuple[float, ...], ...]
     source: str
     ridge: float = 0.0  # added to the covariance diagonal when it was (nearly) singular
@@ -63,31 +69,38 @@ class ColourBasis:
         A grey corpus has a singular covariance; then a ridge of 1e-4 of its trace is added and
         recorded, so colour directions stay reachable, if slowly.
         """
-        cov = np.asarray(cov, dtype=np.float64).reshape(3, 3)
+        C = len(mean)
+        cov = np.asarray(cov, dtype=np.float64).reshape(C, C)
         cov = (cov + cov.T) / 2
         ridge = 0.0
         if np.linalg.eigvalsh(cov).min() <= 1e-8 * max(np.trace(cov), 1e-12):
             ridge = 1e-4 * max(np.trace(cov), 1e-6)
-            cov = cov + ridge * np.eye(3)
+            cov = cov + ridge * np.eye(C)
         m = np.linalg.cholesky(cov)
         return cls(tuple(float(v) for v in mean), tuple(tuple(float(v) for v in r) for r in m), source, ridge)
 
     @classmethod
-    def default(cls) -> ColourBasis:
+    def default(cls, channels: int = 3) -> ColourBasis:
+        if channels == 1:  # the luma of the RGB default: mean w.mu, variance w' Sigma w
+            w = np.array(LUMA)
+            return cls.from_covariance([[w @ default_covariance() @ w]], [float(w @ np.array(DEFAULT_MEAN))],
+                                       f"ITU-R BT.601 luma of the {DEFAULT_SOURCE}")
         return cls.from_covariance(default_covariance(), DEFAULT_MEAN, DEFAULT_SOURCE)
 
     @classmethod
     def plain(cls, mean=(0.5, 0.5, 0.5)) -> ColourBasis:
         """No decorrelation: z is in pixel units."""
-        return cls(tuple(float(v) for v in mean), ((1.0, 0, 0), (0, 1.0, 0), (0, 0, 1.0)), "plain RGB")
+        C = len(mean)
+        return cls(tuple(float(v) for v in mean), tuple(tuple(float(i == j) for j in range(C)) for i in range(C)),
+                   "plain RGB" if C == 3 else "plain grey")
 
     @classmethod
-    def from_run(cls, manifest: dict) -> ColourBasis:
+    def from_run(cls, manifest: dict, channels: int = 3) -> ColourBasis:
         """The corpus colour statistics a mining pass measured, else the default."""
         c = (manifest.get("mine") or {}).get("colour")
-        if c and c.get("pixels", 1) > 1:
+        if c and c.get("pixels", 1) > 1 and len(c["mean"]) == channels:
             return cls.from_covariance(c["cov"], c["mean"], c.get("source", "measured on this run's corpus"))
-        return cls.default()
+        return cls.default(channels)
 
     def covariance(self) -> np.ndarray:
         m = np.array(self.factor)
@@ -98,9 +111,9 @@ class ColourBasis:
                 "method": "cholesky", "source": self.source, "ridge": self.ridge}
 
     def apply(self, z: torch.Tensor) -> torch.Tensor:
-        """z (B, 3, H, W) whitened -> mean + M z (B, 3, H, W)."""
+        """z (B, C, H, W) whitened -> mean + M z (B, C, H, W)."""
         m = torch.tensor(self.factor, dtype=z.dtype)
-        mu = torch.tensor(self.mean, dtype=z.dtype).view(1, 3, 1, 1)
+        mu = torch.tensor(self.mean, dtype=z.dtype).view(1, -1, 1, 1)
         return torch.einsum("ij,bjhw->bihw", m, z) + mu
 
 
@@ -110,7 +123,7 @@ def squash(u: torch.Tensor, mean, kind: str) -> torch.Tensor:
         return u
     if kind == "clip":
         return u.clamp(0, 1)
-    mu = torch.tensor(mean, dtype=u.dtype).clamp(0.05, 0.95).view(1, 3, 1, 1)
+    mu = torch.tensor(mean, dtype=u.dtype).clamp(0.05, 0.95).view(1, -1, 1, 1)
     return torch.sigmoid(torch.logit(mu) + (u - mu) / (mu * (1 - mu)))
 
 
@@ -128,29 +141,33 @@ class _Base:
 
     @property
     def _folded(self) -> tuple[torch.Tensor, torch.Tensor]:
-        """The colour factor divided by the sigmoid's slope (3, 3), and its offset (3, 1)."""
+        """The colour factor divided by the sigmoid's slope (C, C), and its offset (C, 1)."""
         mu = torch.tensor(self.colour.mean)
         c = mu.clamp(0.05, 0.95)
-        k = torch.tensor(self.colour.factor) / (c * (1 - c)).view(3, 1)
-        return k, (torch.logit(c) + (mu - c) / (c * (1 - c))).view(3, 1)
+        k = torch.tensor(self.colour.factor) / (c * (1 - c)).view(-1, 1)
+        return k, (torch.logit(c) + (mu - c) / (c * (1 - c))).view(-1, 1)
 
     def init(self, gen: torch.Generator) -> torch.Tensor:
         """One image's starting parameters, drawn from `gen` (its own generator)."""
         return torch.randn(self.shape, generator=gen) * self.init_std
 
-    def whitened(self, params: torch.Tensor) -> torch.Tensor:  # (B, *shape) -> z (B, 3, H, W)
+    @property
+    def channels(self) -> int:
+        return len(self.colour.mean)
+
+    def whitened(self, params: torch.Tensor) -> torch.Tensor:  # (B, *shape) -> z (B, C, H, W)
         raise NotImplementedError
 
     def pixels(self, params: torch.Tensor) -> torch.Tensor:
-        """(B, *shape) -> RGB (B, 3, H, W) in [0, 1] (unless squash is 'none')."""
+        """(B, *shape) -> pixels (B, C, H, W) in [0, 1] (unless squash is 'none')."""
         z = self.whitened(params)
         if self.squash != "sigmoid":
             return squash(self.colour.apply(z), self.colour.mean, self.squash)
         # the same as squash(colour.apply(z), ...), with the colour factor, the slope and the
-        # offset folded into one 3x3 matrix and one bias, applied by one batched matmul
+        # offset folded into one CxC matrix and one bias, applied by one batched matmul
         k, bias = self._folded
-        B, _, H, W = z.shape
-        return torch.sigmoid(torch.baddbmm(bias.expand(B, 3, 1), k.expand(B, 3, 3), z.reshape(B, 3, H * W))).view(B, 3, H, W)
+        B, C, H, W = z.shape
+        return torch.sigmoid(torch.baddbmm(bias.expand(B, C, 1), k.expand(B, C, C), z.reshape(B, C, H * W))).view(B, C, H, W)
 
     def project(self, params: torch.Tensor, norm: float) -> torch.Tensor:
         """Rescale each image so that its whitened image z has L2 norm `norm` (z is linear in params)."""
@@ -176,14 +193,14 @@ class SpectralBasis(_Base):
         super().__init__(size, colour, squash, init_std)
         self.falloff = float(falloff)
         h = w = self.size
-        self.shape = (3, h, w // 2 + 1, 2)  # real and imaginary parts of the rfft2 half spectrum
+        self.shape = (self.channels, h, w // 2 + 1, 2)  # real and imaginary parts of the rfft2 half spectrum
         self.freq = frequencies(h, w)  # (H, W//2+1) cycles per pixel
         s = 1.0 / self.freq.clamp(min=1.0 / max(h, w)) ** self.falloff  # DC clamped to the lowest frequency
         self.scale = s / s.pow(2).mean().sqrt()  # (H, W//2+1)
 
     def whitened(self, params: torch.Tensor) -> torch.Tensor:
-        c = torch.view_as_complex(params.contiguous()) * self.scale  # (B, 3, H, W//2+1)
-        return torch.fft.irfft2(c, s=(self.size, self.size), norm="ortho")  # (B, 3, H, W)
+        c = torch.view_as_complex(params.contiguous()) * self.scale  # (B, C, H, W//2+1)
+        return torch.fft.irfft2(c, s=(self.size, self.size), norm="ortho")  # (B, C, H, W)
 
     def blur(self, params: torch.Tensor, sigma: float) -> torch.Tensor:
         """Gaussian blur of width `sigma` px, exactly: the Gaussian's transfer function exp(-2 pi^2 s^2 f^2)."""
@@ -201,7 +218,7 @@ class PixelBasis(_Base):
 
     def __init__(self, size: int, colour: ColourBasis, squash: str = "sigmoid", init_std: float = 0.1):
         super().__init__(size, colour, squash, init_std)
-        self.shape = (3, self.size, self.size)
+        self.shape = (self.channels, self.size, self.size)
 
     def whitened(self, params: torch.Tensor) -> torch.Tensor:
         return params

@@ -27,19 +27,19 @@ from .warps import Warps, warp
 
 def assess(model, layer: str, images: torch.Tensor, targets, scorer, spec: Warps,
            fill, seed: int, ms, checks: int = 32, extract=None) -> list[dict]:
-    """images (N, 3, S, S) uint8; targets (N,) channels; ms (N,) image numbers within their unit.
+    """images (N, C, S, S) uint8; targets (N,) channels; ms (N,) image numbers within their unit.
 
     `scorer` is the goal's Scorer for `layer`; `extract` an extractor that returns `layer` (made here if not given).
     """
     name, sign = layer, scorer.sign
     extract = extract or model.extractor([name])
     x = images.float() / 255.0
-    size = model.preprocess.size
+    size = model.preprocess.size  # (H, W)
     out = []
     with torch.no_grad():
         stat = scorer.per_channel(extract(model.normalize(x))[name])  # (N, C)
-        xm = x if x.shape[-1] == size else F.interpolate(x, size=(size, size), mode="bilinear",
-                                                         antialias=True, align_corners=False)
+        xm = x if tuple(x.shape[-2:]) == size else F.interpolate(x, size=size, mode="bilinear",
+                                                                 antialias=True, align_corners=False)
         # the resize gives floats; round to 8 bits like a decoded corpus image
         xm = (xm * 255).round().clamp(0, 255) / 255.0
         fmax = extract(model.normalize(xm))[name].flatten(2).max(2).values  # (N, C)

@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import torch
 
+from .._memory import available_memory
 from ..errors import UnitlensError
 from .bases import ColourBasis, make_basis
 from .goal import Context, Goal, Scorer
@@ -90,7 +91,7 @@ class UnitResult:
 
     index: int  # position in the targets given
     target: int
-    images: np.ndarray  # (M, H, W, 3) float32, in [0, 1] unless squash is "none"
+    images: np.ndarray  # (M, H, W, C) float32, in [0, 1] unless squash is "none"
     traces: list[np.ndarray]  # M objective traces (value under that step's transform), one per step run
     steps: list[int]  # steps used per image (<= config.steps when stopped early)
     layer: str = ""
@@ -151,11 +152,14 @@ class _Engine:
         goal = goal if goal is not None else Goal()
         goal.check(model, layer, self.targets)  # before the first step
         self.score: Scorer = goal.scorer(layer)
-        self.size = config.size or model.preprocess.size
-        mean = colour.mean if colour else ColourBasis.default().mean
+        self.size = config.size or model.preprocess.side
+        C = model.preprocess.channels
+        mean = colour.mean if colour else ColourBasis.default(C).mean
         if not config.whiten_colour:
             colour = ColourBasis.plain(mean)
-        self.colour = colour or ColourBasis.default()
+        self.colour = colour or ColourBasis.default(C)
+        if len(self.colour.mean) != C:
+            raise UnitlensError(f"The colour basis has {len(self.colour.mean)} channels and the model takes {C}.")
         options = {"squash": config.squash, "init_std": config.init_std}
         if config.basis == "spectral":
             options["falloff"] = config.falloff
@@ -167,7 +171,7 @@ class _Engine:
     def values_and_grads(self, params, targets, groups, draws):
         p = params.detach().requires_grad_(True)
         with torch.enable_grad():
-            pixels = self.basis.pixels(p)  # (B, 3, S, S)
+            pixels = self.basis.pixels(p)  # (B, C, S, S)
             x = pixels if draws is None else warp(pixels, draws, self.spec.pad, self.colour.mean, self.spec.pad_mode)
             feats = self.extract(self.model.normalize(x))
             values = self.score(feats, Context(self.layer, targets, groups, pixels))  # (B,)
@@ -210,11 +214,14 @@ class _Engine:
         return seen[0]
 
     # -- the loop -------------------------------------------------------------------------
-    def run(self):
-        """Yield lists of finished UnitResults, in order of completion."""
+    def run(self, on_step=None):
+        """Yield lists of finished UnitResults, in order of completion. `on_step(units, step)` is
+        called after every step: units done so far, the running ones counted by the fraction of
+        their steps taken (so a progress bar moves within a batch), and the batch's furthest step."""
         M = self.config.per_unit
         if not self.targets:
             return
+        self._on_step, self._finished = on_step, 0
         cap = self.capacity()
         queue: deque = deque(range(len(self.targets)))  # unit indices, or paused _Unit objects
         active: list[_Unit] = []
@@ -233,13 +240,20 @@ class _Engine:
                 continue
             finished = [u for u in active if bool(u.done.all())]
             active = [u for u in active if not bool(u.done.all())]
+            self._finished += len(finished)
             yield [self._result(u) for u in finished]
 
     def _steps_until_one_finishes(self, units: list[_Unit]) -> None:
         b = _Batch(units, self.config.per_unit)
+        total = self.config.steps * self.config.per_unit
         try:
-            while not self.step(b):
-                pass
+            while True:
+                stop = self.step(b)
+                if self._on_step is not None:  # a unit whose images all stopped early counts as done
+                    taken = torch.where(b.done, self.config.steps, b.step).view(-1, b.M).sum(1)  # (units,)
+                    self._on_step(self._finished + float(taken.sum()) / total, int(b.step.max()))
+                if stop:
+                    break
         finally:  # on success or an out-of-memory error, the units keep the last completed step
             b.unpack(units)
 
@@ -306,7 +320,7 @@ class _Engine:
 
     def _result(self, u: _Unit) -> UnitResult:
         with torch.no_grad():
-            px = self.basis.pixels(u.params)  # (M, 3, S, S)
+            px = self.basis.pixels(u.params)  # (M, C, S, S)
         return UnitResult(u.index, u.target, px.permute(0, 2, 3, 1).numpy().astype(np.float32),
                           [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step], self.layer)
 
@@ -326,30 +340,29 @@ def is_out_of_memory(e: BaseException) -> bool:
     return "out of memory" in s or "can't allocate memory" in s or "not enough memory" in s
 
 
-def available_memory() -> int:
-    """Bytes this process may still allocate: MemAvailable, capped by a cgroup limit if there is one."""
-    avail = 4 << 30
-    try:
-        for line in open("/proc/meminfo"):
-            if line.startswith("MemAvailable:"):
-                avail = int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    try:
-        limit = open("/sys/fs/cgroup/memory.max").read().strip()
-        if limit != "max":
-            used = int(open("/sys/fs/cgroup/memory.current").read())
-            avail = min(avail, int(limit) - used)
-    except (OSError, ValueError):
-        pass
-    return max(avail, 256 << 20)
-
-
 def iter_layer(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,
-               colour: ColourBasis | None = None):
+               colour: ColourBasis | None = None, on_step=None):
     """Optimise one image set per target of `layer` (the goal's units aside); yield lists of
-    UnitResult as units finish. The goal is checked against `targets` before the first step."""
-    yield from _Engine(model, layer, targets, config, goal, colour).run()
+    UnitResult as units finish. The goal is checked against `targets` before the first step.
+    `on_step(units, step)`, if given, hears after every step how far the work is (see _Engine.run)."""
+    yield from _Engine(model, layer, targets, config, goal, colour).run(on_step)
+
+
+def step_seconds(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,
+                 colour: ColourBasis | None = None, repeats: int = 2) -> tuple[float, int]:
+    """(seconds per step, images per step) of one full batch of `targets`, timed on the real loop:
+    image basis, warps, truncated forward, backward and Adam. For the time-budget planner."""
+    import time
+    from dataclasses import replace
+
+    e = _Engine(model, layer, targets, replace(config, steps=repeats + 2, stop_gain=None), goal, colour)
+    n = max(1, e.capacity() // config.per_unit)
+    b = _Batch([_Unit(i, t, e) for i, t in enumerate(e.targets[:n])], config.per_unit)
+    e.step(b)  # warm-up (allocations, lazy initialisation)
+    t = time.perf_counter()
+    for _ in range(repeats):
+        e.step(b)
+    return (time.perf_counter() - t) / repeats, n * config.per_unit
 
 
 def optimise_units(model, goal: Goal, config: SynthConfig = SynthConfig(),

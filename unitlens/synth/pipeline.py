@@ -31,7 +31,7 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
     if goal.reduce == "direction":
         raise UnitlensError("A run folder files images under their channel, and a direction goal has none; "
                             "synthesise directions in memory with optimise_units.")
-    size = config.size or model.preprocess.size
+    size = config.size or model.preprocess.side
     run = Run(out)
     manifest = run.manifest() if run.exists() else {}
     if manifest.get("model") and not same_model(manifest["model"], model.describe()):
@@ -42,7 +42,7 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
     model.check_size(size, sorted({lu.layer for lu in layers}))
 
     g = dist.group()  # one process, or this rank of a torchrun job: it takes every world-th unit of a layer
-    colour = ColourBasis.from_run(manifest)
+    colour = ColourBasis.from_run(manifest, model.preprocess.channels)
     used = colour if config.whiten_colour else ColourBasis.plain(colour.mean)
     settings = {"config": config.describe(size), "goal": goal.record(), "colour": used.describe()}
     old = manifest.get("synth")
@@ -116,15 +116,17 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
     todo = [c for c in g.shard(lu.units) if c not in finished]
     own = g.part(d / "units.json")  # several ranks never write one file
     best = best_exemplars(run, lu.layer)
-    bar = Progress(len(lu.units), len(lu.units) - len(todo), f"synth {lu.layer}", "units", per="h") \
-        if progress and todo else None
+    before = len(lu.units) - len(todo)
+    bar = Progress(len(lu.units), before, f"synth {lu.layer}", "units", per="h") if progress and todo else None
+    on_step = (lambda units, step: bar.advance(before + units, f"step {step}/{config.steps}")) if bar else None
     spec = config.warps.at(size)
     scorer = goal.scorer(lu.layer)
     extract = model.extractor([lu.layer])
     near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
     try:
         if todo:
-            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour), lu, table):
+            for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour, on_step), lu,
+                                        table):
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, scorer, spec, colour,
                                                                 config, best.get(r.target), extract, near)
@@ -132,8 +134,6 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
                 g.check(f"in synthesis of {lu.layer}")
                 if g.main:
                     _status(run, lu.layer, len(table["units"]), False)
-                if bar:
-                    bar.advance(len([c for c in lu.units if str(c) in table["units"]]))
         write_json(own, table)
         g.barrier(f"the end of synthesis of {lu.layer}")
         if g.main:
@@ -177,11 +177,11 @@ def _interruptible(batches, lu, table):
 def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, extract, near=None) -> dict:
     from PIL import Image
 
-    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, 3)
+    u8 = np.clip(np.round(r.images * 255), 0, 255).astype(np.uint8)  # (M, H, W, C)
     M = len(u8)
     files = [f"unit-{r.target:04d}-{m}.png" for m in range(M)]
-    for f, a in zip(files, u8):
-        _atomic(d / f, lambda fh, a=a: Image.fromarray(a).save(fh, format="PNG"))
+    for f, a in zip(files, u8):  # a grey image (H, W, 1) is saved as an 8-bit grey PNG
+        _atomic(d / f, lambda fh, a=a: Image.fromarray(a[..., 0] if a.shape[-1] == 1 else a).save(fh, format="PNG"))
     T = max(len(t) for t in r.traces)
     trace = np.full((M, T), np.nan, dtype=np.float32)
     for m, t in enumerate(r.traces):
@@ -213,6 +213,7 @@ def _status(run: Run, layer: str, done: int, complete: bool) -> None:
 
 def model_from_run(run: Run | str, allow_pickle: bool = False):
     """Rebuild the LoadedModel a run folder was made with (spec, weights, preprocessing)."""
+    from .._specs import locate
     from ..model import load_model
 
     run = run if isinstance(run, Run) else Run(run)
@@ -225,7 +226,7 @@ def model_from_run(run: Run | str, allow_pickle: bool = False):
     if kind == "pickle" and not allow_pickle:
         raise UnitlensError(f"{run.path} was made from a pickled module ({d['spec']}); loading it runs code "
                             "from the file. Add --allow-pickle if you trust it.")
-    weights = {"file": w.get("path"), "torchvision": str(w.get("name", "")).split(".")[-1]}.get(kind)
+    weights = {"file": locate(w.get("path", "")), "torchvision": str(w.get("name", "")).split(".")[-1]}.get(kind)
     p = d["preprocess"]
     m = load_model(d["spec"], weights, size=p["size"], mean=tuple(p["mean"]), std=tuple(p["std"]),
                    allow_pickle=allow_pickle, arch_options=d.get("arch_options") or None)

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .._specs import canonical_spec
 from ..store import Run, read_json, read_npz
 
 
@@ -68,7 +69,7 @@ def same_model(a: dict, b: dict) -> bool:
     def key(d):
         w = d.get("weights", {})
         p = d.get("preprocess", {})
-        return (d.get("spec"), w.get("kind"), w.get("sha256") or w.get("name"), d.get("arch_options") or {},
+        return (canonical_spec(d.get("spec", "")), w.get("kind"), w.get("sha256") or w.get("name"), d.get("arch_options") or {},
                 p.get("size"), [round(v, 6) for v in p.get("mean", [])], [round(v, 6) for v in p.get("std", [])])
 
     return key(a) == key(b)

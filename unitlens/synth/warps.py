@@ -82,13 +82,13 @@ class Warps:
 
 
 def warp(images: torch.Tensor, draws: torch.Tensor, pad: int, fill, pad_mode: str = "constant") -> torch.Tensor:
-    """Apply one transform per image. images (B, 3, S, S); draws (B, 6) from `Warps.draw`.
+    """Apply one transform per image. images (B, C, S, S); draws (B, 6) from `Warps.draw`.
 
     Content point u (pixels from the centre) goes to v = R(a) * s * (u + t) + t_fine; each output
     pixel v samples the padded canvas at u = R(-a) (v - t_fine) / s - t.
     """
-    B, _, S, _ = images.shape
-    fill_t = torch.as_tensor(fill, dtype=images.dtype).view(1, 3, 1, 1)
+    B, C, S, _ = images.shape
+    fill_t = torch.as_tensor(fill, dtype=images.dtype).view(1, -1, 1, 1)
     x = images - fill_t  # so that zero padding (and grid_sample's zeros) means the fill colour
     if pad and pad_mode == "reflect":
         x = F.pad(x, (pad,) * 4, mode="reflect")
@@ -104,6 +104,6 @@ def warp(images: torch.Tensor, draws: torch.Tensor, pad: int, fill, pad_mode: st
     ft = d[:, 4:6] * to_norm
     offset = -(A @ ft.unsqueeze(2)).squeeze(2) - t  # (B, 2)
     theta = torch.cat([A * (S / N), offset.unsqueeze(2)], 2)  # output grid spans the central S x S
-    grid = F.affine_grid(theta, [B, 3, S, S], align_corners=False)
+    grid = F.affine_grid(theta, [B, C, S, S], align_corners=False)
     mode = "border" if pad_mode == "reflect" else "zeros"
     return F.grid_sample(x, grid, mode="bilinear", padding_mode=mode, align_corners=False) + fill_t

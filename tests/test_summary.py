@@ -1,0 +1,49 @@
+"""`unitlens show`: what a run knows about one unit, read without torch."""
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from conftest import ROOT, run_cli
+
+from unitlens import MineConfig, mine, open_corpus, parse_layers
+from unitlens.demo.build import demo_corpus, demo_model
+from unitlens.synth import SynthConfig, synthesize
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    """A demo-network run, mined over 24 swatches and with two units of block1 synthesised."""
+    d = tmp_path_factory.mktemp("summary")
+    model = demo_model()
+    corpus = open_corpus(demo_corpus(d / "corpus", 24), labels="folders")
+    layers = parse_layers(model, ["block1:0-1"])
+    mine(model, corpus, layers, d / "run", MineConfig(top_k=3, workers=0))
+    synthesize(model, layers, d / "run", SynthConfig(steps=4, checks=0, stop_gain=None))
+    return d / "run"
+
+
+def test_show_does_not_import_torch(run):
+    code = ("import sys\n"
+            "from unitlens.cli import main\n"
+            f"sys.argv = ['unitlens', 'show', {str(run)!r}, 'block1:0']\n"
+            "try:\n    main()\nexcept SystemExit as e:\n    assert not e.code, e.code\n"
+            "print(sorted(m for m in sys.modules if m == 'torch' or m.startswith('torch.')))\n")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=120,
+                       check=False)
+    assert r.returncode == 0, r.stderr
+    assert "top exemplars" in r.stdout  # it did read the unit
+    assert r.stdout.strip().splitlines()[-1] == "[]"
+
+
+def test_show_json_gives_every_path_absolute_even_for_a_relative_run(run):
+    rel = os.path.relpath(run, ROOT)  # run_cli runs in ROOT
+    assert not Path(rel).is_absolute()
+    s = json.loads(run_cli("show", rel, "block1:1", "--json").stdout)
+    paths = [s["run"]] + [e["image"] for e in s["exemplars"]]
+    paths += [p for r in s["synth"] for p in (r["image"], r["trace"])]
+    assert len(s["synth"]) == 1 and len(paths) == 1 + 3 + 2
+    for p in paths:
+        assert Path(p).is_absolute() and Path(p).exists(), p
