@@ -248,3 +248,14 @@ def test_tables_need_no_pandas(tiny, monkeypatch):
     assert len(t) == 10 and all(isinstance(r, dict) for r in t) and "<table" in t._repr_html_()
     with pytest.raises(UnitlensError, match=r"needs pandas.*unitlens\[tables\]"):
         t.frame()
+
+
+def test_reading_a_run_needs_no_torch(tiny):
+    import subprocess
+    import sys
+
+    code = ("import sys; from unitlens import load_run; r = load_run(sys.argv[1]); u = r.unit('6:0'); "
+            "u._repr_html_(); u.exemplars[0].crop(); u.synthesised[0].image(); r.units('6'); r._repr_html_(); "
+            "print(sorted(m for m in ('torch', 'torchvision', 'faiss') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code, str(tiny.path)], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]", out.stderr
