@@ -259,3 +259,12 @@ def test_reading_a_run_needs_no_torch(tiny):
             "print(sorted(m for m in ('torch', 'torchvision', 'faiss') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code, str(tiny.path)], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]", out.stderr
+
+
+def test_a_unit_draws_each_facet_with_its_kept_crops(tiny):
+    u = next(u for u in (tiny.view.unit(f"3:{c}") for c in range(32)) if len(u.facets) >= 2)
+    html = u._repr_html_()
+    assert html.count('<div class="facet">') == len(u.facets)
+    for k, g in enumerate(u.facets):
+        kept = sum(p.id in {e.id for e in u.exemplars} for p in g)
+        assert f"facet {k + 1}: {len(g)} images, {min(kept, 4)} kept exemplars shown" in html

@@ -21,6 +21,8 @@ SHOW_ROWS = 200  # rows of a table drawn inline
 CROP_PX = 96  # longest side of an inline crop
 SYNTH_PX = 160
 NEAR_PX = 56
+FACET_PX = 56
+SHOW_PER_FACET = 4
 SHOW_NEAR = 6
 SCOPE = "unitlens-nb"
 
@@ -119,6 +121,22 @@ def _exemplars(title: str, items: list, limit: int) -> Html:
                                                            class_="ex-grid"), more])
 
 
+def _facets(u) -> Html:
+    """Each facet of the unit's top images: its size and up to SHOW_PER_FACET of its kept exemplars' crops
+    (more crops are not cut for facets, as in the atlas)."""
+    if len(u.facets) < 2:
+        return Html("")
+    by_id = {e.id: e for e in u.exemplars}
+    groups = []
+    for k, g in enumerate(u.facets):
+        kept = [by_id[p.id] for p in g if p.id in by_id][:SHOW_PER_FACET]
+        crops = [_picture(lambda e=e: e.crop(sheet=e.sheet is not None and e.sheet[0].is_file()), FACET_PX,
+                          f"exemplar {e.rank}") for e in kept]
+        groups.append(tag("div", tag("p", f"facet {k + 1}: {len(g)} images, {len(kept)} kept exemplars shown",
+                                     class_="note"), tag("div", *crops, class_="facet-grid"), class_="facet"))
+    return join([tag("h4", f"facets of the top images ({len(u.facets)})"), tag("div", *groups, class_="panels")])
+
+
 def _bars(hist: dict) -> Html:
     counts = hist.get("counts") or []
     if not counts:
@@ -159,13 +177,13 @@ def _unit_body(u) -> Html:
                            f"range {_num(st['min'])} .. {_num(st['max'])}")),
         ("fires (max > 0)", f"{100 * st['fire_rate']:.1f}% of images" if st["fire_rate"] is not None else None),
         ("class selectivity", _num(st["class_selectivity"], ".3f") if st["class_selectivity"] is not None else None),
-        ("facets", f"{len(u.facets)} ({', '.join(str(len(g)) for g in u.facets)} images)" if u.facets else None),
     ])
     synth = [_synth(s) for s in u.synthesised]
     return join([tag("h3", tag("span", u.layer, class_="uv-layer"), " · unit ", tag("span", u.channel, class_="uv-unit")),
                 tag("div", tag("section", facts, _bars(u.histogram), class_="panel"),
                     tag("section", tag("h4", "synthesised"), tag("div", *synth, class_="syn-grid"), class_="panel")
                     if synth else None, class_="panels"),
+                _facets(u),
                 _exemplars("top exemplars", u.exemplars, SHOW_TOP),
                 _exemplars("most negative", u.negative_exemplars, SHOW_NEGATIVE)])
 
