@@ -227,10 +227,15 @@ def run_html(run) -> str:
     return wrap(tag("h3", run.path.name), tag("section", facts, class_="panel"), _table(rows))
 
 
-def probe_html(p) -> str:
-    """A probe result: the unit (as unit_html) with each exemplar's heat maps."""
+def _read(path):
     from PIL import Image
 
+    with Image.open(path) as im:  # closed at once, not when the collector gets to it
+        return im.convert("RGB")
+
+
+def probe_html(p) -> str:
+    """A probe result: the unit (as unit_html) with each exemplar's heat maps."""
     rows = []
     base = p.folder
     for e in p["exemplars"][:SHOW_TOP]:
@@ -238,7 +243,7 @@ def probe_html(p) -> str:
         for name, a in (e.get("attribution") or {}).items():
             f = base / a["file"] if base else None
             if f is not None and f.is_file():
-                pics.append(tag("figure", _picture(lambda f=f: Image.open(f), CROP_PX, name), tag("figcaption", name),
+                pics.append(tag("figure", _picture(lambda f=f: _read(f), CROP_PX, name), tag("figcaption", name),
                                 class_="ex"))
         rows.append(tag("div", tag("p", f"#{e['rank']} {e['score']:.4g} ", tag("code", e["id"])),
                         tag("div", *pics, class_="ex-grid") if pics else None))
