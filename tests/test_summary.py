@@ -10,7 +10,7 @@ from conftest import ROOT, run_cli
 
 from unitlens import MineConfig, mine, open_corpus, parse_layers
 from unitlens.demo.build import demo_corpus, demo_model
-from unitlens.synth import SynthConfig, synthesize
+from unitlens.synth import Goal, SynthConfig, synthesize
 
 
 @pytest.fixture(scope="module")
@@ -21,7 +21,7 @@ def run(tmp_path_factory):
     corpus = open_corpus(demo_corpus(d / "corpus", 24), labels="folders")
     layers = parse_layers(model, ["block1:0-1"])
     mine(model, corpus, layers, d / "run", MineConfig(top_k=3, workers=0))
-    synthesize(model, layers, d / "run", SynthConfig(steps=4, checks=0, stop_gain=None))
+    synthesize(model, Goal(layers), d / "run", SynthConfig(steps=4, checks=0, stop_gain=None))
     return d / "run"
 
 
