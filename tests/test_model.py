@@ -9,8 +9,9 @@ import torch
 import torchvision
 from torch import nn
 
-from conftest import TESTS, run_cli
+from conftest import TESTS, cli, run_cli
 from unitlens import MineConfig, UnitlensError, load_model, mine, open_corpus, parse_layers, unit_summary
+from unitlens.errors import UnitlensWarning
 from unitlens.units import parse_ranges
 
 NETS = f"{TESTS / 'nets.py'}"
@@ -66,9 +67,30 @@ def test_pickled_module_needs_opt_in(tmp_path, capsys):
         load_model(str(tmp_path / "whole.pt"))
     with pytest.raises(UnitlensError, match="pickled object"):
         load_model("torchvision:resnet18", str(tmp_path / "whole.pt"))
-    m = load_model(str(tmp_path / "whole.pt"), allow_pickle=True)
-    assert "Warning" in capsys.readouterr().err
+    capsys.readouterr()
+    with pytest.warns(UnitlensWarning, match="loading a pickled module"):
+        m = load_model(str(tmp_path / "whole.pt"), allow_pickle=True)
+    assert capsys.readouterr().err == ""  # the library warns; the CLI decides what to print
     assert list(m.layers()) == ["0"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", UnitlensWarning)  # pyproject's test settings ignore it
+        code, out, err = cli(capsys, "layers", tmp_path / "whole.pt", "--allow-pickle", "--size", "16")
+    assert code == 0 and err.count("Warning: loading a pickled module") == 1, (code, out, err)
+
+
+def test_mining_notes_skipped_files_on_the_logger_not_stderr(tmp_path, capsys, caplog):
+    from PIL import Image
+
+    c = tmp_path / "c"
+    c.mkdir()
+    for i in range(3):
+        Image.new("RGB", (20, 20), (60 * i, 90, 30)).save(c / f"ok{i}.png")
+    (c / "bad.png").write_bytes(b"not an image")
+    model = load_model(f"{TESTS / 'nets.py'}:digits_net", size=16)
+    with caplog.at_level("WARNING", logger="unitlens"):
+        mine(model, open_corpus(c), parse_layers(model, ["3"]), tmp_path / "run", MineConfig(top_k=2, workers=0))
+    assert [r.getMessage().split(":")[0] for r in caplog.records if r.name == "unitlens"] == ["Skipped bad.png"]
+    assert capsys.readouterr().err == ""
 
 
 def test_torchscript_sequential_works_and_compiled_forward_is_refused(tmp_path):

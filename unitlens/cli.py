@@ -1,9 +1,12 @@
 """The `unitlens` command: thin typed wrappers over the library; no computation here."""
 from __future__ import annotations
 
+import contextlib
 import json
+import logging
 import sys
 from enum import Enum
+import warnings
 from pathlib import Path
 from typing import NoReturn, Optional
 
@@ -443,23 +446,6 @@ def demo_cmd(
     print(build_demo(out, units=units, progress=sys.stderr.isatty(), force=force, **given))
 
 
-def _print_warnings() -> None:
-    """Our warnings as one `Warning: ...` line each on stderr; others as Python prints them."""
-    import warnings
-
-    from .errors import UnitlensWarning
-
-    shown = warnings.showwarning
-
-    def show(message, category, filename, lineno, file=None, line=None):
-        if issubclass(category, UnitlensWarning):
-            print(f"Warning: {message}", file=sys.stderr)
-        else:
-            shown(message, category, filename, lineno, file, line)
-
-    warnings.showwarning = show
-
-
 def _one_line_on_interrupt(command):
     """Ctrl-C that no stage reported itself (typer would exit 130 silently): the same one line."""
     import functools
@@ -481,12 +467,46 @@ for _c in app.registered_commands:
     _c.callback = _one_line_on_interrupt(_c.callback)
 
 
+class _Stderr(logging.Handler):
+    """Prints each record's message on sys.stderr as it is at that moment (a redirected stream is used)."""
+
+    def emit(self, record):
+        print(self.format(record), file=sys.stderr)
+
+
+@contextlib.contextmanager
+def report_to_stderr():
+    """While the command runs, what the library reports (errors.py) reaches the terminal: each
+    UnitlensWarning as one `Warning: ...` line, the `unitlens` logger's records as their message."""
+    from .errors import UnitlensWarning, log
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, UnitlensWarning):
+            print(f"Warning: {message}", file=sys.stderr)
+        else:
+            other(message, category, filename, lineno, file, line)
+
+    handler, level, propagate = _Stderr(), log.level, log.propagate
+    log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    log.propagate = False
+    with warnings.catch_warnings():
+        other = warnings.showwarning
+        warnings.showwarning = show
+        try:
+            yield
+        finally:
+            log.removeHandler(handler)
+            log.setLevel(level)
+            log.propagate = propagate
+
+
 def main() -> None:
     from .errors import UnitlensError, shown
 
-    _print_warnings()
     try:
-        app(prog_name="unitlens")  # the usage line and the --help hint name the command as installed
+        with report_to_stderr():
+            app(prog_name="unitlens")  # the usage line and the --help hint name the command as installed
     except UnitlensError as e:
         from .dist import fail
 

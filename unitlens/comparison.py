@@ -21,7 +21,6 @@ from __future__ import annotations
 
 import math
 import os
-import sys
 from dataclasses import asdict, dataclass, field
 from functools import partial
 from pathlib import Path
@@ -30,7 +29,8 @@ import numpy as np
 import torch
 
 from ._cka import _cka_matrix, _cross, _MinibatchTally, _moments, _pooled_interval
-from .errors import UnitlensError, interrupted
+from .errors import UnitlensError, interrupted, log, shown
+from .runview import Comparison
 from .store import Run, _atomic, check_folder, now, safe_name, write_json
 from .summary import _num
 
@@ -357,7 +357,7 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
         for batch in loader:
             for i, reason in batch.failures:
                 plan.ok[i] = False
-                print(f"Skipped {plan.corpus.files[i]}: {reason}", file=sys.stderr)
+                log.warning(f"Skipped {shown(plan.corpus.files[i])}: {reason}")
             if len(batch.indices):
                 rows = batch.indices.numpy()
                 grams = {}
@@ -499,8 +499,9 @@ def _check(cfg: CompareConfig) -> None:
 
 
 def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: CompareConfig = CompareConfig(),
-            progress: bool = False, allow_pickle: bool = False, atlas: bool = True) -> dict:
-    """Compare A with B layer by layer and unit by unit; return the summary (see the module doc).
+            progress: bool = False, allow_pickle: bool = False, atlas: bool = True) -> Comparison:
+    """Compare A with B layer by layer and unit by unit; return the summary (see the module doc), a
+    dict with tables and views for notebooks (runview.Comparison).
 
     `a`, `b`: two LoadedModels (then `corpus` and `layers` are needed; `layers_b` pairs other layers
     of B in depth order, e.g. for another architecture), or two run folders mined over the same
@@ -532,8 +533,8 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
                             "load_model(spec, weights); a run folder is what `unitlens mine --out` made.")
     for r in plan.recomputed:
         where = "every layer" if r["layer"] is None else r["layer"]
-        print(f"Note: recomputing {r['what']} of {where} in {r['model'].upper()} from the model named in "
-              f"the run's manifest, over the run's corpus: {r['why']}.", file=sys.stderr)
+        log.warning(f"Note: recomputing {r['what']} of {where} in {r['model'].upper()} from the model named in "
+                    f"the run's manifest, over the run's corpus: {r['why']}.")
     tally = _sweep(plan, config, progress)
     summary = _summarise(plan, config, tally)
     out = out if out is not None else plan.default_out
@@ -543,7 +544,7 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
             from .atlas.comparison_page import render_comparison
 
             summary["atlas"] = str(render_comparison(out))
-    return summary
+    return Comparison(summary)
 
 
 def comparison_text(s: dict) -> str:

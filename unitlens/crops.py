@@ -8,7 +8,6 @@ by rank, columns K..2K-1 the bottom ones (present when the layer goes negative).
 from __future__ import annotations
 
 import os
-import sys
 import warnings
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -16,7 +15,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from .errors import shown
+from .errors import UnitlensWarning, shown
 from .store import write_npz
 
 SHEET_ROWS = 32
@@ -142,8 +141,8 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
         idx = read_npz(run.layer_dir(lu.layer) / "index.npz")
         field = model.layer(lu.layer).field
         if field is None:
-            print(f"Warning: no receptive field known for {lu.layer}; its crops show the whole input.",
-                  file=sys.stderr)
+            warnings.warn(f"no receptive field known for {shown(lu.layer)}; its crops show the whole input.",
+                          UnitlensWarning, stacklevel=2)
         kinds, cols, wanted = _plan(idx, len(corpus), field, size, thumb)
         U, K = idx["top_image"].shape
         n_sheets = (U + SHEET_ROWS - 1) // SHEET_ROWS
@@ -169,7 +168,7 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
             for (i, todo), (bxs, cells, err) in zip(items, results):
                 if err is not None:
                     if i not in failed:
-                        print(f"Warning: no crop from {shown(corpus.files[i])}: {err}", file=sys.stderr)
+                        warnings.warn(f"no crop from {shown(corpus.files[i])}: {err}", UnitlensWarning, stacklevel=2)
                         failed.add(i)
                     continue
                 for (p, s, u, col, kind, r, _b, _n), box, cell in zip(todo, bxs, cells):

@@ -1,7 +1,15 @@
-"""The one error class of unitlens, its warning class, and a helper for 'did you mean' messages."""
+"""The one error class of unitlens, how the library reports what does not stop it, and a helper for
+'did you mean' messages.
+
+The library never prints: a hazard or a loss the user should heed (a pickled module, a crop that
+could not be cut) is a UnitlensWarning through `warnings`; a note about the data (a skipped file,
+statistics recomputed) goes to the `unitlens` logger at WARNING. The CLI decides how both are printed
+(cli.report_to_stderr); a notebook shows them as it shows any warning or log record.
+"""
 from __future__ import annotations
 
 import difflib
+import logging
 from collections.abc import Iterable
 
 
@@ -15,6 +23,9 @@ class UnitlensError(Exception):
     def __init__(self, message: str, status: int = 1):
         super().__init__(message)
         self.status = status
+
+
+log = logging.getLogger("unitlens")
 
 
 def interrupted(message: str) -> UnitlensError:

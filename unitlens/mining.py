@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import json
 import math
-import sys
 import time
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -18,7 +17,7 @@ import torch
 from . import dist
 from ._extract import forward_batch
 from ._progress import Progress
-from .errors import UnitlensError, interrupted, shown
+from .errors import UnitlensError, interrupted, log, shown
 from .facets import EMBED_DIM, THUMB, NearDuplicates, needs_pooled, thumbnails
 from .store import Run, disk_bytes, new_array, read_json, read_npz, space_for, write_json, write_npz
 from .units import LayerUnits
@@ -381,7 +380,7 @@ def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -
                              workers=config.workers, indices=shard):
             tallies, colour, skipped, next_index = done
             for i, reason in batch.failures:
-                print(f"Skipped {shown(corpus.files[i])}: {reason}", file=sys.stderr)
+                log.warning(f"Skipped {shown(corpus.files[i])}: {reason}")
             skipped = skipped + tuple((corpus.files[i], reason) for i, reason in batch.failures)
             # The resume point after this batch; recorded only once the batch is tallied.
             upto = max([next_index, *(batch.indices + 1).tolist(), *(i + 1 for i, _ in batch.failures)])

@@ -647,7 +647,7 @@ def _model_file(path: Path, allow_pickle: bool):
             f"pass the file as --weights (e.g. torchvision:resnet50 --weights {path}). If it is a whole "
             "pickled module and you trust its source, add --allow-pickle (unpickling can run code)."
         )
-    print(f"Warning: loading a pickled module from {path}; this runs code from the file.", file=sys.stderr)
+    warnings.warn(f"loading a pickled module from {path}; this runs code from the file.", UnitlensWarning, stacklevel=2)
     try:
         obj = torch.load(path, map_location="cpu", weights_only=False)
     except Exception as e:  # noqa: BLE001  (unpickling runs the file's code: any failure becomes one error)

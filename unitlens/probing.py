@@ -38,6 +38,7 @@ import torch
 from PIL import Image
 
 from .errors import UnitlensError
+from .runview import Probed
 from .store import Run, _atomic, safe_name, write_json, write_npz
 
 METHODS = {"ig": "integrated-gradients", "gxi": "gradient-x-input", "smoothgrad": "smoothgrad"}
@@ -179,9 +180,10 @@ def _save_png(path: Path, a: np.ndarray) -> None:
 # -- the probe -----------------------------------------------------------------------------------
 
 def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config: ProbeConfig = ProbeConfig(),
-          progress: bool = False, allow_pickle: bool = False) -> dict:
+          progress: bool = False, allow_pickle: bool = False) -> Probed:
     """What does one unit respond to? Returns the unit's summary (as `show --json`) with heat maps,
-    synthesised images and the page path; writes the page under RUN/probe/.
+    synthesised images and the page path (a dict that also draws itself in a notebook, see
+    runview.Probed); writes the page under RUN/probe/.
 
     `source` is a LoadedModel (then give `corpus`, a Corpus or folder, and `out`, a run folder) or a
     mined run folder.
@@ -240,7 +242,7 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
 
     summary["page"] = str(write_page(d, run, summary))
     write_json(d / "probe.json", summary)
-    return summary
+    return Probed(summary)
 
 
 def _synth_goal_config(run: Run, model, lu, config: ProbeConfig):

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import UnitlensError
-from .store import Run
+from .store import Run, read_npz
 
 
 def _num(x) -> float | None:
@@ -54,28 +54,12 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
         return out
 
     classes = run.manifest()["corpus"].get("classes") or []
-    class_mean = idx["class_mean"][:, u] if len(classes) else []
-    counts, edges = idx["hist"][u], idx["hist_edges"]
-    nz = np.nonzero(counts)[0]
     result = {
         "run": str(run.path),
         "layer": layer,
         "unit": channel,
-        "stats": {
-            "images": int(idx["count"]),
-            "mean_max": _num(idx["mean_max"][u]),
-            "std_max": _num(idx["std_max"][u]),
-            "mean_mean": _num(idx["mean_mean"][u]),
-            "fire_rate": _num(idx["fire_rate"][u]),
-            "min": _num(idx["low"][u]),
-            "max": _num(idx["high"][u]),
-            "class_selectivity": _num(idx["csi"][u]) if len(classes) >= 2 else None,
-            "class_means": {c: _num(v) for c, v in zip(classes, class_mean)},
-        },
-        "histogram": {
-            "edges": [float(edges[j]) for j in range(nz[0], nz[-1] + 2)] if len(nz) else [],
-            "counts": [int(c) for c in counts[nz[0]:nz[-1] + 1]] if len(nz) else [],
-        },
+        "stats": unit_stats(idx, u, classes),
+        "histogram": unit_histogram(idx, u),
         "exemplars": listing("top"),
     }
     if float(idx["low"].min()) < 0:
@@ -83,6 +67,7 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
     from .synth.results import unit_images
 
     result["synth"] = unit_images(run, layer, channel)  # [] until `unitlens synth` has run
+    result["facets"] = unit_facets(run, layer, channel, corpus)
     return result
 
 
@@ -111,3 +96,47 @@ def summary_text(s: dict, layer: str, channel: int) -> str:
             lines.append("    nearest natural images: " + ", ".join(f"{shown(n['id'])} ({n['similarity']:.2f})"
                                                                   for n in r["nearest"][:3]))
     return "\n".join(lines)
+
+
+def unit_stats(idx: dict, u: int, classes: list[str]) -> dict:
+    """The statistics of the unit at place `u` of a layer index (also the rows of a layer table)."""
+    class_mean = idx["class_mean"][:, u] if len(classes) else []
+    return {
+        "images": int(idx["count"]),
+        "mean_max": _num(idx["mean_max"][u]),
+        "std_max": _num(idx["std_max"][u]),
+        "mean_mean": _num(idx["mean_mean"][u]),
+        "fire_rate": _num(idx["fire_rate"][u]),
+        "min": _num(idx["low"][u]),
+        "max": _num(idx["high"][u]),
+        "class_selectivity": _num(idx["csi"][u]) if len(classes) >= 2 else None,
+        "class_means": {c: _num(v) for c, v in zip(classes, class_mean)},
+    }
+
+
+def unit_histogram(idx: dict, u: int) -> dict:
+    """The occupied span of the unit's histogram of per-image maxima (fixed asinh bins, see mining.py)."""
+    counts, edges = idx["hist"][u], idx["hist_edges"]
+    nz = np.nonzero(counts)[0]
+    return {
+        "edges": [float(edges[j]) for j in range(nz[0], nz[-1] + 2)] if len(nz) else [],
+        "counts": [int(c) for c in counts[nz[0]:nz[-1] + 1]] if len(nz) else [],
+    }
+
+
+def unit_facets(run: Run, layer: str, channel: int, corpus) -> dict | None:
+    """The unit's facets (facets.npz, see facets.py): its top images grouped by k-means in the layer's
+    embedding. {"k", "silhouette", "groups": [[{"id", "image"}, ...] per facet]}; None without facets."""
+    path = run.layer_dir(layer) / "facets.npz"
+    if not path.is_file():
+        return None
+    z = read_npz(path)
+    at = np.flatnonzero(z["units"] == channel)
+    if not len(at) or int(z["k"][at[0]]) < 1:
+        return None
+    j = int(at[0])
+    groups: list[list[dict]] = [[] for _ in range(int(z["k"][j]))]
+    for i, f in zip(z["image"][j], z["facet"][j]):
+        if f >= 0 and i < len(corpus):
+            groups[int(f)].append({"id": corpus.files[int(i)], "image": str(corpus.path(int(i)).absolute())})
+    return {"k": len(groups), "silhouette": _num(z["silhouette"][j]), "groups": groups}

@@ -50,14 +50,17 @@ def unit_images(run: Run | str, layer: str, channel: int) -> list[dict]:
     Each entry: image (PNG path), activation, vs_best_exemplar (None when unknown), max_activation,
     steps, rank, robustness, trace (npz path).
     """
+    return layer_images(run, layer).get(channel, [])
+
+
+def layer_images(run: Run | str, layer: str) -> dict[int, list[dict]]:
+    """{channel: the entries of unit_images} for every synthesised unit of `layer` (one read of units.json)."""
     run = run if isinstance(run, Run) else Run(run)
     d = run.layer_dir(layer, "synth")
     table = read_json(d / "units.json") or {"units": {}}
-    rec = table["units"].get(str(channel))
-    if not rec:
-        return []
-    return [{"image": str(d / im["file"]), "trace": str(d / rec["trace"]), **{k: v for k, v in im.items() if k != "file"}}
-            for im in rec["images"]]
+    return {int(key): [{"image": str(d / im["file"]), "trace": str(d / rec["trace"]),
+                        **{k: v for k, v in im.items() if k != "file"}} for im in rec["images"]]
+            for key, rec in table["units"].items() if rec}
 
 
 def trace_of(run: Run | str, layer: str, channel: int) -> np.ndarray:
