@@ -201,12 +201,16 @@ def show(
         print(json.dumps(s, indent=1))
         return
     st = s["stats"]
-    print(f"{shown(layer)} channel {channel}  ({st['images']} images)")
-    print(f"  per-image max: mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, range {st['min']:.4g} .. {st['max']:.4g}")
-    print(f"  fires (max > 0) on {100 * st['fire_rate']:.1f}% of images", end="")
-    print(f"; class selectivity {st['class_selectivity']:.3f}" if st["class_selectivity"] is not None else "")
+    if st is None:
+        print(f"{shown(layer)} channel {channel}  (synthesised only: this layer was not mined, so no exemplars "
+              "or statistics)")
+    else:
+        print(f"{shown(layer)} channel {channel}  ({st['images']} images)")
+        print(f"  per-image max: mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, range {st['min']:.4g} .. {st['max']:.4g}")
+        print(f"  fires (max > 0) on {100 * st['fire_rate']:.1f}% of images", end="")
+        print(f"; class selectivity {st['class_selectivity']:.3f}" if st["class_selectivity"] is not None else "")
     for title, key in (("top exemplars", "exemplars"), ("most negative", "negative_exemplars")):
-        if key not in s:
+        if not s.get(key):
             continue
         print(f"  {title}:")
         for e in s[key]:
