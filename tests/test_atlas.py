@@ -431,6 +431,52 @@ def test_unit_view_deep_link_keys_and_hostile_exemplar(tiny, browser, shots):
     page.close()
 
 
+def test_firing_share_and_class_selectivity_carry_information(tiny):
+    from unitlens.atlas.data import FIRE_QUANTILE
+
+    for layer in ("3", "6"):
+        c = _units_data(tiny.atlas, layer)
+        values = np.load(tiny.run.layer_dir(layer) / "values.npy").astype(np.float64)  # (N, U) per-image maxima
+        files = json.loads((tiny.run.path / "corpus.json").read_text())["files"]
+        skipped = {s["file"] for s in tiny.run.manifest()["corpus"]["skipped"]}
+        values = values[[f not in skipped for f in files]]  # a file that could not be read has no maxima
+        t = c["fire_at"]
+        # brute force: the threshold is the layer's pooled quantile, and each share is counted on the raw maxima
+        assert np.mean(values >= t) <= 1 - FIRE_QUANTILE + 1e-9
+        assert np.mean(values >= np.nextafter(np.float32(t), -np.inf)) > 0  # some maxima reach it
+        np.testing.assert_allclose(c["fire"], (values >= np.float32(t)).mean(0), atol=1e-3)
+        assert 0 < min(c["fire"]) or max(c["fire"]) < 1  # not every unit at 100 %
+        page = (tiny.atlas / f"layer-{layer}.html").read_text()
+        assert "90th percentile" in _text(page)
+    # class selectivity only where activations are non-negative: layer 3 follows a ReLU, layer 6 goes negative
+    assert all(v is not None and v >= 0 for v in _units_data(tiny.atlas, "3")["csi"])
+    assert all(v is None for v in _units_data(tiny.atlas, "6")["csi"])
+
+
+@needs_browser
+def test_every_card_number_is_labelled_and_explained(tiny, browser):
+    for layer in ("3", "6", "1"):
+        page = _open(browser, (tiny.atlas / f"layer-{layer}.html").as_uri(), height=2400)
+        nums = page.js("[...document.querySelectorAll('#grid .card .num-l')].map(e => [e.className, e.title, "
+                       "e.querySelector('.lab') ? e.querySelector('.lab').textContent : '', e.textContent])")
+        assert nums, layer
+        for cls, title, label, text in nums:
+            assert len(title) > 10, (cls, title)  # a tooltip that says what the number is
+            assert label or "uid" in cls, (cls, text)  # a visible label (the unit id is the card's title)
+        # every text on a card with a digit in it is one of those labelled numbers
+        stray = page.js("[...document.querySelectorAll('#grid .card')].flatMap(c => [...c.querySelectorAll('*')]"
+                        ".filter(e => e.children.length === 0 && /\\d/.test(e.textContent) && !e.closest('.num-l')"
+                        " && !e.closest('svg')).map(e => e.outerHTML))")
+        assert stray == [], stray[:3]
+        sel = page.js("[...document.querySelectorAll('#sort option')].filter(o => o.value === 'csi').map(o => o.disabled)")
+        assert sel == [layer != "3"]  # not sortable where it is not defined
+        if layer == "1":  # synthesised, never mined: no empty exemplar boxes
+            assert page.js("document.querySelectorAll('#grid .crop, #grid .quad, #grid .hero.empty').length") == 0
+            assert page.js("document.querySelectorAll('#grid .card img.synthimg').length") == 2
+        _clean(page)
+        page.close()
+
+
 @needs_browser
 def test_the_folder_also_works_from_a_static_web_server(tiny, browser):
     import functools

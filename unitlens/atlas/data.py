@@ -21,6 +21,7 @@ from ..store import Run, read_json, read_npz
 
 HIST_BINS = 24  # linear bins of the re-binned histogram (cards and unit view)
 TRACE_POINTS = 96  # at most this many points of an optimisation trace reach the page
+FIRE_QUANTILE = 0.9  # a unit "fires" on an image when its maximum there reaches the layer's 90th percentile
 
 
 def _f(x, digits: int = 4):
@@ -209,6 +210,21 @@ def spark(counts) -> str:
     return "".join(SPARK[v] for v in lv)
 
 
+def fire_rates(hist: np.ndarray, edges: np.ndarray, q: float = FIRE_QUANTILE) -> tuple[float, np.ndarray]:
+    """(t, per-unit share of images whose per-image maximum is >= t).
+
+    hist (U, J) counts of the per-image maxima on fixed bins, edges (J + 1,). t is the lowest bin
+    edge with at most 1 - q of the layer's per-image maxima (all units pooled) at or above it:
+    "max > 0" says nothing on a layer whose units are positive on every image, and a threshold
+    on a bin edge makes each share exact, read off the counts.
+    """
+    h = np.asarray(hist, dtype=np.float64)  # (U, J)
+    tail = np.append(np.cumsum(h.sum(0)[::-1])[::-1], 0.0)  # (J + 1,): pooled count at or above each edge
+    j = int(np.argmax(tail <= (1 - q) * tail[0]))
+    n = h.sum(1)
+    return float(edges[j]), np.where(n > 0, h[:, j:].sum(1) / np.maximum(n, 1), np.nan)
+
+
 def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict, dict]:
     """(card columns, histogram columns for the details) of the mined units."""
     K = int(idx["top_image"].shape[1])
@@ -227,12 +243,16 @@ def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict
         mm = float(idx["mean_max"][p])
         spark_mean.append(round((mm - lo) / (hi - lo), 3) if lo is not None and hi > lo and math.isfinite(mm) else None)
     csi = idx.get("csi")
+    if csi is not None and not float(np.nanmin(idx["low"])) >= 0:
+        csi = None  # the index assumes non-negative activations: with negative class means it means nothing
+    fire_at, fire = fire_rates(idx["hist"], idx["hist_edges"]) if "hist" in idx else (None, idx["fire_rate"])
     top_ok = idx["top_score"]
     cards = {
         "shape": shape, "images": int(idx["count"]), "k": K,
         "negative": "bottom_box" in idx,  # the sheets hold bottom crops only when the layer goes negative
         "peak": _pick(idx["high"], units, pos),
-        "fire": _pick(idx["fire_rate"], units, pos),
+        "fire": _pick(fire, units, pos),
+        "fire_at": _f(fire_at) if fire_at is not None else None, "fire_q": FIRE_QUANTILE,
         "csi": _pick(csi, units, pos) if csi is not None else [None] * len(units),
         # number of filled exemplar slots per unit (a tiny corpus may have fewer than K images)
         "filled": [int(np.isfinite(top_ok[pos[u]]).sum()) if u in pos else 0 for u in units],

@@ -154,6 +154,9 @@ def _draw_layer(run: Run, out: Path, name: str) -> dict:
         facts.append("feature map " + " × ".join(map(str, c["shape"])))
     if c.get("mined"):
         facts.append(f"{c['k']} exemplars per unit from {c['images']:,} images")
+        if c.get("fire_at") is not None:
+            facts.append(f"“fires” = per-image maximum ≥ {c['fire_at']:.3g}, the layer's "
+                         f"{round(100 * c['fire_q'])}th percentile over all its units")
     else:
         facts.append("not mined yet: no exemplars or statistics")
     facts.append(f"{c['synthesised']} synthesised" if c["synthesised"] else "no synthesised images yet")

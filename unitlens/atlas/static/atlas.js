@@ -14,7 +14,7 @@
   const filterIn = document.getElementById("filter"), countOut = document.getElementById("count");
   const byUnit = new Map(C.units.map((u, i) => [u, i]));
   const fmt = P.fmt;
-  const HERO = 104, SMALL = 50, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
+  const HERO = 104, SMALL = 50, STRIP = 8, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
   const SPARK = "0123456789ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz-_";
 
   const el = P.el, add = P.add;
@@ -43,6 +43,18 @@
     return im;
   }
 
+  const FIRE_TIP = C.fire_at === null || C.fire_at === undefined ? "share of images on which the unit's maximum is above 0"
+    : "share of images on which the unit's maximum reaches " + fmt(C.fire_at) + ", the layer's " + Math.round(100 * C.fire_q) +
+      "th percentile of per-image maxima over all its units";
+  /* a number on a card: a visible label and a tooltip saying what it is */
+  function num(parent, cls, label, value, tip) {
+    const s = add(parent, "span", "num-l " + cls);
+    if (label) add(s, "span", "lab", label);
+    add(s, "span", "val", String(value));
+    s.title = tip;
+    return s;
+  }
+
   /* ---- one card (built on first sight, kept for reuse) */
   const built = new Array(N);
   function card(i) {
@@ -53,9 +65,9 @@
     a.dataset.unit = String(u);
     a.setAttribute("aria-label", "unit " + u);
     const top = add(a, "div", "card-head");
-    add(top, "span", "uid", u);
-    if (C.mined && C.peak[i] !== null) add(top, "span", "peak n-peak", "peak " + fmt(C.peak[i]));
-    const imgs = add(a, "div", "card-imgs");
+    num(top, "uid", "", u, "unit (channel) " + u + " of " + C.layer);
+    if (C.mined && C.peak[i] !== null) num(top, "peak n-peak", "peak", fmt(C.peak[i]), "peak: the largest activation of this unit anywhere in the corpus");
+    const imgs = add(a, "div", "card-imgs" + (C.mined ? "" : " synth-only"));
     let first = 0;
     if (src) {
       const f = add(imgs, "span", "hero synth");
@@ -65,8 +77,10 @@
       add(imgs, "span", "hero").appendChild(crop(i, 0, HERO));
       first = 1;
     } else add(imgs, "span", "hero empty", "no images yet");
-    const quad = add(imgs, "span", "quad");
-    for (let r = first; r < first + 4; r++) quad.appendChild(r < filled ? crop(i, r, SMALL) : el("span", "crop nocrop"));
+    if (C.mined && filled > first) {  // only exemplars that exist get a box
+      const quad = add(imgs, "span", "quad");
+      for (let r = first; r < Math.min(filled, first + STRIP); r++) quad.appendChild(crop(i, r, SMALL));
+    }
     const sp = C.spark ? C.spark[i] : "";
     if (sp) {
       const counts = Array.from(sp, ch => SPARK.indexOf(ch));
@@ -74,11 +88,11 @@
         marks: [{ x: C.spark_mean[i], cls: "mean" }], title: "distribution of the per-image maximum (dashed: mean)" }));
     } else add(a, "div", "spark-empty", C.mined ? "" : "not mined");
     const nums = add(a, "div", "card-nums");
-    if (C.mined) {
-      add(nums, "span", "n-fire", "fires " + pct(C.fire[i]));
-      if (C.csi[i] !== null) add(nums, "span", "n-csi", "sel " + fmt(C.csi[i], 2));
-    }
-    if (C.ratio[i] !== null) add(nums, "span", "n-ratio", "synth ×" + fmt(C.ratio[i], 2));
+    if (C.mined && C.fire[i] !== null) num(nums, "n-fire", "fires", pct(C.fire[i]), FIRE_TIP);
+    if (C.mined && C.csi[i] !== null) num(nums, "n-csi", "class sel.", fmt(C.csi[i], 2),
+      "class selectivity: 0 when every class drives the unit alike, 1 when only one does");
+    if (C.ratio[i] !== null) num(nums, "n-ratio", "synth/nat", "×" + fmt(C.ratio[i], 2),
+      "the synthesised image's spatial maximum over the best natural exemplar's");
     built[i] = a;
     return a;
   }
@@ -282,7 +296,7 @@
       ["peak (largest per-image max)", fmt(C.peak[i], 4)],
       ["per-image max, mean ± std", fmt(D.mean_max[i]) + " ± " + fmt(D.std_max[i])],
       ["mean activation", fmt(D.mean_mean[i])],
-      ["fires (max > 0) on", pct(C.fire[i])],
+      [C.fire_at === null || C.fire_at === undefined ? "fires (max > 0) on" : "fires (max ≥ " + fmt(C.fire_at) + ") on", pct(C.fire[i])],
       ["lowest value anywhere", fmt(D.low[i])],
       ["class selectivity", C.csi[i] === null ? null : fmt(C.csi[i], 3)],
       ["synthesised / natural", C.ratio[i] !== null ? "×" + fmt(C.ratio[i], 3) : null],
@@ -329,9 +343,9 @@
     const means = D.class_mean[i];
     let best = 0;
     means.forEach((v, k) => { if (v !== null && (means[best] === null || v > means[best])) best = k; });
-    add(sec, "p", "note", "Mean activation per class (spatial mean over each image). Class selectivity " +
-      (C.csi[i] === null ? "–" : fmt(C.csi[i], 3)) + ": 0 when every class drives the unit alike, 1 when only one does" +
-      (means.some(v => v !== null && v < 0) ? "; the index assumes non-negative activations, so with negative class means here read it with care." : "."));
+    add(sec, "p", "note", "Mean activation per class (spatial mean over each image). " + (C.csi[i] === null
+      ? "No class selectivity: the index is defined for non-negative activations only, and this layer goes negative."
+      : "Class selectivity " + fmt(C.csi[i], 3) + ": 0 when every class drives the unit alike, 1 when only one does."));
     const box = add(sec, "div", "plotbox");
     box.dataset.plot = "classes";
     box.appendChild(P.hbars({ labels: D.classes, values: means, highlight: best, width: 400, title: "class means of unit " + C.units[i] }));
