@@ -369,7 +369,7 @@ def test_pages_open_from_file_with_no_errors_and_no_network(tiny, browser, shots
     _clean(page)
     body = page.js("document.body.innerText")
     assert f"dots/{HOSTILE}.jpg" in body and "not an image" in body
-    assert page.js("document.querySelectorAll('img').length") == 0
+    assert page.js("document.querySelectorAll('img').length") == page.js("document.querySelectorAll('td.overview img').length")
     page.close()
     for layer, units in (("3", 32), ("6", 10), ("1", 2)):
         page = _open(browser, (tiny.atlas / f"layer-{layer}.html").as_uri(), height=2400)  # tall: every card fits
@@ -475,6 +475,65 @@ def test_every_card_number_is_labelled_and_explained(tiny, browser):
             assert page.js("document.querySelectorAll('#grid .card img.synthimg').length") == 2
         _clean(page)
         page.close()
+
+
+def _path_leaks(atlas: Path, roots: list[str]) -> list[str]:
+    """'file: what' for every absolute path left in any file of an atlas: the given roots in any file (images
+    too), and anything shaped like an absolute path in its pages and data (our own static files excluded)."""
+    from unitlens.atlas.paths import ABSOLUTE
+    from unitlens.atlas.render import STATIC
+
+    leaks = []
+    for f in sorted(p for p in atlas.rglob("*") if p.is_file()):
+        raw = f.read_bytes()
+        leaks += [f"{f.name}: {r}" for r in roots if r.encode() in raw]
+        if f.suffix in (".html", ".js", ".json") and f.name not in STATIC + ("compare.js",):
+            leaks += [f"{f.name}: {m.group(0)}" for m in ABSOLUTE.finditer(raw.decode())]
+    return leaks
+
+
+def test_strip_paths_leaves_no_absolute_path_in_the_atlas(tiny, tmp_path):
+    import sys
+
+    run = tmp_path / "shared-run"
+    shutil.copytree(tiny.run.path, run)
+    roots = [str(tiny.run.path.parent), str(TESTS), str(ROOT), sys.prefix, "/tmp/"]
+    before = _path_leaks(run / "atlas", roots)
+    assert any(str(TESTS) in x for x in before) and any("corpus" in x for x in before)  # the check can see a leak
+    index = run_cli("atlas", run, "--strip-paths").stdout.strip()
+    assert _path_leaks(run / "atlas", roots) == []
+    text = _text(Path(index).read_text())
+    assert "nets.py:digits_net" in text  # the model is still named, as a file
+    render_atlas(run)  # a later redraw (as `run` does after each layer) keeps the choice
+    assert _path_leaks(run / "atlas", roots) == []
+    render_atlas(run, strip_paths=False)
+    assert _path_leaks(run / "atlas", roots)
+
+
+def test_index_names_the_model_by_file_folds_settings_and_previews_layers(tiny):
+    html = tiny.index.read_text()
+    lede = re.search(r'<p class="lede">(.*?)</p>', html).group(1)
+    assert "<code>nets.py:digits_net</code>" in lede and str(TESTS) not in lede
+    assert re.search(r'<details class="settings">', html) and " open" not in re.search(r"<details[^>]*>", html).group(0)
+    for layer in ("3", "6", "1"):
+        row = re.search(rf'<tr data-layer="{layer}">(.*?)</tr>', html).group(1)
+        pics = re.findall(r'<a href="layer-[^"]+#unit-(\d+)"[^>]*class="ov">', row)
+        srcs = re.findall(r'(?:src|href)="(img/[^"]+)"', row)
+        assert pics and len(srcs) == len(pics), layer
+        assert all((tiny.atlas / s).is_file() for s in srcs), srcs
+
+
+@needs_browser
+def test_index_previews_load_in_the_browser(tiny, browser, shots):
+    page = _open(browser, tiny.index.as_uri(), ready=False)
+    page.wait_for("document.readyState === 'complete'")
+    time.sleep(0.3)
+    n = page.js("[...document.querySelectorAll('td.overview img')].filter(i => i.complete && i.naturalWidth > 0).length")
+    assert n == 2 + 3  # layer 1 has two synthesised units, layer 6 three; layer 3 shows crops
+    assert page.js("document.querySelectorAll('td.overview svg image').length") == 6
+    page.screenshot(shots / "atlas-index.png")
+    _clean(page)
+    page.close()
 
 
 @needs_browser

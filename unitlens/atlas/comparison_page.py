@@ -22,6 +22,7 @@ from ..errors import UnitlensError
 from ..store import Run, read_json, safe_name
 from .comparison_data import THUMB, find_sides, image_ids, make_thumbs, pair_data, rel_url, wanted_thumbs
 from .html import Html, _dl, _params, _weights, esc, join, js_data, page, tag
+from .paths import model_name
 from .render import _place_all, _write_if_changed
 
 STATIC = ("atlas.css", "compare.css", "plots.js", "compare.js", "icon.png")
@@ -364,7 +365,7 @@ def comparisons_section(run_path: Path, atlas: Path) -> Html:
         link = tag("a", name, href=rel_url(index, atlas)) if index.is_file() else join(
             [esc(name), tag("span", f" (no pages yet: unitlens atlas {cmp.parent})", class_="note")])
         b = s.get("b") or {}
-        other = Path(str(b.get("run"))).name if b.get("source") == "run" else (b.get("model") or {}).get("spec", "?")
+        other = Path(str(b.get("run"))).name if b.get("source") == "run" else model_name((b.get("model") or {}).get("spec", "?"))
         cka = ", ".join(f"{e['layer']} {_fmt(e['cka'], 2)}" for e in s.get("layers", [])[:8])
         rows.append(tag("tr", tag("th", link, scope="row"), tag("td", tag("code", other)), tag("td", tag("code", cka)),
                         tag("td", tag("time", s.get("created", "?")))))
