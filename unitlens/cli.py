@@ -381,13 +381,16 @@ def compare_cmd(
     if as_json:
         print(json.dumps(s, indent=1))
         return
+    from .atlas.comparison_page import cka_text
+
     fmt = lambda v: "-" if v is None else f"{v:.3f}"  # noqa: E731
-    print(f"{'layer':<20} {'CKA':>6} {'95% interval':>15} {'full-map':>9} {'corr':>6} {'jaccard':>7} {'dead':>4}  most changed")
+    cka = lambda v: "-" if v is None else cka_text(v)  # noqa: E731  enough digits to tell 0.999 from 1
+    print(f"{'layer':<20} {'CKA':>6} {'95% interval':>15} {'full-map':>9} {'corr':>6} {'jaccard':>7} {'dead':>4} {'changed':>7}  most changed")
     for e in s["layers"]:
         name = e["layer"] if e["layer"] == e["layer_b"] else f"{e['layer']}~{e['layer_b']}"
-        ci = f"{fmt(e['cka_ci'][0])}-{fmt(e['cka_ci'][1])}" if e["cka_ci"] else "-"
-        print(f"{name:<20} {fmt(e['cka']):>6} {ci:>15} {fmt(e['cka_full_maps']):>9} {fmt(e['mean_corr']):>6} "
-              f"{fmt(e['mean_jaccard']):>7} {e['dead']:>4}  {', '.join(map(str, e['most_changed'][:8])) or e['units_note'] or ''}")
+        ci = f"{cka(e['cka_ci'][0])}-{cka(e['cka_ci'][1])}" if e["cka_ci"] else "-"
+        print(f"{name:<20} {cka(e['cka']):>6} {ci:>15} {cka(e['cka_full_maps']):>9} {fmt(e['mean_corr']):>6} "
+              f"{fmt(e['mean_jaccard']):>7} {e['dead']:>4} {e['changed']:>7}  {', '.join(map(str, e['most_changed'][:8])) or e['units_note'] or ''}")
     print(s["out"])
     print(s["atlas"])
 
