@@ -465,7 +465,7 @@ def test_every_card_number_is_labelled_and_explained(tiny, browser):
             assert label or "uid" in cls, (cls, text)  # a visible label (the unit id is the card's title)
         # every text on a card with a digit in it is one of those labelled numbers
         stray = page.js("[...document.querySelectorAll('#grid .card')].flatMap(c => [...c.querySelectorAll('*')]"
-                        ".filter(e => e.children.length === 0 && /\\d/.test(e.textContent) && !e.closest('.num-l')"
+                        ".filter(e => e.children.length === 0 && /\\d/.test(e.textContent) && !e.closest('.num-l, .doubt[title]')"
                         " && !e.closest('svg')).map(e => e.outerHTML))")
         assert stray == [], stray[:3]
         sel = page.js("[...document.querySelectorAll('#sort option')].filter(o => o.value === 'csi').map(o => o.disabled)")
@@ -532,6 +532,58 @@ def test_index_previews_load_in_the_browser(tiny, browser, shots):
     assert n == 2 + 3  # layer 1 has two synthesised units, layer 6 three; layer 3 shows crops
     assert page.js("document.querySelectorAll('td.overview svg image').length") == 6
     page.screenshot(shots / "atlas-index.png")
+    _clean(page)
+    page.close()
+
+
+@pytest.fixture(scope="module")
+def doubtful(tmp_path_factory):
+    """Four synthesised units whose evidence is set by hand: 0 passes every check, 1 ran 80 steps still
+    rising (the loop's own early-stop test, window 32, says it did not converge), 2 is rank 3 on its own
+    image, 3 keeps a third of its effect under warps and stays below the best natural exemplar."""
+    run = fake_run(tmp_path_factory.mktemp("doubtful") / "run", units=4, k=4, images=32)
+    sd = run.layer_dir("layer4", "synth")
+    table = json.loads((sd / "units.json").read_text())
+    for u, rec in table["units"].items():
+        u = int(u)
+        trace = np.full((1, 80), 5.0, np.float32) if u != 1 else np.arange(80, dtype=np.float32)[None]
+        np.savez(sd / rec["trace"], trace=trace, steps=np.array([80]))
+        im = rec["images"][0]
+        im.update(steps=80, rank=3 if u == 2 else 1, vs_best_exemplar=0.7 if u == 3 else 1.5,
+                  robustness={"n": 8, "mean": 0.3, "std": 0.1, "relative": 0.33 if u == 3 else 0.9})
+    write_json(sd / "units.json", table)
+    m = run.manifest()
+    m["synth"]["settings"]["config"].update(stop_window=32, stop_gain=0.01)
+    run.save_manifest(m)
+    index = render_atlas(run)
+    return SimpleNamespace(run=run, atlas=index.parent)
+
+
+def test_synthesis_doubts_follow_the_evidence(doubtful):
+    c = _units_data(doubtful.atlas, "layer4")
+    assert c["doubts"][0] == [] and c["trust"][0] == 1
+    assert c["doubts"][1] == ["did not converge"]
+    assert c["doubts"][2] == ["rank 3 on its own image"] and c["own_rank"][2] == 3
+    assert set(c["doubts"][3]) == {"below the best natural exemplar", "loses most of its effect under small warps"}
+    assert c["trust"][3] == 0.5 and c["robust"][3] == pytest.approx(0.33)
+
+
+@needs_browser
+def test_cards_mark_doubtful_synthesis_and_filter_by_it(doubtful, browser):
+    page = _open(browser, (doubtful.atlas / "layer-layer4.html").as_uri())
+    marks = page.js("Object.fromEntries([...document.querySelectorAll('#grid .card')].map(c => [c.dataset.unit, "
+                    "c.querySelector('.doubt') ? [c.querySelector('.doubt').className, c.querySelector('.doubt').title] : null]))")
+    assert marks["0"] is None
+    assert "unconverged" in marks["1"][0] and "did not converge" in marks["1"][1]
+    assert marks["2"] and "rank 3" in marks["2"][1] and "unconverged" not in marks["2"][0]
+    shown = "[...document.querySelectorAll('#grid .card')].map(c => +c.dataset.unit).sort()"
+    for value, want in (("unconverged", [1]), ("doubtful", [1, 2, 3]), ("trusted", [0]), ("all", [0, 1, 2, 3])):
+        page.js(f"(s => {{ s.value = '{value}'; s.dispatchEvent(new Event('change')); }})(document.getElementById('trust'))")
+        assert page.js(shown) == want, value
+    page.js("(s => { s.value = 'trust'; s.dispatchEvent(new Event('change')); })(document.getElementById('sort'))")
+    order = page.js("[...document.querySelectorAll('#grid .card')].sort((a, b) => parseFloat(a.style.top) - "
+                    "parseFloat(b.style.top) || parseFloat(a.style.left) - parseFloat(b.style.left)).map(c => +c.dataset.unit)")
+    assert order[0] == 0 and order[-1] == 3  # all checks passed first, two failed last
     _clean(page)
     page.close()
 

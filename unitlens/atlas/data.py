@@ -113,10 +113,38 @@ def _thin(trace: np.ndarray) -> dict:
     return {"step": [s + 1 for s in steps], "value": _fs(trace[steps])}
 
 
-def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
-    """Card part, detail part and image files of one synthesised unit (names within the layer's image folder)."""
+def _doubts(im: dict, converged: bool | None) -> tuple[list[str], int]:
+    """What speaks against trusting one synthesised image, and how many checks could be judged.
+
+    Checks: the optimisation converged (its own early-stop test on the finished trace), parity
+    (the synthesis's own field when it wrote one, else a spatial maximum at least the best natural
+    exemplar's), rank 1 among the layer's channels on its own image, and keeping at least half of
+    its effect under random warps."""
+    parity = im.get("parity")
+    if parity is not None and not isinstance(parity, bool):  # a number: the share of the natural best reached
+        parity = float(parity) >= 1
+    if parity is None and im.get("ratio") is not None:
+        parity = im["ratio"] >= 1
+    rob = (im.get("robustness") or {}).get("relative")
+    checks = [(converged, "did not converge"), (parity, "below the best natural exemplar"),
+              (None if im.get("rank") is None else im["rank"] == 1, f"rank {im.get('rank')} on its own image"),
+              (None if rob is None else rob >= 0.5, "loses most of its effect under small warps")]
+    return [why for ok, why in checks if ok is False], sum(ok is not None for ok, _ in checks)
+
+
+def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.01)) -> tuple[dict, dict, list[Path]]:
+    """Card part, detail part and image files of one synthesised unit (names within the layer's image folder).
+
+    `stop`: the run's early-stop window and gain, which also say whether a finished image converged."""
+    from ..synth.results import stalled
+
+    tr = None
+    tname = Path(str(rec.get("trace", ""))).name
+    if tname and (d / tname).is_file():
+        with np.load(d / tname, allow_pickle=False) as z:  # read the one array needed, not the whole file
+            tr = np.atleast_2d(z["trace"]) if "trace" in z.files else None
     images, files = [], []
-    for im in rec.get("images", []):
+    for m, im in enumerate(rec.get("images", [])):
         name = Path(str(im["file"])).name
         files.append(d / name)
         rob = im.get("robustness") or None
@@ -131,17 +159,22 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
             "robustness": None if not rob else {
                 "n": rob.get("n"), "mean": _f(rob.get("mean", math.nan)), "std": _f(rob.get("std", math.nan)),
                 "relative": _f(rob["relative"]) if rob.get("relative") is not None else None},
+            "parity": im.get("parity"), "parity_step": im.get("parity_step"),
         })
-    traces = []
-    tname = Path(str(rec.get("trace", ""))).name
-    if tname and (d / tname).is_file():
-        with np.load(d / tname, allow_pickle=False) as z:  # read the one array needed, not the whole file
-            tr = z["trace"] if "trace" in z.files else None
-        if tr is not None:
-            traces = [_thin(row) for row in np.atleast_2d(tr)]
+        row = tr[m][np.isfinite(tr[m])] if tr is not None and m < len(tr) else None
+        window, gain = stop
+        judged = row is not None and len(row) >= 2 * window
+        images[-1]["converged"] = bool(stalled(row.tolist(), window, gain or 0.01)) if judged else None
+        images[-1]["doubts"], images[-1]["checks"] = _doubts(images[-1], images[-1]["converged"])
+    traces = [_thin(row) for row in tr] if tr is not None else []
     ratios = [im["ratio"] for im in images if im["ratio"] is not None]
+    first = images[0] if images else {}
     card = {"src": files[0].name if files else None, "count": len(images),
-            "ratio": max(ratios) if ratios else None}
+            "ratio": max(ratios) if ratios else None,
+            # the card shows the first image: its doubts, and the share of its judged checks it passes
+            "doubts": first.get("doubts") or [],
+            "trust": _f(1 - len(first["doubts"]) / first["checks"], 3) if first.get("checks") else None,
+            "own_rank": first.get("rank"), "robust": (first.get("robustness") or {}).get("relative")}
     best = rec.get("best_exemplar")
     detail = {"images": images, "trace": traces, "best_exemplar": _f(best) if best is not None else None}
     strip = Path(str(rec.get("nearest_strip") or "")).name
@@ -180,14 +213,18 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
         sheets, cards["sheets"] = _sheets(run, layer, idx, len(mined), img_dir)
     images: list[Path] = []
     scard, sdet = [None] * U, [None] * U
+    sc = (((read_json(run.manifest_path) or {}).get("synth") or {}).get("settings") or {}).get("config") or {}
+    stop = (int(sc.get("stop_window") or 32), sc.get("stop_gain", 0.01))
     for i, u in enumerate(units):
         if u in synth:
-            scard[i], sdet[i], files = _synth_payload(sdir, synth[u])
+            scard[i], sdet[i], files = _synth_payload(sdir, synth[u], stop)
             images += files
     cards["img_dir"] = img_dir
     cards["synth_src"] = [c["src"] if c else None for c in scard]
     cards["synth_n"] = [c["count"] if c else 0 for c in scard]
     cards["ratio"] = [c["ratio"] if c else None for c in scard]
+    for key in ("trust", "doubts", "own_rank", "robust"):
+        cards[key] = [c[key] if c else None for c in scard]
     details["synth"] = sdet
     return LayerData(layer, cards, details, sheets, images)
 

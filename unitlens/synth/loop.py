@@ -30,6 +30,7 @@ from .._memory import available_memory
 from ..errors import UnitlensError
 from .bases import ColourBasis, make_basis
 from .goal import Context, Goal, Scorer
+from .results import stalled as _stalled
 from .warps import Warps, warp
 
 MAX_REDRAWS = 4  # new random starts for a unit silent at its start (contrast x3 each time)
@@ -323,16 +324,6 @@ class _Engine:
             px = self.basis.pixels(u.params)  # (M, C, S, S)
         return UnitResult(u.index, u.target, px.permute(0, 2, 3, 1).numpy().astype(np.float32),
                           [np.array(t, dtype=np.float32) for t in u.traces], [int(s) for s in u.step], self.layer)
-
-
-def _stalled(trace: list[float], window: int, gain: float | None) -> bool:
-    """True once the mean of the last `window` values beats the window before by less than `gain`
-    (relative); noisy traces (random transforms) need the averaging."""
-    if gain is None or len(trace) < 2 * window:
-        return False
-    a = sum(trace[-2 * window:-window]) / window
-    b = sum(trace[-window:]) / window
-    return b - a < gain * max(abs(a), abs(b), 1e-8)
 
 
 def is_out_of_memory(e: BaseException) -> bool:

@@ -73,6 +73,13 @@
       const f = add(imgs, "span", "hero synth");
       f.appendChild(synthImg(src, HERO, "synthesised image for unit " + u));
       add(f, "span", "badge", "synth");
+      const doubts = C.doubts ? C.doubts[i] : null;
+      if (doubts && doubts.length) {  // a visible mark; the tooltip says why
+        const d = add(f, "span", "doubt" + (doubts.indexOf("did not converge") >= 0 ? " unconverged" : ""),
+          doubts.indexOf("did not converge") >= 0 ? "not converged" : doubts.length === 1 ? "1 doubt" : doubts.length + " doubts");
+        d.title = "Mind: " + doubts.join("; ");
+        a.classList.add("doubtful");
+      }
     } else if (filled > 0) {
       add(imgs, "span", "hero").appendChild(crop(i, 0, HERO));
       first = 1;
@@ -93,20 +100,28 @@
       "class selectivity: 0 when every class drives the unit alike, 1 when only one does");
     if (C.ratio[i] !== null) num(nums, "n-ratio", "synth/nat", "×" + fmt(C.ratio[i], 2),
       "the synthesised image's spatial maximum over the best natural exemplar's");
+    if (C.trust && C.trust[i] !== null) num(nums, "n-trust", "trust", pct(C.trust[i]),
+      "share of the synthesis checks its image passes: converged, reaches the best natural exemplar, rank 1 on its own image, robust to small warps");
     built[i] = a;
     return a;
   }
 
   /* ---- order, filter, and the virtual grid */
-  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio };
-  const state = { sort: "id", desc: false, filter: null };
+  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio, trust: C.trust, own_rank: C.own_rank, robust: C.robust };
+  const state = { sort: "id", desc: false, filter: null, trust: "all" };
+  const TRUST = {  // the synthesis filter: what a unit's first synthesised image must show
+    all: () => true,
+    trusted: i => !!C.synth_src[i] && !!C.doubts && C.doubts[i] !== null && C.doubts[i].length === 0,
+    doubtful: i => !!C.doubts && !!C.doubts[i] && C.doubts[i].length > 0,
+    unconverged: i => !!C.doubts && !!C.doubts[i] && C.doubts[i].indexOf("did not converge") >= 0,
+  };
   let order = [], cols = 1, cardW = CARD_MIN_W, mounted = new Set(), firstFrame = false;
 
   const parseFilter = P.unitFilter;
 
   function computeOrder() {
     const key = KEYS[state.sort] || C.units, sign = state.desc ? -1 : 1, idx = [];
-    for (let i = 0; i < N; i++) if (!state.filter || state.filter(C.units[i])) idx.push(i);
+    for (let i = 0; i < N; i++) if ((!state.filter || state.filter(C.units[i])) && TRUST[state.trust](i)) idx.push(i);
     idx.sort((a, b) => {
       const x = key[a], y = key[b];
       const xn = x === null || x === undefined, yn = y === null || y === undefined;
@@ -173,7 +188,17 @@
     layout();
   });
   // orders without data stay listed but disabled, so the control says what is missing
-  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio]].forEach(([k, v]) => {
+  if (C.synthesised) {  // the synthesis filter, on layers that have synthesised images
+    const lab = el("label", "ctl");
+    lab.append("synthesis ");
+    const sel = add(lab, "select");
+    sel.id = "trust";
+    [["all", "all units"], ["trusted", "passes every check"], ["doubtful", "with doubts"], ["unconverged", "not converged"]]
+      .forEach(([v, t]) => { const o = add(sel, "option", "", t); o.value = v; });
+    sel.addEventListener("change", () => { state.trust = sel.value; layout(); });
+    dirBtn.after(lab);
+  }
+  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio], ["trust", C.trust], ["own_rank", C.own_rank], ["robust", C.robust]].forEach(([k, v]) => {
     const opt = sortSel.querySelector('option[value="' + k + '"]');
     if (!v || !v.some(x => x !== null && x !== undefined)) { opt.disabled = true; opt.textContent += " (none)"; }
   });
@@ -422,6 +447,9 @@
           r.relative !== null && r.relative < 0.5 ? "warn" : ""]);
       }
       rows.push(["steps", String(im.steps)]);
+      if (im.converged !== null && im.converged !== undefined)
+        rows.push(["converged", im.converged ? "yes" : "no: still rising at the end", im.converged ? "" : "warn"]);
+      if (im.parity_step !== null && im.parity_step !== undefined) rows.push(["reached the natural best at step", String(im.parity_step)]);
       const cap = add(fig, "figcaption");
       facts(cap, rows, "small");
       if (rec.near && im.nearest && im.nearest.length) nearest(cap, rec.near, m, im.nearest);
