@@ -536,6 +536,54 @@ def test_index_previews_load_in_the_browser(tiny, browser, shots):
     page.close()
 
 
+def test_facets_carry_pictures_and_a_stated_margin(tiny):
+    from unitlens.atlas.data import FACET_COSINE
+    from unitlens.facets import Embedding
+
+    checked = 0
+    for layer in ("3", "6"):
+        D = _units_data(tiny.atlas, layer, "units")
+        z = read_npz(tiny.run.layer_dir(layer) / "facets.npz")
+        emb = Embedding(tiny.run, layer)
+        for u, f in enumerate(D["facets"]):
+            if not f or f["k"] < 2:
+                continue
+            checked += 1
+            # brute force: centres of each facet's unit vectors, their largest pairwise cosine
+            x = emb.of_images(z["image"][u][:f["n"]]).astype(np.float64)
+            lab = z["facet"][u][:f["n"]]
+            c = np.stack([x[lab == a].mean(0) / np.linalg.norm(x[lab == a].mean(0)) for a in range(f["k"])])
+            cos = max(float(c[a] @ c[b]) for a in range(f["k"]) for b in range(f["k"]) if a != b)
+            assert f["cosine"] == pytest.approx(cos, abs=2e-3) and f["distinct"] == (cos < FACET_COSINE)
+            kept = len(D["top"][u])
+            for a in range(f["k"]):  # every facet has pictures: kept crops, else whole-image thumbnails
+                assert (np.asarray(f["ranks"][:kept]) == a).any() or len(f["thumbs"][a]) == min(4, f["sizes"][a])
+    assert checked
+    sheet = tiny.atlas / "img" / "3" / "facets.jpg"
+    assert sheet.is_file() or (tiny.atlas / "img" / "6" / "facets.jpg").is_file()
+
+
+@needs_browser
+def test_every_facet_shows_pictures_in_the_browser(tiny, browser):
+    opened = 0
+    for layer in ("3", "6"):
+        D = _units_data(tiny.atlas, layer, "units")
+        units = [u for u, f in enumerate(D["facets"]) if f and f["k"] > 1 and any(f.get("thumbs") or [])]
+        for u in units[:2]:
+            page = _open(browser, (tiny.atlas / f"layer-{layer}.html").as_uri() + f"#unit-{u}", height=1600)
+            page.wait_for("document.getElementById('unit').dataset.complete")
+            counts = page.js("[...document.querySelectorAll('.uv-facets .facet')].map(f => f.querySelectorAll('.crop').length)")
+            assert len(counts) == D["facets"][u]["k"] and min(counts) > 0, (layer, u, counts)
+            assert page.js("document.querySelectorAll('.uv-facets .crop.whole').length") > 0
+            text = page.js("document.querySelector('.uv-facets .note').textContent")
+            assert ("different things" in text) == D["facets"][u]["distinct"] and "cosine" in text
+            time.sleep(0.2)
+            _clean(page)
+            page.close()
+            opened += 1
+    assert opened  # some facet of the fixture has no kept crop
+
+
 @pytest.fixture(scope="module")
 def doubtful(tmp_path_factory):
     """Four synthesised units whose evidence is set by hand: 0 passes every check, 1 ran 80 steps still

@@ -21,6 +21,9 @@ from ..store import Run, read_json, read_npz
 
 HIST_BINS = 24  # linear bins of the re-binned histogram (cards and unit view)
 TRACE_POINTS = 96  # at most this many points of an optimisation trace reach the page
+FACET_COSINE = 0.5  # facets count as different things when their centres' cosine in the layer's embedding is below this
+FACET_THUMB = 48  # whole-image thumbnails of facet members that have no kept crop
+FACET_SHOWN = 4  # such thumbnails per facet
 FIRE_QUANTILE = 0.9  # a unit "fires" on an image when its maximum there reaches the layer's 90th percentile
 
 
@@ -82,6 +85,7 @@ class LayerData:
     details: dict
     sheets: list[Path] = field(default_factory=list)  # sprite sheets to place in the atlas
     images: list[Path] = field(default_factory=list)  # synthesised PNGs to place in the atlas
+    facet_thumbs: list[Path] = field(default_factory=list)  # originals of the cells of the facet sheet, in order
 
     @property
     def units(self) -> int:
@@ -209,7 +213,8 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
         cards.update(c)
         details.update(hist)
         details.update(_mined_details(run, idx, units, pos))
-        details.update(_facet_details(run, layer, units, pos))
+        fd, facet_thumbs = _facet_details(run, layer, units, pos, dict(zip(units, cards["filled"])))
+        details.update(fd)
         sheets, cards["sheets"] = _sheets(run, layer, idx, len(mined), img_dir)
     images: list[Path] = []
     scard, sdet = [None] * U, [None] * U
@@ -226,7 +231,10 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     for key in ("trust", "doubts", "own_rank", "robust"):
         cards[key] = [c[key] if c else None for c in scard]
     details["synth"] = sdet
-    return LayerData(layer, cards, details, sheets, images)
+    data = LayerData(layer, cards, details, sheets, images)
+    if idx is not None:
+        data.facet_thumbs = facet_thumbs
+    return data
 
 
 def _pick(a: np.ndarray, units, pos, fill=None) -> list:
@@ -357,19 +365,33 @@ def _sheets(run: Run, layer: str, idx: dict, n_mined: int, img_dir: str) -> tupl
     return [d / n for n in present if n], info
 
 
-def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int]) -> dict:
-    """Facets of the top images (facets.npz, see facets.py) and whether near-duplicates were merged.
+def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int],
+                   kept_n: dict[int, int]) -> tuple[dict, list[Path]]:
+    """Facets of the top images (facets.npz, see facets.py) and whether near-duplicates were merged;
+    and the original files of the facet sheet's cells.
 
     Per unit: {"k", "n" (images clustered), "silhouette", "sizes" (members per facet),
-    "ranks" (facet of each kept top exemplar, by rank)}; None where the layer has no facets."""
+    "ranks" (facet of each kept top exemplar, by rank; `kept_n`: kept exemplars per unit), "cosine" (the largest cosine between two
+    facets' centres in the layer's embedding), "distinct" (below FACET_COSINE), "thumbs" (per facet,
+    cells of the facet sheet: members with no kept crop)}; None where the layer has no facets."""
     mine = (read_json(run.manifest_path) or {}).get("mine") or {}
     dd = mine.get("dedupe") or {}
     out: dict = {"dedupe": dd.get("threshold") if dd.get("on") else None}
     path = run.layer_dir(layer) / "facets.npz"
     if not path.is_file():
-        return out
+        return out, []
     z = read_npz(path)
     at = {int(u): j for j, u in enumerate(z["units"])}
+    emb = None
+    if (z["k"] > 1).any():
+        from ..facets import Embedding
+
+        try:
+            emb = Embedding(run, layer)
+        except (FileNotFoundError, KeyError):
+            emb = None
+    corpus = None
+    cells: list[Path] = []
     lists = []
     for u in units:
         j = at.get(u) if u in pos else None
@@ -378,8 +400,34 @@ def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int]) 
             continue
         f = z["facet"][j]
         f = f[f >= 0]
-        lists.append({"k": int(z["k"][j]), "n": int(len(f)), "silhouette": _f(z["silhouette"][j], 3),
-                      "sizes": np.bincount(f, minlength=int(z["k"][j])).tolist(), "ranks": f.tolist()})
+        k = int(z["k"][j])
+        entry = {"k": k, "n": int(len(f)), "silhouette": _f(z["silhouette"][j], 3),
+                 "sizes": np.bincount(f, minlength=k).tolist(), "ranks": f.tolist()}
+        if k > 1:
+            rows = z["image"][j][:len(f)]
+            if emb is not None:
+                x = emb.of_images(rows).astype(np.float64)  # (n, d) unit vectors
+                c = np.stack([x[f == a].mean(0) for a in range(k)])
+                c /= np.maximum(np.linalg.norm(c, axis=1, keepdims=True), 1e-12)
+                cos = c @ c.T
+                entry["cosine"] = _f(cos[~np.eye(k, dtype=bool)].max(), 3)
+                entry["distinct"] = bool(entry["cosine"] < FACET_COSINE)
+            kept = kept_n.get(u, 0)
+            thumbs = []
+            for a in range(k):
+                if (f[:kept] == a).any():
+                    thumbs.append([])
+                    continue
+                if corpus is None:
+                    corpus = run.corpus()
+                members = [int(i) for i in rows[f == a][:FACET_SHOWN]]
+                thumbs.append(list(range(len(cells), len(cells) + len(members))))
+                cells += [corpus.path(i) for i in members]
+            entry["thumbs"] = thumbs
+        lists.append(entry)
     out["facets"] = lists
     out["facet_top_n"] = int(z["top_n"])
-    return out
+    out["facet_cosine"] = FACET_COSINE
+    if cells:
+        out["facet_sheet"] = {"src": "facets.jpg", "thumb": FACET_THUMB, "cols": 16}
+    return out, cells

@@ -155,7 +155,9 @@ def _draw_layer(run: Run, out: Path, name: str, share: bool = False) -> dict:
     if share:
         data.cards, data.details = _strip(data.cards), _strip(data.details)
     wanted = {p.name: p for p in data.sheets + data.images}
-    _place_all(wanted, out / img_rel)
+    _place_all(wanted, out / img_rel, keep=("facets.jpg",) if data.facet_thumbs else ())
+    if data.facet_thumbs:
+        _facet_sheet(data.facet_thumbs, out / img_rel / "facets.jpg", data.details["facet_sheet"])
     cards_js, units_js = f"data/{safe}.cards.js", f"data/{safe}.units.js"
     # the details go first: a page whose cards are new must never find old details
     _write_if_changed(out / units_js, js_data("UNITLENS_UNITS", data.details).encode())
@@ -265,11 +267,29 @@ def _write_if_changed(path: Path, data: bytes) -> None:
     os.chmod(path, READABLE)
 
 
-def _place_all(wanted: dict[str, Path], d: Path) -> None:
-    """Make folder `d` hold exactly `wanted` ({name: source}): hard links where possible, else copies."""
+def _facet_sheet(files: list[Path], path: Path, spec: dict) -> None:
+    """Whole-image thumbnails (the centred square, as the network sees it) of `files`, row by row."""
+    from PIL import Image, ImageOps
+
+    t, cols = spec["thumb"], spec["cols"]
+    rows = -(-len(files) // cols)
+    sheet = Image.new("RGB", (cols * t, rows * t), (128, 128, 128))  # grey: a file that cannot be read now
+    for n, f in enumerate(files):
+        try:
+            with Image.open(f) as im:
+                sheet.paste(ImageOps.fit(im.convert("RGB"), (t, t)), (n % cols * t, n // cols * t))
+        except OSError:
+            pass
+    _atomic(path, lambda fh: sheet.save(fh, format="JPEG", quality=85))
+    os.chmod(path, READABLE)
+
+
+def _place_all(wanted: dict[str, Path], d: Path, keep: tuple[str, ...] = ()) -> None:
+    """Make folder `d` hold exactly `wanted` ({name: source}) and the files named in `keep`: hard links
+    where possible, else copies."""
     d.mkdir(parents=True, exist_ok=True)
     for p in d.iterdir():
-        if p.name not in wanted:
+        if p.name not in wanted and p.name not in keep:
             p.unlink()
     for name, src in wanted.items():
         _place(src, d / name)

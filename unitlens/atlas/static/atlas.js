@@ -392,8 +392,11 @@
     const f = D.facets ? D.facets[i] : null;
     if (!f) { add(sec, "p", "note", "This run has no facets for this layer (they need the per-image values mining keeps)."); return; }
     const letter = c => String.fromCharCode(65 + c);
+    const about = f.cosine === undefined || f.cosine === null ? ""
+      : f.distinct ? " Their centres have cosine " + fmt(f.cosine, 3) + " in the embedding (below " + D.facet_cosine + "): the unit may respond to different things."
+      : " Their centres have cosine " + fmt(f.cosine, 3) + " in the embedding (" + D.facet_cosine + " or more): variations of one thing rather than different things.";
     add(sec, "p", "note", f.k > 1
-      ? f.k + " groups among the top " + f.n + " images (k-means in the layer's embedding, silhouette " + fmt(f.silhouette, 3) + "): the unit may respond to several different things."
+      ? f.k + " groups among the top " + f.n + " images (k-means in the layer's embedding, silhouette " + fmt(f.silhouette, 3) + ")." + about
       : "One group: the top " + f.n + " images split into no facets of at least 3 images with silhouette ≥ 0.25.");
     if (f.k < 2) return;  // the one group is the exemplar list above
     const kept = (D.top[i] || []).length;
@@ -409,7 +412,18 @@
         const e = g.appendChild(crop(i, r, 64));
         e.title = "#" + (r + 1) + " " + D.files[D.top[i][r][0]];
       });
-      if (!ranks.length) add(g, "span", "note", "none among the kept crops");
+      const cells = f.thumbs ? f.thumbs[c] : [];
+      if (!ranks.length && cells && cells.length && D.facet_sheet) {  // no kept crop: the members' whole images
+        const sh = D.facet_sheet;
+        cells.forEach(n => {
+          const e = add(g, "span", "crop whole");
+          e.style.width = e.style.height = "64px";
+          e.style.backgroundImage = 'url("' + imgSrc(sh.src) + '")';
+          e.style.backgroundSize = (sh.cols * 64) + "px auto";
+          e.style.backgroundPosition = (-(n % sh.cols) * 64) + "px " + (-Math.floor(n / sh.cols) * 64) + "px";
+          e.title = "whole image (no crop kept for this member)";
+        });
+      } else if (!ranks.length) add(g, "span", "note", "none among the kept crops");
     }
   }
 
