@@ -6,8 +6,11 @@ factors.csv is the oracle), prints the share of their synthesised images' neares
 that are of that kind, in each search space:
 
   means     the per-image channel means (the embedding the facets use), centred, cosine
-  maxima    the per-image channel maxima of the layer, centred, cosine (what `synth` searches in)
+  maxima    the per-image channel maxima of the layer, centred, cosine
   maxima-z  the same, each channel divided by its standard deviation over the corpus
+  maxima-own-xW   maxima, centred, with the unit's own channel weighted W times (what `synth` searches
+                  in, W = 4)
+  synth     the nearest images stored in units.json by the synthesis that made the images
 
     python scripts/nearest_agreement.py                   # block3, 1,000 swatches, 96 steps
     python scripts/nearest_agreement.py --layer block2 --count 600
@@ -33,6 +36,7 @@ from unitlens.store import Run, read_npz  # noqa: E402
 from unitlens.synth import Goal, SynthConfig, synthesize  # noqa: E402
 
 PURE = 0.8  # a unit is single-kind when this share of its top exemplars is one kind
+WEIGHTS = (2, 4, 8)  # weights of the unit's own channel tried in the unit-weighted space
 
 
 def prepare(work: Path, layer: str, count: int, steps: int) -> Run:
@@ -89,6 +93,20 @@ def agreement(work: Path, layer: str, count: int, steps: int) -> dict[str, float
         B, Q = normalise((base - centre) / scale), normalise((q - centre) / scale)
         near = np.argsort(-(Q @ B.T), axis=1, kind="stable")[:, :NEAR_K]  # brute force: the corpus is small
         out[name] = float(np.mean([np.mean(kind[near[j]] == k) for j, (_, k) in enumerate(chosen)]))
+    for w in WEIGHTS:  # the unit's own channel weighs w times the others (maxima, centred)
+        shares = []
+        for j, (u, k) in enumerate(chosen):
+            wt = np.ones(len(units))
+            wt[units.index(u)] = w
+            B = normalise((maxima - maxima.mean(0)) * wt)
+            Q = normalise((q_max[j:j + 1, units] - maxima.mean(0)) * wt)
+            near = np.argsort(-(Q @ B.T)[0], kind="stable")[:NEAR_K]
+            shares.append(np.mean(kind[near] == k))
+        out[f"maxima-own-x{w:g}"] = float(np.mean(shares))
+    # what `synth` wrote: the nearest images stored with each synthesised image
+    at = {f: i for i, f in enumerate(files)}
+    out["synth"] = float(np.mean([np.mean([kind[at[n["id"]]] == k for n in recs[str(u)]["images"][0]["nearest"]])
+                                  for u, k in chosen]))
     out["units"] = len(chosen)
     return out
 
@@ -103,8 +121,9 @@ def main() -> None:
     r = agreement(a.work, a.layer, a.count, a.steps)
     print(f"{a.layer}: {r['units']} single-kind units (>= {PURE:.0%} of the top exemplars one kind), "
           f"{NEAR_K} nearest images each")
-    for name in ("means", "maxima", "maxima-z"):
+    for name in ("means", "maxima", "maxima-z", *(f"maxima-own-x{w:g}" for w in WEIGHTS), "synth"):
         print(f"  {name:<9} {r[name]:.1%} of the nearest images are of the unit's kind")
+    print("  (synth: as stored by the synthesis that made the images, in the search space of that version)")
 
 
 if __name__ == "__main__":

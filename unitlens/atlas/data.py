@@ -186,7 +186,8 @@ def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.0
         from ..facets import NEAR_K, NEAR_THUMB
 
         files.append(d / strip)
-        detail["near"] = {"src": strip, "thumb": NEAR_THUMB, "cols": NEAR_K}
+        detail["near"] = {"src": strip, "thumb": NEAR_THUMB, "cols": NEAR_K,
+                          "space": rec.get("nearest_space") or "cosine in the layer's embedding of channel means"}
     return card, detail, files
 
 

@@ -429,7 +429,7 @@
 
   function nearest(parent, near, m, list) {
     const box = add(parent, "div", "syn-near");
-    add(box, "span", "syn-near-head", "nearest natural images (cosine in the layer's embedding)");
+    add(box, "span", "syn-near-head", "nearest natural images (" + (near.space || "cosine in the layer's embedding") + ")");
     const g = add(box, "div", "syn-near-grid");
     list.forEach(([id, sim], c) => {
       const fig = add(g, "figure", "near");
