@@ -5,7 +5,7 @@ Builds (or resumes) the demo in --work with `unitlens demo`'s own code, then pho
 in headless Chromium through tests/cdp.py (our DevTools client). The unit shown is block3's unit
 whose exemplars are most of one swatch kind (factors.csv), so the picture shows a unit that reads.
 
-    python scripts/readme_screenshots.py                       # 1,000 swatches, 32 units per layer
+    python scripts/readme_screenshots.py --count 600 --units 16 --steps 64   # the README's pictures
     python scripts/readme_screenshots.py --count 2000 --units 0   # the whole demo (every unit)
 """
 from __future__ import annotations
