@@ -29,11 +29,11 @@ from PIL import Image
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from unitlens import MineConfig, mine, open_corpus, parse_layers  # noqa: E402
-from unitlens.demo.build import demo_corpus, demo_model  # noqa: E402
-from unitlens.facets import NEAR_K, normalise  # noqa: E402
-from unitlens.store import Run, read_npz  # noqa: E402
-from unitlens.synth import Goal, SynthConfig, synthesize  # noqa: E402
+from unitlens import MineConfig, mine, open_corpus, parse_layers
+from unitlens.demo.build import demo_corpus, demo_model
+from unitlens.facets import NEAR_K, normalise
+from unitlens.store import Run, read_npz
+from unitlens.synth import Goal, SynthConfig, synthesize
 
 PURE = 0.8  # a unit is single-kind when this share of its top exemplars is one kind
 WEIGHTS = (2, 4, 8)  # weights of the unit's own channel tried in the unit-weighted space
@@ -63,7 +63,8 @@ def features(model, layer: str, files: list[Path]) -> tuple[np.ndarray, np.ndarr
 def agreement(work: Path, layer: str, count: int, steps: int) -> dict[str, float]:
     run = prepare(work, layer, count, steps)
     model = demo_model()
-    kinds = {r["file"]: r["kind"] for r in csv.DictReader(open(work / "corpus" / "factors.csv"))}
+    with open(work / "corpus" / "factors.csv") as fh:
+        kinds = {r["file"]: r["kind"] for r in csv.DictReader(fh)}
     files = run.corpus().files
     kind = np.array([kinds.get(f, "?") for f in files])
     idx = read_npz(run.layer_dir(layer) / "index.npz")

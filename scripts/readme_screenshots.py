@@ -21,15 +21,16 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "tests"))
 
-import cdp  # noqa: E402
+import cdp
 
-from unitlens import build_demo  # noqa: E402
-from unitlens.store import Run, read_npz  # noqa: E402
+from unitlens import build_demo
+from unitlens.store import Run, read_npz
 
 
 def clearest_unit(run: Run, layer: str) -> int:
     """The unit of `layer` whose top exemplars are most often one kind of swatch (ties: lower id)."""
-    kinds = {r["file"]: r["kind"] for r in csv.DictReader(open(run.path / "corpus" / "factors.csv"))}
+    with open(run.path / "corpus" / "factors.csv") as fh:
+        kinds = {r["file"]: r["kind"] for r in csv.DictReader(fh)}
     files = run.corpus().files
     idx = read_npz(run.layer_dir(layer) / "index.npz")
     best, best_n = int(idx["units"][0]), -1

@@ -3,7 +3,6 @@
 import sys
 
 import pytest
-
 from conftest import ROOT
 
 sys.path.insert(0, str(ROOT / "scripts"))

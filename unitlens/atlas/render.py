@@ -24,7 +24,8 @@ from ..errors import UnitlensError, closest
 from ..store import Run, _atomic, now, read_json, safe_name, write_json
 from .data import layer_data
 from .html import Html, index_page, join, js_data, layer_page, tag
-from .paths import model_name, strip_paths as _strip
+from .paths import model_name
+from .paths import strip_paths as _strip
 
 STATIC = ("atlas.css", "atlas.js", "plots.js", "icon.png")  # the icon spares servers a favicon 404
 STATE = ".render.json"  # what each layer page was drawn from
