@@ -270,3 +270,14 @@ def test_a_pair_of_different_layers_shows_its_cka_and_no_unit_table(cmp, browser
     assert page.js("document.querySelectorAll('.urow, #rows').length") == 0
     _clean(page)
     page.close()
+
+
+def test_cka_is_printed_with_enough_digits_to_tell_it_from_one():
+    from unitlens.atlas.comparison_page import cka_text
+
+    cases = [(1.0, "1.000"), (0.5, "0.500"), (0.98, "0.980"), (0.999, "0.999"), (0.9994, "0.9994"), (0.9996, "0.9996"),
+             (0.99997, "0.99997"), (None, "–")]
+    for x, want in cases:
+        assert cka_text(x) == want, x
+    for x in np.linspace(0.99, 1 - 1e-6, 50):  # below 1 never reads as 1
+        assert float(cka_text(x)) < 1, x

@@ -199,6 +199,39 @@ def test_relabelled_units_keep_cka_and_are_found_by_best_match(digits):
     assert set(layers["1"]["most_changed"][:len(live_moved)]) == live_moved  # flagged first
 
 
+def test_changed_means_significantly_changed(digits):
+    # a copy with 1% multiplicative weight noise computes nearly the same function: (almost) no unit
+    # counts as changed; the same network with block 1's channels relabelled (every one moved) changes
+    # every live unit of block 1 and, as a function, nothing else
+    torch.manual_seed(0)
+    noisy = copy.deepcopy(digits["nets"]["base"])
+    with torch.no_grad():
+        for p in noisy.parameters():
+            p.mul_(1 + 0.01 * torch.randn_like(p))
+    perm = torch.roll(torch.arange(32), 5)  # a derangement: new channel j is old channel j - 5
+    moved = copy.deepcopy(digits["nets"]["base"])
+    permute_block(moved, "1", perm)
+    cfg = CompareConfig(workers=0, bootstrap=100)
+    base = _load(digits["base"])
+    s_noisy = _by_layer(compare(base, _load(_save(digits, noisy, "noisy")), corpus=digits["corpus"],
+                                layers=[",".join(BLOCKS)], config=cfg))
+    s_moved = _by_layer(compare(base, _load(_save(digits, moved, "moved")), corpus=digits["corpus"],
+                                layers=[",".join(BLOCKS)], config=cfg))
+    for name, e in s_noisy.items():
+        live = [u for u in e["units"] if not u["dead"]]
+        assert e["mean_corr"] > 0.98, (name, e["mean_corr"])  # it is a small change
+        assert any(u["change"] > 0 for u in live)  # which the old rule (change > 0) counted everywhere
+        assert e["changed"] <= max(1, len(e["units"]) // 20), (name, e["changed"])
+        for u in live:  # the interval is about the point estimate
+            assert u["corr_ci"][0] <= u["corr"] + 1e-9 and u["corr"] <= u["corr_ci"][1] + 1e-9
+    for name, e in s_moved.items():
+        live = [u for u in e["units"] if not u["dead"]]
+        if name == "1":
+            assert len(live) >= 24 and all(u["changed"] for u in live), [u["corr"] for u in live if not u["changed"]]
+        else:
+            assert e["changed"] == 0, name
+
+
 def test_fine_tuning_changes_only_the_tuned_layers(digits):
     s = compare(_load(digits["base"]), _load(digits["tuned"]), corpus=digits["corpus"],
                 layers=[",".join(BLOCKS) + ",4"], config=CompareConfig(workers=0, full_maps=True))

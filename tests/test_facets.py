@@ -236,12 +236,17 @@ def test_nearest_natural_images_of_a_synthesised_image_equal_brute_force(faceted
     png = np.array(Image.open(run.layer_dir("2", "synth") / im["file"]).convert("RGB"))
     x = torch.from_numpy(png).permute(2, 0, 1)[None].float() / 255
     with torch.no_grad():
-        q = model.module(model.normalize(x)).double().mean((2, 3)).numpy()  # the whole net ends at layer 2
-    base = np.load(run.layer_dir("2") / "means.npy").astype(np.float64)
+        q = model.module(model.normalize(x)).double().amax((2, 3)).numpy()  # the whole net ends at layer 2
+    units = np.load(run.layer_dir("2") / "index.npz")["units"]
+    q = q[:, units]
+    # the search space: per-image channel maxima minus their mean, unit 2's own channel weighted x4
+    base = np.load(run.layer_dir("2") / "values.npy").astype(np.float64)
+    w = np.where(units == 2, facets.OWN_WEIGHT, 1.0)
     centre = base.mean(0)
-    b = base - centre
+    b = (base - centre) * w
     b /= np.linalg.norm(b, axis=1, keepdims=True)
-    q = (q - centre) / np.linalg.norm(q - centre)
+    q = (q - centre) * w
+    q /= np.linalg.norm(q)
     cos = (b @ q.T)[:, 0]
     want = np.argsort(-cos, kind="stable")[:facets.NEAR_K]
     assert [n["index"] for n in im["nearest"]] == want.tolist()

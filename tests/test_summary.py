@@ -19,9 +19,10 @@ def run(tmp_path_factory):
     d = tmp_path_factory.mktemp("summary")
     model = demo_model()
     corpus = open_corpus(demo_corpus(d / "corpus", 24), labels="folders")
-    layers = parse_layers(model, ["block1:0-1"])
-    mine(model, corpus, layers, d / "run", MineConfig(top_k=3, workers=0))
-    synthesize(model, Goal(layers), d / "run", SynthConfig(steps=4, checks=0, stop_gain=None))
+    mine(model, corpus, parse_layers(model, ["block1:0-1"]), d / "run", MineConfig(top_k=3, workers=0))
+    synthesize(model, Goal(("block1:0-1",)), d / "run", SynthConfig(steps=4, checks=0, stop_gain=None))
+    # block2:0 is synthesised but block2 was never mined
+    synthesize(model, Goal(("block2:0",)), d / "run", SynthConfig(steps=4, checks=0, stop_gain=None))
     return d / "run"
 
 
@@ -47,3 +48,14 @@ def test_show_json_gives_every_path_absolute_even_for_a_relative_run(run):
     assert len(s["synth"]) == 1 and len(paths) == 1 + 3 + 2
     for p in paths:
         assert Path(p).is_absolute() and Path(p).exists(), p
+
+
+def test_show_prints_a_unit_that_was_synthesised_but_not_mined(run):
+    out = run_cli("show", str(run), "block2:0").stdout
+    assert "synthesised only" in out and "synthesised: " in out
+    png = out.split("synthesised: ")[1].split("  (")[0]
+    assert Path(png).is_file()  # the line names the real image
+    s = json.loads(run_cli("show", str(run), "block2:0", "--json").stdout)
+    assert s["stats"] is None and s["exemplars"] is None and len(s["synth"]) == 1
+    r = run_cli("show", str(run), "block2:1", check=False)  # neither mined nor synthesised
+    assert r.returncode == 1 and "has not been mined" in r.stderr

@@ -5,6 +5,7 @@ moments of (N, C) arrays read in row blocks, so memory maps are never copied who
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 
@@ -151,6 +152,40 @@ def _pooled_interval(X, Y, rows: np.ndarray, point: float, cfg, rng):
     own, scale = linear_cka(x, y), math.sqrt(m / n_all)
     ci = [float(min(max(point + scale * (v - own), 0.0), 1.0)) for v in ci]
     return ci, f"m-out-of-n bootstrap: {cfg.bootstrap} resamples of {m} of {n_all} images, spread scaled by sqrt(m/N)"
+
+
+def _resampled_corr(x: np.ndarray, y: np.ndarray, W: np.ndarray) -> np.ndarray:
+    """Pearson correlation of each column pair x[:, u], y[:, u] (x, y: (m, U)) under each column of W
+    (m, R), image i taken W[i, r] times: (R, U), from weighted moments (no resample is built)."""
+    x, y = x - x.mean(0), y - y.mean(0)  # centred first: the moments below then lose no digits
+    n = W.sum(0)[:, None]  # (R, 1)
+    mx, my = W.T @ x / n, W.T @ y / n  # (R, U)
+    cov = W.T @ (x * y) / n - mx * my
+    vx, vy = W.T @ (x * x) / n - mx**2, W.T @ (y * y) / n - my**2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return cov / np.sqrt(vx * vy)
+
+
+def corr_intervals(X, Y, rows: np.ndarray, point: np.ndarray, cfg, rng) -> np.ndarray | None:
+    """(U, 2) percentile-bootstrap intervals over images of the same-column correlations of X and
+    Y ((N, U) each, read at `rows`); the m-out-of-n rescaling of `_pooled_interval` above
+    `bootstrap_images` images. None when the bootstrap is off."""
+    n_all = len(rows)
+    if cfg.bootstrap == 0 or n_all < 4:
+        return None
+    m = min(n_all, cfg.bootstrap_images)
+    sub = rows if m == n_all else np.sort(rng.choice(rows, m, replace=False))
+    x, y = _as_rows(X[sub]), _as_rows(Y[sub])  # (m, U)
+    W = rng.multinomial(m, np.full(m, 1 / m), size=cfg.bootstrap).T.astype(np.float64)  # (m, R)
+    R = _resampled_corr(x, y, W)  # (R, U)
+    tail = (1 - cfg.confidence) / 2 * 100
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # a column constant in every resample: all-NaN
+        ci = np.nanpercentile(R, [tail, 100 - tail], axis=0).T  # (U, 2)
+    if m < n_all:
+        own = _resampled_corr(x, y, np.ones((m, 1)))[0]  # (U,) the subset's own estimate
+        ci = point[:, None] + math.sqrt(m / n_all) * (ci - own[:, None])
+    return np.clip(ci, -1, 1)
 
 
 # ----------------------------------------------------------------------------- chunked moments

@@ -85,6 +85,8 @@ Json = typer.Option(False, "--json", help="Print JSON instead of a table.")
 Device = typer.Option("cpu", "--device", help="Where the network runs: cpu, cuda or cuda:N (under torchrun, cuda is the GPU of LOCAL_RANK).")
 Threads = typer.Option(None, "--threads", min=1, callback=_set_threads, help="Torch compute threads.")
 LabelsOpt = typer.Option(None, "--labels", help="folders: class labels from first-level subfolders.")
+StripPaths = typer.Option(None, "--strip-paths/--keep-paths", help="Cut every absolute path on the atlas's pages and "
+                          "data to its file name, to hand the folder on (default: as the atlas was last drawn).")
 Dedupe = typer.Option(False, "--dedupe", help="Near-identical images (thumbnail cosine >= 0.99) count once in each "
                                              "unit's exemplars; off: the exact top-K.")
 
@@ -230,6 +232,7 @@ def run_cmd(
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = Threads,
     force: bool = typer.Option(False, "--force", help="Start the run folder's mining and synthesis over."),
+    strip_paths: Optional[bool] = StripPaths,
     dedupe: bool = Dedupe, device: str = Device,
     weights: Optional[str] = Weights, size: Optional[str] = Size, mean: Optional[str] = Mean,
     std: Optional[str] = Std, allow_pickle: bool = AllowPickle, arch_option: Optional[list[str]] = ArchOption,
@@ -243,7 +246,7 @@ def run_cmd(
                                         layers, units, corpus, labels, device)
     run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
                   SynthConfig(steps=steps, size=synth_size, seed=seed, lr=lr, stop_at_parity=stop_at_parity),
-                  budget=budget, progress=sys.stderr.isatty(), force=force)
+                  budget=budget, progress=sys.stderr.isatty(), force=force, strip_paths=strip_paths)
     print(run.path / "atlas" / "index.html")
 
 
@@ -358,6 +361,7 @@ def compare_cmd(
 def atlas_cmd(
     run: Path = typer.Argument(..., metavar="RUN", help="A run folder (mined, synthesised, or both), or a folder written by `compare`."),
     layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Redraw only these layers, comma-separated (repeatable; default: all)."),
+    strip_paths: Optional[bool] = StripPaths,
 ):
     """Draw the run's static HTML atlas into RUN/atlas/ (opens from file://, no server, no network).
 
@@ -365,7 +369,7 @@ def atlas_cmd(
     from . import render_atlas
 
     names = [n.strip() for text in layers for n in text.split(",") if n.strip()] if layers else None
-    print(render_atlas(run, layers=names))
+    print(render_atlas(run, layers=names, strip_paths=strip_paths))
 
 
 @app.command("probe")

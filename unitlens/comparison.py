@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from ._cka import _cka_matrix, _cross, _MinibatchTally, _moments, _pooled_interval
+from ._cka import _cka_matrix, _cross, _MinibatchTally, _moments, _pooled_interval, corr_intervals
 from .errors import UnitlensError, interrupted, log, shown
 from .runview import Comparison
 from .store import Run, _atomic, check_folder, now, safe_name, write_json
@@ -38,7 +38,11 @@ DEAD_TOLERANCE = 1e-6  # a unit is dead when std(max) <= this * |mean(max)|: con
 RANKING = ("change = 1 - (max(corr, 0) + jaccard) / 2 in [0, 1], largest first (ties: lower unit "
            "index): 0 = same ordering of images and same top-K set; 1 = uncorrelated or anti-correlated "
            "with disjoint top sets. A unit dead in exactly one model scores 1, dead in both 0. "
-           "`most_changed` lists the first units of this order whose change is above 0.")
+           "`most_changed` lists the first units of this order that count as changed (CHANGED).")
+CHANGED_BELOW = 0.9  # a unit counts as changed when its correlation is significantly below this
+CHANGED = (f"a unit counts as changed when the correlation of its per-image maxima in A and B is significantly "
+           f"below {CHANGED_BELOW} (the upper end of its bootstrap interval over images lies below it; with the "
+           f"bootstrap off, the correlation itself), or when it is dead in exactly one of them")
 
 
 @dataclass(frozen=True)
@@ -75,7 +79,7 @@ def _tops(held: _Held, cols: list[int], rows: np.ndarray, k: int) -> list[list[i
     return [rows[order[:, c]].tolist() for c in range(len(cols))]
 
 
-def _unit_table(A: _Held, B: _Held, chosen, rows: np.ndarray, k: int) -> list[dict]:
+def _unit_table(A: _Held, B: _Held, chosen, rows: np.ndarray, k: int, cfg: CompareConfig, rng) -> list[dict]:
     col_a = {u: i for i, u in enumerate(A.units)}
     col_b = {u: i for i, u in enumerate(B.units)}
     units = [u for u in chosen if u in col_a and u in col_b]
@@ -92,8 +96,11 @@ def _unit_table(A: _Held, B: _Held, chosen, rows: np.ndarray, k: int) -> list[di
     corr = np.clip(corr, -1, 1)  # (U, Ub)
     corr[dead_a] = math.nan
     corr[:, dead_b] = math.nan
+    cb = [col_b[u] for u in units]
+    same = corr[np.arange(len(units)), cb]  # (U,) correlation with the unit of the same index
+    ci = corr_intervals(sub, _Columns(B.maxima, cb), rows, same, cfg, rng)  # (U, 2) or None
     tops_a = _tops(A, ca, rows, k)
-    tops_b = _tops(B, [col_b[u] for u in units], rows, k)
+    tops_b = _tops(B, cb, rows, k)
     table = []
     for i, u in enumerate(units):
         j = col_b[u]
@@ -104,9 +111,11 @@ def _unit_table(A: _Held, B: _Held, chosen, rows: np.ndarray, k: int) -> list[di
         jac = None if da or db else len(sa & sb) / len(sa | sb)
         c = None if da or db else float(corr[i, j])
         change = (0.0 if da and db else 1.0) if da or db else 1 - (max(c, 0.0) + jac) / 2
+        cci = None if da or db or ci is None or not np.isfinite(ci[i]).all() else [float(v) for v in ci[i]]
+        changed = da != db if da or db else (cci[1] if cci else c) < CHANGED_BELOW
         table.append({
             "unit": u, "dead": da or db, "dead_a": da, "dead_b": db,
-            "corr": _num(c) if c is not None else None,
+            "corr": _num(c) if c is not None else None, "corr_ci": cci, "changed": bool(changed),
             "best_match": None if best is None else B.units[best],
             "best_match_corr": None if best is None else _num(corr[i, best]),
             "jaccard": jac,
@@ -390,7 +399,7 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
 
 # ----------------------------------------------------------------------------- the summary
 
-UNIT_COLUMNS = ("unit", "rank", "change", "dead", "dead_a", "dead_b", "corr", "best_match", "best_match_corr",
+UNIT_COLUMNS = ("unit", "rank", "change", "changed", "dead", "dead_a", "dead_b", "corr", "best_match", "best_match_corr",
                 "jaccard", "mean_a", "mean_b", "mean_change", "fire_rate_a", "fire_rate_b", "fire_rate_change")
 
 
@@ -417,7 +426,7 @@ def _summarise(plan: _Plan, cfg: CompareConfig, tally) -> dict:
         ci, how = _pooled_interval(pooled_a[i], pooled_b[i], rows, M[i, i], cfg, rng)
         A, B = plan.held["a"][la], plan.held["b"][lb]
         k = min([cfg.top_k] + [h.top.shape[1] for h in (A, B) if h.top is not None])  # a run keeps its own K
-        table = _unit_table(A, B, plan.chosen[la], rows, k) if la in unit_pairs else []
+        table = _unit_table(A, B, plan.chosen[la], rows, k, cfg, rng) if la in unit_pairs else []
         note = (None if la in unit_pairs else f"{la} of A and {lb} of B are different layers" if plan.same_architecture
                 else "different architectures: unit indices do not correspond")
         ranked = sorted(table, key=lambda e: e["rank"])
@@ -430,7 +439,8 @@ def _summarise(plan: _Plan, cfg: CompareConfig, tally) -> dict:
             "dead": sum(e["dead"] for e in table),
             "mean_corr": _mean_or_none(e["corr"] for e in table),
             "mean_jaccard": _mean_or_none(e["jaccard"] for e in table),
-            "most_changed": [e["unit"] for e in ranked if e["change"] > 0][:cfg.most_changed],
+            "changed": sum(e["changed"] for e in table),
+            "most_changed": [e["unit"] for e in ranked if e["changed"]][:cfg.most_changed],
             "units": table,
         })
     c = plan.corpus
@@ -445,7 +455,7 @@ def _summarise(plan: _Plan, cfg: CompareConfig, tally) -> dict:
         "settings": {**{key: v for key, v in asdict(cfg).items() if key != "workers"},
                      "layers": plan.names_a, "layers_b": plan.names_b, "unit_statistic": "per-image spatial maximum",
                      "pooled_features": "per-image channel mean", "dead_tolerance": DEAD_TOLERANCE,
-                     "ranking": RANKING},
+                     "ranking": RANKING, "changed": CHANGED, "changed_below": CHANGED_BELOW},
         "recomputed": plan.recomputed,
         "layers": entries,
         "cka_matrix": {"layers_a": plan.names_a, "layers_b": plan.names_b, "pooled": nested(M), "full_maps": nested(F)},
@@ -549,15 +559,20 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
 
 def comparison_text(s: dict) -> str:
     """The table `unitlens compare` prints for `compare(...)`'s summary, then where it wrote."""
+    from .atlas.comparison_page import cka_text
+
     def fmt(v):
         return "-" if v is None else f"{v:.3f}"
 
-    lines = [f"{'layer':<20} {'CKA':>6} {'95% interval':>15} {'full-map':>9} {'corr':>6} {'jaccard':>7} {'dead':>4}  "
-             "most changed"]
+    def cka(v):  # enough digits to tell 0.999 from 1
+        return "-" if v is None else cka_text(v)
+
+    lines = [f"{'layer':<20} {'CKA':>6} {'95% interval':>15} {'full-map':>9} {'corr':>6} {'jaccard':>7} {'dead':>4} "
+             f"{'changed':>7}  most changed"]
     for e in s["layers"]:
         name = e["layer"] if e["layer"] == e["layer_b"] else f"{e['layer']}~{e['layer_b']}"
-        ci = f"{fmt(e['cka_ci'][0])}-{fmt(e['cka_ci'][1])}" if e["cka_ci"] else "-"
+        ci = f"{cka(e['cka_ci'][0])}-{cka(e['cka_ci'][1])}" if e["cka_ci"] else "-"
         changed = ", ".join(map(str, e["most_changed"][:8])) or e["units_note"] or ""
-        lines.append(f"{name:<20} {fmt(e['cka']):>6} {ci:>15} {fmt(e['cka_full_maps']):>9} {fmt(e['mean_corr']):>6} "
-                     f"{fmt(e['mean_jaccard']):>7} {e['dead']:>4}  {changed}")
+        lines.append(f"{name:<20} {cka(e['cka']):>6} {ci:>15} {cka(e['cka_full_maps']):>9} {fmt(e['mean_corr']):>6} "
+                     f"{fmt(e['mean_jaccard']):>7} {e['dead']:>4} {e['changed']:>7}  {changed}")
     return "\n".join(lines + [str(s["out"]), str(s["atlas"])])

@@ -16,7 +16,10 @@ def _num(x) -> float | None:
 
 
 def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
-    """Exemplars and statistics of channel `channel` of `layer` in a mined run.
+    """Exemplars and statistics of channel `channel` of `layer` in a run, and its synthesised images.
+
+    A unit that was synthesised but not mined gets `stats`, `histogram` and `exemplars` of None
+    (what exists is shown, not refused).
 
     Every path in the result (the run, exemplar images, synthesised images and traces) is
     absolute, whatever the current folder, so the dict stays usable when passed on.
@@ -24,6 +27,14 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
     >>> unit_summary("runs/r18", "layer3", 37)["exemplars"][0]["score"]  # doctest: +SKIP
     """
     run = Run(Path(run.path if isinstance(run, Run) else run).absolute())
+    from .synth.results import unit_images
+
+    if not (run.layer_dir(layer) / "index.npz").is_file():
+        synth = unit_images(run, layer, channel)
+        if not synth:
+            run.index(layer)  # neither mined nor synthesised: the error lists the mined layers
+        return {"run": str(run.path), "layer": layer, "unit": channel, "stats": None, "histogram": None,
+                "exemplars": None, "synth": synth}
     idx = run.index(layer)
     units = idx["units"].tolist()
     if channel not in units:
@@ -64,8 +75,6 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
     }
     if float(idx["low"].min()) < 0:
         result["negative_exemplars"] = listing("bottom")
-    from .synth.results import unit_images
-
     result["synth"] = unit_images(run, layer, channel)  # [] until `unitlens synth` has run
     result["facets"] = unit_facets(run, layer, channel, corpus)
     return result
@@ -76,13 +85,17 @@ def summary_text(s: dict, layer: str, channel: int) -> str:
     from .errors import shown
 
     st = s["stats"]
-    sel = f"; class selectivity {st['class_selectivity']:.3f}" if st["class_selectivity"] is not None else ""
-    lines = [f"{shown(layer)} channel {channel}  ({st['images']} images)",
-             f"  per-image max: mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, range {st['min']:.4g} .. "
-             f"{st['max']:.4g}",
-             f"  fires (max > 0) on {100 * st['fire_rate']:.1f}% of images{sel}"]
+    if st is None:
+        lines = [f"{shown(layer)} channel {channel}  (synthesised only: this layer was not mined, so no exemplars "
+                 "or statistics)"]
+    else:
+        sel = f"; class selectivity {st['class_selectivity']:.3f}" if st["class_selectivity"] is not None else ""
+        lines = [f"{shown(layer)} channel {channel}  ({st['images']} images)",
+                 f"  per-image max: mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, range {st['min']:.4g} .. "
+                 f"{st['max']:.4g}",
+                 f"  fires (max > 0) on {100 * st['fire_rate']:.1f}% of images{sel}"]
     for title, key in (("top exemplars", "exemplars"), ("most negative", "negative_exemplars")):
-        if key not in s:
+        if not s.get(key):
             continue
         lines.append(f"  {title}:")
         for e in s[key]:

@@ -158,11 +158,11 @@ def _spread(units: tuple[int, ...], n: int) -> tuple[int, ...]:
 
 
 def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: str | None = None,
-            progress: bool = False, log=None, force: bool = False):
+            progress: bool = False, log=None, force: bool = False, strip_paths: bool | None = None):
     """Mine `corpus`, synthesise `layers` one by one, and keep `out`/atlas up to date.
 
     A budget may cut the units that are synthesised, never those mined. `force` starts the run
-    folder's mining and synthesis over."""
+    folder's mining and synthesis over. `strip_paths`: draw the atlas for sharing (see render_atlas)."""
     from . import dist
     from .atlas import render_atlas
     from .mining import mine, mined
@@ -172,7 +172,7 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
     t0 = time.monotonic()
     g = dist.group()  # under torchrun: every rank mines and synthesises its shard, rank 0 draws
     say = (log or (lambda msg: print(msg, file=sys.stderr))) if g.main else (lambda msg: None)
-    draw = render_atlas if g.main else (lambda run: None)
+    draw = (lambda run: render_atlas(run, strip_paths=strip_paths)) if g.main else (lambda run: None)
     run = Run(out)
     size = synth_config.size or model.preprocess.side
     if force and g.main:

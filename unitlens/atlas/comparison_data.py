@@ -161,7 +161,7 @@ def pair_data(summary: dict, i: int, sides: dict[str, Side], out: Path) -> tuple
         units.append(row)
     figures = {key: e.get(key) for key in ("layer", "layer_b", "channels", "channels_b", "cka", "cka_ci",
                                            "cka_ci_method", "cka_full_maps", "cka_full_maps_ci", "units_compared",
-                                           "units_note", "top_k", "dead", "mean_corr", "mean_jaccard", "most_changed")}
+                                           "units_note", "top_k", "dead", "changed", "mean_corr", "mean_jaccard", "most_changed")}
     payload = {
         **figures,
         "sides": {k: {"label": s.label, "layer": layers[k], "sheets": held[k].sheets, "href": held[k].href,

@@ -13,6 +13,7 @@ lists the comparisons under RUN/compare/ (see `comparisons_section`).
 from __future__ import annotations
 
 import json
+import math
 import os
 import shutil
 from importlib import resources
@@ -22,6 +23,7 @@ from ..errors import UnitlensError
 from ..store import Run, read_json, safe_name
 from .comparison_data import THUMB, find_sides, image_ids, make_thumbs, pair_data, rel_url, wanted_thumbs
 from .html import Html, _dl, _params, _weights, esc, join, js_data, page, tag
+from .paths import model_name
 from .render import _place_all, _write_if_changed
 
 STATIC = ("atlas.css", "compare.css", "plots.js", "compare.js", "icon.png")
@@ -39,7 +41,22 @@ def _fmt(x, digits: int = 3) -> str:
 
 
 def _ci(ci) -> str:
-    return f"{ci[0]:.3f} – {ci[1]:.3f}" if ci else "–"
+    return f"{cka_text(ci[0])} – {cka_text(ci[1])}" if ci else "–"
+
+
+def _changed(u: dict) -> bool:
+    """Whether a unit counts as changed; comparisons written before the significance rule: change above 0."""
+    return bool(u["changed"]) if "changed" in u else u["change"] > 0
+
+
+def cka_text(x) -> str:
+    """A similarity near 1 with enough digits to tell it from 1: 0.999 -> "0.999", 0.99997 -> "0.99997"."""
+    if x is None:
+        return "–"
+    gap = 1 - abs(x)
+    # d digits round by at most 0.5e-d, less than the gap: the text never reads 1 for a value below it
+    digits = 3 if gap >= 0.01 or gap <= 0 else min(7, 1 + math.floor(-math.log10(gap)))
+    return f"{x:.{digits}f}"
 
 
 def _pair_label(e: dict) -> str:
@@ -88,7 +105,7 @@ def pair_bars(layers: list[dict], names: list[str], here: str) -> Html:
         out.append(f'<a href="{esc(name)}.html" class="pb-row{" here" if name == here else ""}">'
                    f'<text class="tick rowlabel" x="{lw - 6}" y="{y + 12}" text-anchor="end">{esc(label)}</text>'
                    f'<rect class="pb-bar" x="{lw}" y="{y + 3}" width="{width:.1f}" height="{row - 6}" rx="2"/>'
-                   f'<text class="tick" x="{lw + width + 5:.1f}" y="{y + 12}">{_fmt(v)}</text>'
+                   f'<text class="tick" x="{lw + width + 5:.1f}" y="{y + 12}">{cka_text(v)}</text>'
                    f'<title>{esc(label)}: CKA {_fmt(v, 4)}</title></a>')
     H = 8 + row * len(layers)
     return Html(f'<svg class="plot pairbars" viewBox="0 0 {W} {H}" width="{W}" height="{H}" role="img" '
@@ -168,8 +185,8 @@ def index_page(summary: dict, sides: dict, names: list[str], folder_name: str, o
         rows.append(tag(
             "tr", tag("th", tag("a", pair, href=f"{name}.html"), scope="row"),
             tag("td", f"{e['channels']}" + ("" if e["channels"] == e["channels_b"] else f" / {e['channels_b']}"), class_="num"),
-            tag("td", tag("b", _fmt(e["cka"])), " ", tag("span", f"[{_ci(e['cka_ci'])}]", class_="ci-text"), class_="num"),
-            tag("td", _fmt(e.get("cka_full_maps")), class_="num"),
+            tag("td", tag("b", cka_text(e["cka"])), " ", tag("span", f"[{_ci(e['cka_ci'])}]", class_="ci-text"), class_="num"),
+            tag("td", cka_text(e.get("cka_full_maps")), class_="num"),
             tag("td", str(e["units_compared"]), class_="num"),
             tag("td", _fmt(e.get("mean_corr")), class_="num"),
             tag("td", _fmt(e.get("mean_jaccard")), class_="num"),
@@ -223,7 +240,7 @@ def index_page(summary: dict, sides: dict, names: list[str], folder_name: str, o
 SORTS = (("rank", "most changed first"), ("unit", "unit id"), ("corr", "correlation"), ("jaccard", "exemplar overlap"),
          ("best_match_corr", "best-match correlation"), ("mean_change", "change of mean"),
          ("fire_rate_change", "change of firing rate"))
-SHOWS = (("all", "all units"), ("changed", "changed (change > 0)"), ("dead", "dead in A or B"),
+SHOWS = (("all", "all units"), ("changed", "changed (significantly)"), ("dead", "dead in A or B"),
          ("moved", "best match elsewhere in B"))
 
 
@@ -231,12 +248,12 @@ def pair_page(summary: dict, e: dict, sides: dict, folder_name: str, data_js: st
               crops: bool) -> str:
     """The shell of a layer pair's page; `crops`: whether either side shows receptive-field crops."""
     pair = _pair_label(e)
-    sim = [tag("div", tag("span", "CKA, channel means", class_="fig-label"), tag("span", _fmt(e["cka"]), class_="fig big"),
+    sim = [tag("div", tag("span", "CKA, channel means", class_="fig-label"), tag("span", cka_text(e["cka"]), class_="fig big"),
                tag("span", f"95% interval {_ci(e['cka_ci'])}", class_="fig-sub"), interval_bar(e["cka"], e["cka_ci"], "CKA"),
                class_="figure")]
     if e.get("cka_full_maps") is not None:
         sim.append(tag("div", tag("span", "CKA, whole feature maps", class_="fig-label"),
-                       tag("span", _fmt(e["cka_full_maps"]), class_="fig big"),
+                       tag("span", cka_text(e["cka_full_maps"]), class_="fig big"),
                        tag("span", f"interval {_ci(e.get('cka_full_maps_ci'))} (over minibatches)", class_="fig-sub"),
                        interval_bar(e["cka_full_maps"], e.get("cka_full_maps_ci"), "whole-map CKA"), class_="figure"))
     sim_s = tag("section", tag("h2", "How similar the layer is"), tag("div", *sim, class_="figures"),
@@ -253,12 +270,14 @@ def pair_page(summary: dict, e: dict, sides: dict, folder_name: str, data_js: st
          f"none: {e.get('units_note') or 'no unit table'}; the layers are compared as wholes only"),
         ("mean correlation", _fmt(e.get("mean_corr")) if units else None),
         ("mean exemplar overlap", f"{_fmt(e.get('mean_jaccard'))} (Jaccard of the top {e['top_k']})" if units else None),
-        ("changed", f"{sum(u['change'] > 0 for u in units)}" if units else None),
+        ("changed", f"{sum(_changed(u) for u in units)} of {len(units)}" if units else None),
         ("dead", f"{e['dead']}: {dead_a} in A only, {dead_b} in B only, {both} in both" if units else None),
         ("best match elsewhere", f"{moved} unit(s) correlate most with another unit of B" if units else None),
     ]), tag("div", id="change-hist", class_="plotbox"),
         tag("p", "change = 1 − (max(corr, 0) + Jaccard) / 2: 0 when A and B order the images alike and share their "
-                 "top set; a unit dead on one side only counts 1." if units else "", class_="note"), class_="panel")
+                 "top set; a unit dead on one side only counts 1. Changed: "
+                 + (summary.get("settings") or {}).get("changed", "change above 0") + "." if units else "", class_="note"),
+        class_="panel")
     nav = [tag("a", _pair_label(x), href=f"{p}.html", class_="here" if p == here else None,
                aria_current="page" if p == here else None) for x, p in zip(summary["layers"], names)]
     head = tag("header", tag("h1", tag("span", "layer pair", class_="kicker"), pair), tag("p", tag("span", "A", class_="side-tag a"), " ", sides["a"].label, " · ",
@@ -364,8 +383,8 @@ def comparisons_section(run_path: Path, atlas: Path) -> Html:
         link = tag("a", name, href=rel_url(index, atlas)) if index.is_file() else join(
             [esc(name), tag("span", f" (no pages yet: unitlens atlas {cmp.parent})", class_="note")])
         b = s.get("b") or {}
-        other = Path(str(b.get("run"))).name if b.get("source") == "run" else (b.get("model") or {}).get("spec", "?")
-        cka = ", ".join(f"{e['layer']} {_fmt(e['cka'], 2)}" for e in s.get("layers", [])[:8])
+        other = Path(str(b.get("run"))).name if b.get("source") == "run" else model_name((b.get("model") or {}).get("spec", "?"))
+        cka = ", ".join(f"{e['layer']} {cka_text(e['cka'])}" for e in s.get("layers", [])[:8])
         rows.append(tag("tr", tag("th", link, scope="row"), tag("td", tag("code", other)), tag("td", tag("code", cka)),
                         tag("td", tag("time", s.get("created", "?")))))
     if not rows:

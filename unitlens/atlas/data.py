@@ -21,6 +21,10 @@ from ..store import Run, read_json, read_npz
 
 HIST_BINS = 24  # linear bins of the re-binned histogram (cards and unit view)
 TRACE_POINTS = 96  # at most this many points of an optimisation trace reach the page
+FACET_COSINE = 0.5  # facets count as different things when their centres' cosine in the layer's embedding is below this
+FACET_THUMB = 48  # whole-image thumbnails of facet members that have no kept crop
+FACET_SHOWN = 4  # such thumbnails per facet
+FIRE_QUANTILE = 0.9  # a unit "fires" on an image when its maximum there reaches the layer's 90th percentile
 
 
 def _f(x, digits: int = 4):
@@ -81,6 +85,7 @@ class LayerData:
     details: dict
     sheets: list[Path] = field(default_factory=list)  # sprite sheets to place in the atlas
     images: list[Path] = field(default_factory=list)  # synthesised PNGs to place in the atlas
+    facet_thumbs: list[Path] = field(default_factory=list)  # originals of the cells of the facet sheet, in order
 
     @property
     def units(self) -> int:
@@ -112,10 +117,40 @@ def _thin(trace: np.ndarray) -> dict:
     return {"step": [s + 1 for s in steps], "value": _fs(trace[steps])}
 
 
-def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
-    """Card part, detail part and image files of one synthesised unit (names within the layer's image folder)."""
+def _doubts(im: dict, converged: bool | None) -> tuple[list[str], int]:
+    """What speaks against trusting one synthesised image, and how many checks could be judged.
+
+    Checks: the optimisation converged (its own early-stop test on the finished trace), parity
+    (the synthesis's own field when it wrote one, else a spatial maximum at least the best natural
+    exemplar's), rank 1 among the layer's channels on its own image, and keeping at least half of
+    its effect under random warps."""
+    parity = im.get("parity")
+    if isinstance(parity, dict):  # the synthesis's own parity record
+        parity = bool(parity.get("reached"))
+    elif parity is not None and not isinstance(parity, bool):  # a number: the share of the natural best reached
+        parity = float(parity) >= 1
+    if parity is None and im.get("ratio") is not None:
+        parity = im["ratio"] >= 1
+    rob = (im.get("robustness") or {}).get("relative")
+    checks = [(converged, "did not converge"), (parity, "below the best natural exemplar"),
+              (None if im.get("rank") is None else im["rank"] == 1, f"rank {im.get('rank')} on its own image"),
+              (None if rob is None else rob >= 0.5, "loses most of its effect under small warps")]
+    return [why for ok, why in checks if ok is False], sum(ok is not None for ok, _ in checks)
+
+
+def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.01)) -> tuple[dict, dict, list[Path]]:
+    """Card part, detail part and image files of one synthesised unit (names within the layer's image folder).
+
+    `stop`: the run's early-stop window and gain, which also say whether a finished image converged."""
+    from ..synth.results import stalled
+
+    tr = None
+    tname = Path(str(rec.get("trace", ""))).name
+    if tname and (d / tname).is_file():
+        with np.load(d / tname, allow_pickle=False) as z:  # read the one array needed, not the whole file
+            tr = np.atleast_2d(z["trace"]) if "trace" in z.files else None
     images, files = [], []
-    for im in rec.get("images", []):
+    for m, im in enumerate(rec.get("images", [])):
         name = Path(str(im["file"])).name
         files.append(d / name)
         rob = im.get("robustness") or None
@@ -135,18 +170,22 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
                 "reached": bool(par.get("reached")), "step": par.get("step"),
                 "synthesised": _f(par.get("synthesised", math.nan)), "exemplar": _f(par.get("exemplar", math.nan))},
         })
-    traces = []
-    tname = Path(str(rec.get("trace", ""))).name
-    if tname and (d / tname).is_file():
-        with np.load(d / tname, allow_pickle=False) as z:  # read the one array needed, not the whole file
-            tr = z["trace"] if "trace" in z.files else None
-        if tr is not None:
-            traces = [_thin(row) for row in np.atleast_2d(tr)]
+        row = tr[m][np.isfinite(tr[m])] if tr is not None and m < len(tr) else None
+        window, gain = stop
+        judged = row is not None and len(row) >= 2 * window
+        images[-1]["converged"] = bool(stalled(row.tolist(), window, gain or 0.01)) if judged else None
+        images[-1]["doubts"], images[-1]["checks"] = _doubts(images[-1], images[-1]["converged"])
+    traces = [_thin(row) for row in tr] if tr is not None else []
     ratios = [im["ratio"] for im in images if im["ratio"] is not None]
     reached = [im["parity"]["reached"] for im in images if im["parity"]]
+    first = images[0] if images else {}
     card = {"src": files[0].name if files else None, "count": len(images),
             "ratio": max(ratios) if ratios else None,
-            "parity": None if not reached else sum(reached) / len(reached)}  # share of the unit's images at parity
+            "parity": None if not reached else sum(reached) / len(reached),  # share of the unit's images at parity
+            # the card shows the first image: its doubts, and the share of its judged checks it passes
+            "doubts": first.get("doubts") or [],
+            "trust": _f(1 - len(first["doubts"]) / first["checks"], 3) if first.get("checks") else None,
+            "own_rank": first.get("rank"), "robust": (first.get("robustness") or {}).get("relative")}
     best = rec.get("best_exemplar")
     detail = {"images": images, "trace": traces, "best_exemplar": _f(best) if best is not None else None}
     strip = Path(str(rec.get("nearest_strip") or "")).name
@@ -154,7 +193,8 @@ def _synth_payload(d: Path, rec: dict) -> tuple[dict, dict, list[Path]]:
         from ..facets import NEAR_K, NEAR_THUMB
 
         files.append(d / strip)
-        detail["near"] = {"src": strip, "thumb": NEAR_THUMB, "cols": NEAR_K}
+        detail["near"] = {"src": strip, "thumb": NEAR_THUMB, "cols": NEAR_K,
+                          "space": rec.get("nearest_space") or "cosine in the layer's embedding of channel means"}
     return card, detail, files
 
 
@@ -181,21 +221,29 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
         cards.update(c)
         details.update(hist)
         details.update(_mined_details(run, idx, units, pos))
-        details.update(_facet_details(run, layer, units, pos))
+        fd, facet_thumbs = _facet_details(run, layer, units, pos, dict(zip(units, cards["filled"])))
+        details.update(fd)
         sheets, cards["sheets"] = _sheets(run, layer, idx, len(mined), img_dir)
     images: list[Path] = []
     scard, sdet = [None] * U, [None] * U
+    sc = (((read_json(run.manifest_path) or {}).get("synth") or {}).get("settings") or {}).get("config") or {}
+    stop = (int(sc.get("stop_window") or 32), sc.get("stop_gain", 0.01))
     for i, u in enumerate(units):
         if u in synth:
-            scard[i], sdet[i], files = _synth_payload(sdir, synth[u])
+            scard[i], sdet[i], files = _synth_payload(sdir, synth[u], stop)
             images += files
     cards["img_dir"] = img_dir
     cards["synth_src"] = [c["src"] if c else None for c in scard]
     cards["synth_n"] = [c["count"] if c else 0 for c in scard]
     cards["ratio"] = [c["ratio"] if c else None for c in scard]
     cards["parity"] = [c["parity"] if c else None for c in scard]
+    for key in ("trust", "doubts", "own_rank", "robust"):
+        cards[key] = [c[key] if c else None for c in scard]
     details["synth"] = sdet
-    return LayerData(layer, cards, details, sheets, images)
+    data = LayerData(layer, cards, details, sheets, images)
+    if idx is not None:
+        data.facet_thumbs = facet_thumbs
+    return data
 
 
 def _pick(a: np.ndarray, units, pos, fill=None) -> list:
@@ -214,6 +262,21 @@ def spark(counts) -> str:
         return ""
     lv = np.where(c > 0, np.maximum(1, np.round(c / c.max() * 63)), 0).astype(int)
     return "".join(SPARK[v] for v in lv)
+
+
+def fire_rates(hist: np.ndarray, edges: np.ndarray, q: float = FIRE_QUANTILE) -> tuple[float, np.ndarray]:
+    """(t, per-unit share of images whose per-image maximum is >= t).
+
+    hist (U, J) counts of the per-image maxima on fixed bins, edges (J + 1,). t is the lowest bin
+    edge with at most 1 - q of the layer's per-image maxima (all units pooled) at or above it:
+    "max > 0" says nothing on a layer whose units are positive on every image, and a threshold
+    on a bin edge makes each share exact, read off the counts.
+    """
+    h = np.asarray(hist, dtype=np.float64)  # (U, J)
+    tail = np.append(np.cumsum(h.sum(0)[::-1])[::-1], 0.0)  # (J + 1,): pooled count at or above each edge
+    j = int(np.argmax(tail <= (1 - q) * tail[0]))
+    n = h.sum(1)
+    return float(edges[j]), np.where(n > 0, h[:, j:].sum(1) / np.maximum(n, 1), np.nan)
 
 
 def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict, dict]:
@@ -235,12 +298,16 @@ def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict
         mm = float(idx["mean_max"][p])
         spark_mean.append(round((mm - lo) / (hi - lo), 3) if lo is not None and hi > lo and math.isfinite(mm) else None)
     csi = idx.get("csi")
+    if csi is not None and not float(np.nanmin(idx["low"])) >= 0:
+        csi = None  # the index assumes non-negative activations: with negative class means it means nothing
+    fire_at, fire = fire_rates(idx["hist"], idx["hist_edges"]) if "hist" in idx else (None, idx["fire_rate"])
     top_ok = idx["top_score"]
     cards = {
         "shape": shape, "images": int(idx["count"]), "k": K,
         "negative": "bottom_box" in idx,  # the sheets hold bottom crops only when the layer goes negative
         "peak": _pick(idx["high"], units, pos),
-        "fire": _pick(idx["fire_rate"], units, pos),
+        "fire": _pick(fire, units, pos),
+        "fire_at": _f(fire_at) if fire_at is not None else None, "fire_q": FIRE_QUANTILE,
         "csi": _pick(csi, units, pos) if csi is not None else [None] * len(units),
         # number of filled exemplar slots per unit (a tiny corpus may have fewer than K images)
         "filled": [int(np.isfinite(top_ok[pos[u]]).sum()) if u in pos else 0 for u in units],
@@ -308,19 +375,33 @@ def _sheets(run: Run, layer: str, idx: dict, n_mined: int, img_dir: str) -> tupl
     return [d / n for n in present if n], info
 
 
-def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int]) -> dict:
-    """Facets of the top images (facets.npz, see facets.py) and whether near-duplicates were merged.
+def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int],
+                   kept_n: dict[int, int]) -> tuple[dict, list[Path]]:
+    """Facets of the top images (facets.npz, see facets.py) and whether near-duplicates were merged;
+    and the original files of the facet sheet's cells.
 
     Per unit: {"k", "n" (images clustered), "silhouette", "sizes" (members per facet),
-    "ranks" (facet of each kept top exemplar, by rank)}; None where the layer has no facets."""
+    "ranks" (facet of each kept top exemplar, by rank; `kept_n`: kept exemplars per unit), "cosine" (the largest cosine between two
+    facets' centres in the layer's embedding), "distinct" (below FACET_COSINE), "thumbs" (per facet,
+    cells of the facet sheet: members with no kept crop)}; None where the layer has no facets."""
     mine = (read_json(run.manifest_path) or {}).get("mine") or {}
     dd = mine.get("dedupe") or {}
     out: dict = {"dedupe": dd.get("threshold") if dd.get("on") else None}
     path = run.layer_dir(layer) / "facets.npz"
     if not path.is_file():
-        return out
+        return out, []
     z = read_npz(path)
     at = {int(u): j for j, u in enumerate(z["units"])}
+    emb = None
+    if (z["k"] > 1).any():
+        from ..facets import Embedding
+
+        try:
+            emb = Embedding(run, layer)
+        except (FileNotFoundError, KeyError):
+            emb = None
+    corpus = None
+    cells: list[Path] = []
     lists = []
     for u in units:
         j = at.get(u) if u in pos else None
@@ -329,8 +410,34 @@ def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int]) 
             continue
         f = z["facet"][j]
         f = f[f >= 0]
-        lists.append({"k": int(z["k"][j]), "n": int(len(f)), "silhouette": _f(z["silhouette"][j], 3),
-                      "sizes": np.bincount(f, minlength=int(z["k"][j])).tolist(), "ranks": f.tolist()})
+        k = int(z["k"][j])
+        entry = {"k": k, "n": int(len(f)), "silhouette": _f(z["silhouette"][j], 3),
+                 "sizes": np.bincount(f, minlength=k).tolist(), "ranks": f.tolist()}
+        if k > 1:
+            rows = z["image"][j][:len(f)]
+            if emb is not None:
+                x = emb.of_images(rows).astype(np.float64)  # (n, d) unit vectors
+                c = np.stack([x[f == a].mean(0) for a in range(k)])
+                c /= np.maximum(np.linalg.norm(c, axis=1, keepdims=True), 1e-12)
+                cos = c @ c.T
+                entry["cosine"] = _f(cos[~np.eye(k, dtype=bool)].max(), 3)
+                entry["distinct"] = bool(entry["cosine"] < FACET_COSINE)
+            kept = kept_n.get(u, 0)
+            thumbs = []
+            for a in range(k):
+                if (f[:kept] == a).any():
+                    thumbs.append([])
+                    continue
+                if corpus is None:
+                    corpus = run.corpus()
+                members = [int(i) for i in rows[f == a][:FACET_SHOWN]]
+                thumbs.append(list(range(len(cells), len(cells) + len(members))))
+                cells += [corpus.path(i) for i in members]
+            entry["thumbs"] = thumbs
+        lists.append(entry)
     out["facets"] = lists
     out["facet_top_n"] = int(z["top_n"])
-    return out
+    out["facet_cosine"] = FACET_COSINE
+    if cells:
+        out["facet_sheet"] = {"src": "facets.jpg", "thumb": FACET_THUMB, "cols": 16}
+    return out, cells

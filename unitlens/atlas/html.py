@@ -103,7 +103,7 @@ def _params(title: str, d: dict) -> Html:
     if not rows:
         return Html("")
     body = join(tag("tr", tag("th", k, scope="row"), tag("td", _value(v))) for k, v in rows)
-    return tag("details", tag("summary", title), tag("table", tag("tbody", body), class_="params"), open=True)
+    return tag("details", tag("summary", title), tag("table", tag("tbody", body), class_="params"))
 
 
 def _weights(w: dict) -> Html:
@@ -187,9 +187,10 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
                 tag("td", f"{L['k']}" if L.get("k") else "–", class_="num"),
                 tag("td", f"{L['synthesised']} / {L['synth_total']}" if L.get("synth_total") else "–", class_="num"),
                 tag("td", L.get("status", "")),
+                tag("td", L.get("overview") or "", class_="overview"),
                 data_layer=L["name"]))
         head = tag("tr", *[tag("th", h, scope="col", class_="num" if 0 < k < 5 else None) for k, h in
-                           enumerate(("layer", "C × H × W", "units mined", "exemplars per unit", "synthesised", "status"))])
+                           enumerate(("layer", "C × H × W", "units mined", "exemplars per unit", "synthesised", "status", "a first look"))])
         layers_s = tag("section", tag("h2", "Layers"), tag("table", tag("thead", head), tag("tbody", *rows),
                                                            class_="layers"), class_="panel wide", id="layers")
     else:
@@ -202,7 +203,8 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
     if ss:
         params.append(_params("Synthesis", {**(ss.get("config") or {}), "goal": ss.get("goal"),
                                             "colour": (synth.get("colour") or {}).get("source") or ss.get("colour")}))
-    params_s = tag("section", tag("h2", "Parameters"), *params, class_="panel wide")
+    params_s = tag("section", tag("details", tag("summary", tag("h2", "Settings"), " mining and synthesis, as run"),
+                                  *params, class_="settings"), class_="panel wide")
     prov_s = tag("section", tag("h2", "Provenance"), _dl([
         ("run started", tag("time", m.get("created", "?"))),
         ("last updated", tag("time", m.get("updated", "?"))),
@@ -211,7 +213,7 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
         ("atlas renderer", renderer),
     ]), class_="panel")
 
-    head = tag("header", tag("h1", run_name), tag("p", "unit atlas: what the channels of ", tag("code", model.get("spec", "?")),
+    head = tag("header", tag("h1", run_name), tag("p", "unit atlas: what the channels of ", tag("code", model.get("name") or model.get("spec", "?")),
                                                   " respond to on this corpus", class_="lede"), class_="pagehead")
     grid = tag("div", model_s, corpus_s, prov_s, class_="panels")
     main = join([head, cautions, layers_s, comparisons, grid, skipped_s, params_s])
@@ -221,7 +223,8 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
 # -- a layer page (the cards and the unit view are drawn by atlas.js) -----------------------
 
 SORTS = (("id", "unit id"), ("peak", "peak activation"), ("csi", "class selectivity"),
-         ("ratio", "synthesised / natural"), ("fire", "firing rate"))
+         ("ratio", "synthesised / natural"), ("fire", "firing rate"), ("trust", "synthesis trust (checks passed)"),
+         ("own_rank", "rank on its own synthesised image"), ("robust", "synthesis robustness under warps"))
 
 
 def layer_page(run_name: str, layer: str, facts: list[str], cards_js: str, units_js: str,

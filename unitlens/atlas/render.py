@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 import shutil
 from importlib import resources
@@ -22,17 +23,23 @@ from pathlib import Path
 from ..errors import UnitlensError, closest
 from ..store import Run, _atomic, now, read_json, safe_name, write_json
 from .data import layer_data
-from .html import index_page, js_data, layer_page
+from .html import Html, index_page, join, js_data, layer_page, tag
+from .paths import model_name
+from .paths import strip_paths as _strip
 
 STATIC = ("atlas.css", "atlas.js", "plots.js", "icon.png")  # the icon spares servers a favicon 404
 STATE = ".render.json"  # what each layer page was drawn from
+OVERVIEW = 6  # pictures per layer on the index
 
 
-def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = None) -> Path:
+def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = None,
+                 strip_paths: bool | None = None) -> Path:
     """Draw (or bring up to date) the atlas of a run folder; returns the path of its index.html.
 
     `layers`: redraw only these (the index and navigation always list every layer). Given a
     comparison folder (compare.json, no manifest), it draws that folder's pages instead.
+    `strip_paths`: cut every absolute path on the pages and in their data to its last part, so the
+    folder can be handed on; None keeps the choice the atlas was last drawn with.
 
     >>> render_atlas("runs/demo")                     # doctest: +SKIP
     PosixPath('runs/demo/atlas/index.html')
@@ -60,8 +67,9 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
         _write_if_changed(out / name, resources.files(__package__).joinpath("static", name).read_bytes())
 
     state = read_json(out / STATE) or {}
-    if state.get("renderer") != version:
-        state = {"renderer": version, "layers": {}}
+    share = bool(state.get("strip_paths")) if strip_paths is None else strip_paths
+    if state.get("renderer") != version or bool(state.get("strip_paths")) != share:
+        state = {"renderer": version, "layers": {}, "strip_paths": share}
     pages = state["layers"]
     # the layers asked for, and any the atlas does not show yet (a new renderer redraws them all)
     todo = known if layers is None else list(dict.fromkeys([*layers, *(n for n in known if n not in pages)]))
@@ -72,7 +80,7 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
         old = pages.get(name)
         if old and old.get("key") == key and (old.get("href") is None or (out / old["cards"]).is_file()):
             continue
-        pages[name] = _draw_layer(run, out, name) | {"key": key}
+        pages[name] = _draw_layer(run, out, name, share) | {"key": key}
         drew = True
         write_json(out / STATE, state)  # a later call knows this layer is done even if this one dies
     for name in [n for n in pages if n not in known]:  # layers the run no longer has
@@ -88,6 +96,9 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
         p = pages[name]
         _write_if_changed(out / href, layer_page(run_name, name, p["facts"], p["cards"], p["details"], nav).encode())
     rows = [_layer_row(n, m, pages.get(n)) for n in known]
+    m = {**m, "model": {**(m.get("model") or {}), "name": model_name((m.get("model") or {}).get("spec", "?"))}}
+    if share:
+        m = _strip(m)
     index = out / "index.html"
     drawn = state.get("drawn", "")
     from .comparison_page import comparisons_section
@@ -134,7 +145,7 @@ def _layer_key(run: Run, name: str, m: dict) -> str:
     return hashlib.sha256(json.dumps(parts).encode()).hexdigest()
 
 
-def _draw_layer(run: Run, out: Path, name: str) -> dict:
+def _draw_layer(run: Run, out: Path, name: str, share: bool = False) -> dict:
     """Images and data of one layer; returns what its page shell and the index need."""
     safe = safe_name(name)
     img_rel = f"img/{safe}"
@@ -142,8 +153,12 @@ def _draw_layer(run: Run, out: Path, name: str) -> dict:
     if data is None:
         _remove_layer(out, name, {"href": f"layer-{safe}.html"})
         return {"href": None, "units": 0}
+    if share:
+        data.cards, data.details = _strip(data.cards), _strip(data.details)
     wanted = {p.name: p for p in data.sheets + data.images}
-    _place_all(wanted, out / img_rel)
+    _place_all(wanted, out / img_rel, keep=("facets.jpg",) if data.facet_thumbs else ())
+    if data.facet_thumbs:
+        _facet_sheet(data.facet_thumbs, out / img_rel / "facets.jpg", data.details["facet_sheet"])
     cards_js, units_js = f"data/{safe}.cards.js", f"data/{safe}.units.js"
     # the details go first: a page whose cards are new must never find old details
     _write_if_changed(out / units_js, js_data("UNITLENS_UNITS", data.details).encode())
@@ -154,11 +169,58 @@ def _draw_layer(run: Run, out: Path, name: str) -> dict:
         facts.append("feature map " + " × ".join(map(str, c["shape"])))
     if c.get("mined"):
         facts.append(f"{c['k']} exemplars per unit from {c['images']:,} images")
+        if c.get("fire_at") is not None:
+            facts.append(f"“fires” = per-image maximum ≥ {c['fire_at']:.3g}, the layer's "
+                         f"{round(100 * c['fire_q'])}th percentile over all its units")
     else:
         facts.append("not mined yet: no exemplars or statistics")
     facts.append(f"{c['synthesised']} synthesised" if c["synthesised"] else "no synthesised images yet")
     return {"href": f"layer-{safe}.html", "facts": facts, "cards": cards_js, "details": units_js, "units": data.units, "mined": sum(p is not None for p in c.get("pos", [])),
-            "synthesised": c["synthesised"], "shape": c.get("shape"), "k": c.get("k")}
+            "synthesised": c["synthesised"], "shape": c.get("shape"), "k": c.get("k"),
+            "overview": _overview(c, f"layer-{safe}.html")}
+
+
+def _overview(c: dict, href: str, n: int = OVERVIEW) -> list[dict]:
+    """Up to `n` pictures of a layer for the index: the synthesised images that beat the best natural
+    exemplar by the widest margin, or (no synthesis) the best crop of the most class-selective units
+    (strongest peak where selectivity is not defined)."""
+    U = len(c["units"])
+    S = c.get("sheets")
+    if any(c["synth_src"]):
+        pick = sorted((i for i in range(U) if c["synth_src"][i]), key=lambda i: -(c["ratio"][i] or 0))
+    elif S and c.get("mined"):
+        key = c["csi"] if any(v is not None for v in c["csi"]) else c["peak"]
+        pick = sorted((i for i in range(U) if c["filled"][i] > 0 and S["names"][c["pos"][i] // S["rows"]]),
+                      key=lambda i: -(key[i] if key[i] is not None else -math.inf))
+    else:
+        return []
+    out = []
+    for i in pick[:n]:
+        u = c["units"][i]
+        item = {"unit": u, "href": f"{href}#unit-{u}"}
+        if c["synth_src"][i]:
+            item["src"] = f"{c['img_dir']}/{c['synth_src'][i]}"
+        else:  # the unit's best crop: its cell of the sprite sheet, shown through an SVG view box
+            p, t = c["pos"][i], S["thumb"]
+            rows_here = min(S["rows"], S["units"] - p // S["rows"] * S["rows"])
+            item.update(sheet=f"{S['dir']}/{S['names'][p // S['rows']]}", y=p % S["rows"] * t, thumb=t,
+                        w=S["cols"] * t, h=rows_here * t)
+        out.append(item)
+    return out
+
+
+def _overview_html(items: list[dict], size: int = 48) -> Html:
+    pics = []
+    for it in items:
+        label = f"unit {it['unit']}"
+        if "src" in it:
+            pic = tag("img", src=it["src"], width=size, height=size, alt=label, loading="lazy")
+        else:  # no inline style (the pages' policy forbids it): the crop is a view box on the sheet
+            t = it["thumb"]
+            pic = tag("svg", tag("image", href=it["sheet"], width=it["w"], height=it["h"]), width=size, height=size,
+                      viewBox=f"0 {it['y']} {t} {t}", role="img", aria_label=label)
+        pics.append(tag("a", pic, href=it["href"], title=label, class_="ov"))
+    return join(pics)
 
 
 def _layer_row(name: str, m: dict, page: dict | None) -> dict:
@@ -171,6 +233,7 @@ def _layer_row(name: str, m: dict, page: dict | None) -> dict:
         status.append("synthesised" if sl.get("complete") else f"synthesis: {sl.get('done', 0)} of {sl.get('units', '?')}")
     page = page or {}
     return {"name": name, "href": page.get("href"), "shape": page.get("shape"), "mined": page.get("mined"),
+            "overview": _overview_html(page.get("overview") or []),
             "k": page.get("k"), "synthesised": page.get("synthesised", 0),
             "synth_total": sl.get("units") if sl else None, "status": ", ".join(status)}
 
@@ -205,11 +268,29 @@ def _write_if_changed(path: Path, data: bytes) -> None:
     os.chmod(path, READABLE)
 
 
-def _place_all(wanted: dict[str, Path], d: Path) -> None:
-    """Make folder `d` hold exactly `wanted` ({name: source}): hard links where possible, else copies."""
+def _facet_sheet(files: list[Path], path: Path, spec: dict) -> None:
+    """Whole-image thumbnails (the centred square, as the network sees it) of `files`, row by row."""
+    from PIL import Image, ImageOps
+
+    t, cols = spec["thumb"], spec["cols"]
+    rows = -(-len(files) // cols)
+    sheet = Image.new("RGB", (cols * t, rows * t), (128, 128, 128))  # grey: a file that cannot be read now
+    for n, f in enumerate(files):
+        try:
+            with Image.open(f) as im:
+                sheet.paste(ImageOps.fit(im.convert("RGB"), (t, t)), (n % cols * t, n // cols * t))
+        except OSError:
+            pass
+    _atomic(path, lambda fh: sheet.save(fh, format="JPEG", quality=85))
+    os.chmod(path, READABLE)
+
+
+def _place_all(wanted: dict[str, Path], d: Path, keep: tuple[str, ...] = ()) -> None:
+    """Make folder `d` hold exactly `wanted` ({name: source}) and the files named in `keep`: hard links
+    where possible, else copies."""
     d.mkdir(parents=True, exist_ok=True)
     for p in d.iterdir():
-        if p.name not in wanted:
+        if p.name not in wanted and p.name not in keep:
             p.unlink()
     for name, src in wanted.items():
         _place(src, d / name)

@@ -31,6 +31,7 @@ from .._memory import available_memory
 from ..errors import UnitlensError
 from .bases import ColourBasis, make_basis
 from .goal import Context, Goal, Scorer
+from .results import stalled as _stalled
 from .warps import Warps, warp
 
 MAX_REDRAWS = 4  # new random starts for a unit silent at its start (contrast x3 each time)
@@ -364,16 +365,6 @@ def adam_step(P: torch.Tensor, m1: torch.Tensor, m2: torch.Tensor, g: torch.Tens
     m2.mul_(b2).addcmul_(g, g, value=1 - b2)
     denom = (m2 / (1 - b2**t)).sqrt_().add_(ADAM_EPS)
     P.addcdiv_(m1 * (lr / (1 - b1**t)), denom, value=-1.0)
-
-
-def _stalled(trace: list[float], window: int, gain: float | None) -> bool:
-    """True once the mean of the last `window` values beats the window before by less than `gain`
-    (relative); noisy traces (random transforms) need the averaging."""
-    if gain is None or len(trace) < 2 * window:
-        return False
-    a = sum(trace[-2 * window:-window]) / window
-    b = sum(trace[-window:]) / window
-    return b - a < gain * max(abs(a), abs(b), 1e-8)
 
 
 def is_out_of_memory(e: BaseException) -> bool:

@@ -236,7 +236,9 @@ def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, ex
     rec = {"unit": r.target, "best_exemplar": best, "exemplar_objective": reference,
            "trace": f"unit-{r.target:04d}.npz", "images": images}
     if near is not None:  # nearest natural images in the layer's embedding (facets.py)
-        hits, rec["nearest_strip"] = synth_neighbours(near, model, layer, u8, extract, d, f"near-{r.target:04d}")
+        hits, rec["nearest_strip"] = synth_neighbours(near, model, layer, u8, extract, d, f"near-{r.target:04d}",
+                                                        r.target)
+        rec["nearest_space"] = near.describe()
         for im, h in zip(images, hits):
             im["nearest"] = h
     return rec

@@ -78,3 +78,14 @@ def same_model(a: dict, b: dict) -> bool:
                 p.get("size"), [round(v, 6) for v in p.get("mean", [])], [round(v, 6) for v in p.get("std", [])])
 
     return key(a) == key(b)
+
+
+def stalled(trace, window: int, gain: float | None) -> bool:
+    """True once the mean of the last `window` values beats the window before by less than `gain`
+    (relative); noisy traces (random transforms) need the averaging. The loop's early stop, and the
+    atlas's test of whether a finished image converged (no torch here)."""
+    if gain is None or len(trace) < 2 * window:
+        return False
+    a = sum(trace[-2 * window:-window]) / window
+    b = sum(trace[-window:]) / window
+    return b - a < gain * max(abs(a), abs(b), 1e-8)

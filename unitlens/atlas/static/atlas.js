@@ -14,7 +14,7 @@
   const filterIn = document.getElementById("filter"), countOut = document.getElementById("count");
   const byUnit = new Map(C.units.map((u, i) => [u, i]));
   const fmt = P.fmt;
-  const HERO = 104, SMALL = 50, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
+  const HERO = 104, SMALL = 50, STRIP = 8, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
   const SPARK = "0123456789ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz-_";
 
   const el = P.el, add = P.add;
@@ -43,6 +43,18 @@
     return im;
   }
 
+  const FIRE_TIP = C.fire_at === null || C.fire_at === undefined ? "share of images on which the unit's maximum is above 0"
+    : "share of images on which the unit's maximum reaches " + fmt(C.fire_at) + ", the layer's " + Math.round(100 * C.fire_q) +
+      "th percentile of per-image maxima over all its units";
+  /* a number on a card: a visible label and a tooltip saying what it is */
+  function num(parent, cls, label, value, tip) {
+    const s = add(parent, "span", "num-l " + cls);
+    if (label) add(s, "span", "lab", label);
+    add(s, "span", "val", String(value));
+    s.title = tip;
+    return s;
+  }
+
   /* ---- one card (built on first sight, kept for reuse) */
   const built = new Array(N);
   function card(i) {
@@ -53,20 +65,29 @@
     a.dataset.unit = String(u);
     a.setAttribute("aria-label", "unit " + u);
     const top = add(a, "div", "card-head");
-    add(top, "span", "uid", u);
-    if (C.mined && C.peak[i] !== null) add(top, "span", "peak n-peak", "peak " + fmt(C.peak[i]));
-    const imgs = add(a, "div", "card-imgs");
+    num(top, "uid", "", u, "unit (channel) " + u + " of " + C.layer);
+    if (C.mined && C.peak[i] !== null) num(top, "peak n-peak", "peak", fmt(C.peak[i]), "peak: the largest activation of this unit anywhere in the corpus");
+    const imgs = add(a, "div", "card-imgs" + (C.mined ? "" : " synth-only"));
     let first = 0;
     if (src) {
       const f = add(imgs, "span", "hero synth");
       f.appendChild(synthImg(src, HERO, "synthesised image for unit " + u));
       add(f, "span", "badge", "synth");
+      const doubts = C.doubts ? C.doubts[i] : null;
+      if (doubts && doubts.length) {  // a visible mark; the tooltip says why
+        const d = add(f, "span", "doubt" + (doubts.indexOf("did not converge") >= 0 ? " unconverged" : ""),
+          doubts.indexOf("did not converge") >= 0 ? "not converged" : doubts.length === 1 ? "1 doubt" : doubts.length + " doubts");
+        d.title = "Mind: " + doubts.join("; ");
+        a.classList.add("doubtful");
+      }
     } else if (filled > 0) {
       add(imgs, "span", "hero").appendChild(crop(i, 0, HERO));
       first = 1;
     } else add(imgs, "span", "hero empty", "no images yet");
-    const quad = add(imgs, "span", "quad");
-    for (let r = first; r < first + 4; r++) quad.appendChild(r < filled ? crop(i, r, SMALL) : el("span", "crop nocrop"));
+    if (C.mined && filled > first) {  // only exemplars that exist get a box
+      const quad = add(imgs, "span", "quad");
+      for (let r = first; r < Math.min(filled, first + STRIP); r++) quad.appendChild(crop(i, r, SMALL));
+    }
     const sp = C.spark ? C.spark[i] : "";
     if (sp) {
       const counts = Array.from(sp, ch => SPARK.indexOf(ch));
@@ -74,28 +95,37 @@
         marks: [{ x: C.spark_mean[i], cls: "mean" }], title: "distribution of the per-image maximum (dashed: mean)" }));
     } else add(a, "div", "spark-empty", C.mined ? "" : "not mined");
     const nums = add(a, "div", "card-nums");
-    if (C.mined) {
-      add(nums, "span", "n-fire", "fires " + pct(C.fire[i]));
-      if (C.csi[i] !== null) add(nums, "span", "n-csi", "sel " + fmt(C.csi[i], 2));
-    }
-    if (C.ratio[i] !== null) add(nums, "span", "n-ratio", "synth ×" + fmt(C.ratio[i], 2));
+    if (C.mined && C.fire[i] !== null) num(nums, "n-fire", "fires", pct(C.fire[i]), FIRE_TIP);
+    if (C.mined && C.csi[i] !== null) num(nums, "n-csi", "class sel.", fmt(C.csi[i], 2),
+      "class selectivity: 0 when every class drives the unit alike, 1 when only one does");
+    if (C.ratio[i] !== null) num(nums, "n-ratio", "synth/nat", "×" + fmt(C.ratio[i], 2),
+      "the synthesised image's spatial maximum over the best natural exemplar's");
+    if (C.trust && C.trust[i] !== null) num(nums, "n-trust", "trust", pct(C.trust[i]),
+      "share of the synthesis checks its image passes: converged, reaches the best natural exemplar, rank 1 on its own image, robust to small warps");
     const par = C.parity ? C.parity[i] : null;
-    if (par !== null && par !== undefined) add(nums, "span", "n-parity" + (par < 1 ? " warn" : ""),
-      par >= 1 ? "parity" : par > 0 ? "parity " + pct(par) : "below parity");
+    if (par !== null && par !== undefined) num(nums, "n-parity" + (par < 1 ? " warn" : ""), "parity",
+      par >= 1 ? "reached" : pct(par),
+      "share of the unit's synthesised images whose objective, under fresh random warps, reaches its best natural exemplar's");
     built[i] = a;
     return a;
   }
 
   /* ---- order, filter, and the virtual grid */
-  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio };
-  const state = { sort: "id", desc: false, filter: null };
+  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio, trust: C.trust, own_rank: C.own_rank, robust: C.robust };
+  const state = { sort: "id", desc: false, filter: null, trust: "all" };
+  const TRUST = {  // the synthesis filter: what a unit's first synthesised image must show
+    all: () => true,
+    trusted: i => !!C.synth_src[i] && !!C.doubts && C.doubts[i] !== null && C.doubts[i].length === 0,
+    doubtful: i => !!C.doubts && !!C.doubts[i] && C.doubts[i].length > 0,
+    unconverged: i => !!C.doubts && !!C.doubts[i] && C.doubts[i].indexOf("did not converge") >= 0,
+  };
   let order = [], cols = 1, cardW = CARD_MIN_W, mounted = new Set(), firstFrame = false;
 
   const parseFilter = P.unitFilter;
 
   function computeOrder() {
     const key = KEYS[state.sort] || C.units, sign = state.desc ? -1 : 1, idx = [];
-    for (let i = 0; i < N; i++) if (!state.filter || state.filter(C.units[i])) idx.push(i);
+    for (let i = 0; i < N; i++) if ((!state.filter || state.filter(C.units[i])) && TRUST[state.trust](i)) idx.push(i);
     idx.sort((a, b) => {
       const x = key[a], y = key[b];
       const xn = x === null || x === undefined, yn = y === null || y === undefined;
@@ -162,7 +192,17 @@
     layout();
   });
   // orders without data stay listed but disabled, so the control says what is missing
-  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio]].forEach(([k, v]) => {
+  if (C.synthesised) {  // the synthesis filter, on layers that have synthesised images
+    const lab = el("label", "ctl");
+    lab.append("synthesis ");
+    const sel = add(lab, "select");
+    sel.id = "trust";
+    [["all", "all units"], ["trusted", "passes every check"], ["doubtful", "with doubts"], ["unconverged", "not converged"]]
+      .forEach(([v, t]) => { const o = add(sel, "option", "", t); o.value = v; });
+    sel.addEventListener("change", () => { state.trust = sel.value; layout(); });
+    dirBtn.after(lab);
+  }
+  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio], ["trust", C.trust], ["own_rank", C.own_rank], ["robust", C.robust]].forEach(([k, v]) => {
     const opt = sortSel.querySelector('option[value="' + k + '"]');
     if (!v || !v.some(x => x !== null && x !== undefined)) { opt.disabled = true; opt.textContent += " (none)"; }
   });
@@ -285,7 +325,7 @@
       ["peak (largest per-image max)", fmt(C.peak[i], 4)],
       ["per-image max, mean ± std", fmt(D.mean_max[i]) + " ± " + fmt(D.std_max[i])],
       ["mean activation", fmt(D.mean_mean[i])],
-      ["fires (max > 0) on", pct(C.fire[i])],
+      [C.fire_at === null || C.fire_at === undefined ? "fires (max > 0) on" : "fires (max ≥ " + fmt(C.fire_at) + ") on", pct(C.fire[i])],
       ["lowest value anywhere", fmt(D.low[i])],
       ["class selectivity", C.csi[i] === null ? null : fmt(C.csi[i], 3)],
       ["synthesised / natural", C.ratio[i] !== null ? "×" + fmt(C.ratio[i], 3) : null],
@@ -332,9 +372,9 @@
     const means = D.class_mean[i];
     let best = 0;
     means.forEach((v, k) => { if (v !== null && (means[best] === null || v > means[best])) best = k; });
-    add(sec, "p", "note", "Mean activation per class (spatial mean over each image). Class selectivity " +
-      (C.csi[i] === null ? "–" : fmt(C.csi[i], 3)) + ": 0 when every class drives the unit alike, 1 when only one does" +
-      (means.some(v => v !== null && v < 0) ? "; the index assumes non-negative activations, so with negative class means here read it with care." : "."));
+    add(sec, "p", "note", "Mean activation per class (spatial mean over each image). " + (C.csi[i] === null
+      ? "No class selectivity: the index is defined for non-negative activations only, and this layer goes negative."
+      : "Class selectivity " + fmt(C.csi[i], 3) + ": 0 when every class drives the unit alike, 1 when only one does."));
     const box = add(sec, "div", "plotbox");
     box.dataset.plot = "classes";
     box.appendChild(P.hbars({ labels: D.classes, values: means, highlight: best, width: 400, title: "class means of unit " + C.units[i] }));
@@ -356,8 +396,11 @@
     const f = D.facets ? D.facets[i] : null;
     if (!f) { add(sec, "p", "note", "This run has no facets for this layer (they need the per-image values mining keeps)."); return; }
     const letter = c => String.fromCharCode(65 + c);
+    const about = f.cosine === undefined || f.cosine === null ? ""
+      : f.distinct ? " Their centres have cosine " + fmt(f.cosine, 3) + " in the embedding (below " + D.facet_cosine + "): the unit may respond to different things."
+      : " Their centres have cosine " + fmt(f.cosine, 3) + " in the embedding (" + D.facet_cosine + " or more): variations of one thing rather than different things.";
     add(sec, "p", "note", f.k > 1
-      ? f.k + " groups among the top " + f.n + " images (k-means in the layer's embedding, silhouette " + fmt(f.silhouette, 3) + "): the unit may respond to several different things."
+      ? f.k + " groups among the top " + f.n + " images (k-means in the layer's embedding, silhouette " + fmt(f.silhouette, 3) + ")." + about
       : "One group: the top " + f.n + " images split into no facets of at least 3 images with silhouette ≥ 0.25.");
     if (f.k < 2) return;  // the one group is the exemplar list above
     const kept = (D.top[i] || []).length;
@@ -373,13 +416,24 @@
         const e = g.appendChild(crop(i, r, 64));
         e.title = "#" + (r + 1) + " " + D.files[D.top[i][r][0]];
       });
-      if (!ranks.length) add(g, "span", "note", "none among the kept crops");
+      const cells = f.thumbs ? f.thumbs[c] : [];
+      if (!ranks.length && cells && cells.length && D.facet_sheet) {  // no kept crop: the members' whole images
+        const sh = D.facet_sheet;
+        cells.forEach(n => {
+          const e = add(g, "span", "crop whole");
+          e.style.width = e.style.height = "64px";
+          e.style.backgroundImage = 'url("' + imgSrc(sh.src) + '")';
+          e.style.backgroundSize = (sh.cols * 64) + "px auto";
+          e.style.backgroundPosition = (-(n % sh.cols) * 64) + "px " + (-Math.floor(n / sh.cols) * 64) + "px";
+          e.title = "whole image (no crop kept for this member)";
+        });
+      } else if (!ranks.length) add(g, "span", "note", "none among the kept crops");
     }
   }
 
   function nearest(parent, near, m, list) {
     const box = add(parent, "div", "syn-near");
-    add(box, "span", "syn-near-head", "nearest natural images (cosine in the layer's embedding)");
+    add(box, "span", "syn-near-head", "nearest natural images (" + (near.space || "cosine in the layer's embedding") + ")");
     const g = add(box, "div", "syn-near-grid");
     list.forEach(([id, sim], c) => {
       const fig = add(g, "figure", "near");
@@ -417,6 +471,9 @@
           r.relative !== null && r.relative < 0.5 ? "warn" : ""]);
       }
       rows.push(["steps", String(im.steps)]);
+      if (im.converged !== null && im.converged !== undefined)
+        rows.push(["converged", im.converged ? "yes" : "no: still rising at the end", im.converged ? "" : "warn"]);
+      if (im.parity_step !== null && im.parity_step !== undefined) rows.push(["reached the natural best at step", String(im.parity_step)]);
       const cap = add(fig, "figcaption");
       facts(cap, rows, "small");
       if (rec.near && im.nearest && im.nearest.length) nearest(cap, rec.near, m, im.nearest);

@@ -87,12 +87,13 @@
     const bar = add(m, "span", "meter");
     add(bar, "span", "fill").style.width = (100 * u.change).toFixed(1) + "%";
     add(m, "span", "num", "change " + u.change.toFixed(2));
+    if (u.changed) add(h, "span", "flag changed", "changed").title = "correlation significantly below the stated level, or dead on one side only";
     if (u.dead_a && u.dead_b) add(h, "span", "flag dead", "dead in A and B");
     else if (u.dead_a) add(h, "span", "flag dead", "dead in A");
     else if (u.dead_b) add(h, "span", "flag dead", "dead in B");
     const n = add(r, "div", "u-nums");
     const item = (label, value, cls) => { const s = add(n, "span", "kv " + (cls || "")); add(s, "span", "k", label); add(s, "b", "v", value); return s; };
-    item("corr", fmt(u.corr, 3), "n-corr");
+    item("corr", fmt(u.corr, 3) + (u.corr_ci ? " [" + fmt(u.corr_ci[0], 3) + ", " + fmt(u.corr_ci[1], 3) + "]" : ""), "n-corr");
     item("top-set overlap", fmt(u.jaccard, 2), "n-jaccard");
     if (u.best_match === null) item("best match in B", "none (dead)");
     else {
@@ -113,7 +114,7 @@
   /* ---- order, filter, chunked drawing */
   const ORDER = { rank: 1, unit: 1, corr: 1, jaccard: 1, best_match_corr: 1, mean_change: -1, fire_rate_change: -1 };
   const SHOW = {
-    all: () => true, changed: u => u.change > 0, dead: u => u.dead,
+    all: () => true, changed: u => u.changed === undefined ? u.change > 0 : u.changed, dead: u => u.dead,
     moved: u => u.best_match !== null && u.best_match !== u.unit,
   };
   const sortSel = document.getElementById("sort"), dirBtn = document.getElementById("dir");
