@@ -20,6 +20,7 @@ from PIL import Image
 from conftest import ROOT, TESTS, run_cli
 
 from unitlens import MineConfig, SynthConfig, load_model, mine, open_corpus, parse_layers, run_all
+from unitlens.synth import OVERNIGHT
 from unitlens import dist
 from unitlens.errors import UnitlensError
 
@@ -68,7 +69,7 @@ def _reference(weights, corpus, out, batch, synth_steps=None):
         c = open_corpus(corpus, labels="folders" if synth_steps else None)
         cfg = MineConfig(top_k=4, batch_size=batch, workers=0)
         if synth_steps:
-            return run_all(m, c, layers, out, cfg, SynthConfig(steps=synth_steps, size=32), log=lambda msg: None)
+            return run_all(m, c, layers, out, cfg, SynthConfig(steps=synth_steps, size=32, **OVERNIGHT), log=lambda msg: None)
         return mine(m, c, layers, out, cfg)
     finally:
         torch.set_num_threads(threads)

@@ -103,7 +103,7 @@ def test_a_grey_model_mines_synthesises_and_draws_its_atlas(tmp_path, grey_corpu
     assert np.abs(sheet[..., 0] - sheet[..., 1]).max() <= 3 and np.abs(sheet[..., 2] - sheet[..., 1]).max() <= 3
     assert "photo-astronaut.png" in [e["id"] for e in json.loads(run_cli("show", out, "3:0", "--json").stdout)["exemplars"]]
 
-    run_cli("synth", out, "--layers", "3:0-1", "--steps", 12, "--size", 24, "--batch-size", 2)
+    run_cli("synth", out, "--layers", "3:0-1", "--steps", 12, "--synth-size", 24, "--batch-size", 2)
     units = json.loads((out / "synth" / "3" / "units.json").read_text())["units"]
     assert sorted(units) == ["0", "1"]
     for u, rec in units.items():

@@ -289,6 +289,8 @@ class NaturalNeighbours:
     @classmethod
     def for_layer(cls, run, layer: str):
         """None when the layer was not mined with an embedding."""
+        if not (run.layer_dir(layer) / "index.npz").is_file():  # not mined: no corpus to search
+            return None
         try:
             return cls(run, layer)
         except (FileNotFoundError, KeyError):

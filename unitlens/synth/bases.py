@@ -33,14 +33,17 @@ import torch
 from ..errors import UnitlensError
 
 # Natural-image colour default, used when a run has no corpus of its own. Per-channel standard
-# deviations are the ImageNet values torchvision normalises with; the correlations are measured
-# on scikit-image's bundled photographs by scripts/measure_colour.py (the mean of each photo's).
+# deviations are the ImageNet values torchvision normalises with; the correlations are from memory,
+# checked against scikit-image's bundled photographs by scripts/measure_colour.py (below).
 DEFAULT_MEAN = (0.485, 0.456, 0.406)
 DEFAULT_STD = (0.229, 0.224, 0.225)
-DEFAULT_CORR = ((1.0, 0.89, 0.68), (0.89, 1.0, 0.9), (0.68, 0.9, 1.0))
-DEFAULT_SOURCE = ("natural-image default: ImageNet channel std 0.229/0.224/0.225 (torchvision), correlation "
-                  "R-G 0.89, G-B 0.90, R-B 0.68 (mean over scikit-image's photographs astronaut, chelsea, coffee, "
-                  "rocket)")
+DEFAULT_CORR = ((1.0, 0.9, 0.8), (0.9, 1.0, 0.9), (0.8, 0.9, 1.0))
+# From memory for ImageNet-like photos; scripts/measure_colour.py measures R-G 0.89, G-B 0.90, R-B 0.68 on
+# scikit-image's photographs (the test holds the two within 0.15). Adopting the measured values changed
+# how far a unit's image drifts between batch sizes on a random ResNet-18, so that change waits for a
+# look of its own.
+DEFAULT_SOURCE = ("natural-image default [from memory]: ImageNet channel std 0.229/0.224/0.225 (torchvision), "
+                  "correlation R-G 0.9, G-B 0.9, R-B 0.8")
 SQUASHES = ("sigmoid", "clip", "none")
 
 
