@@ -155,7 +155,9 @@ def _synth(s) -> Html:
              ("rank among channels", f"{r['rank']} of {r['channels']}" if r.get("rank") is not None else None),
              ("under random warps", f"{_num((r.get('robustness') or {}).get('relative'), '.2f')} of it"
               if (r.get("robustness") or {}).get("relative") is not None else None),
-             ("parity", _num(r.get("parity"))) if r.get("parity") is not None else (None, None),
+             ("parity with the best exemplar", ("reached" if r["parity"].get("reached") else "not reached")
+              + (f" at step {r['parity']['step']}" if r["parity"].get("step") is not None else ""))
+             if r.get("parity") else (None, None),
              ("steps", _num(r.get("steps")))]
     near = [tag("figure", _picture(p.image, NEAR_PX, "nearest natural image"),
                 tag("figcaption", f"{p.similarity:.2f}" if p.similarity is not None else "", title=p.id), class_="near")

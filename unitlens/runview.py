@@ -328,9 +328,9 @@ class RunView:
             row = {"unit": ch, "peak": st["max"], "mean": st["mean_max"], "fire_rate": st["fire_rate"],
                    "class_selectivity": st["class_selectivity"], "synthesised": len(ims),
                    "ratio": max(ratios) if ratios else None}
-            parity = [r["parity"] for r in ims if r.get("parity") is not None]
-            if parity:
-                row["parity"] = parity[0] if len(parity) == 1 else parity
+            parity = [r["parity"] for r in ims if r.get("parity")]  # {"reached", "step", ...} per image
+            if parity:  # the share of the unit's images that reach their best natural exemplar
+                row["parity"] = sum(bool(p.get("reached")) for p in parity) / len(parity)
             rows.append(row)
         return Table(rows, title=f"{self.path.name} / {layer}")
 
