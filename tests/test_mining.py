@@ -155,18 +155,20 @@ def test_resume_after_sigkill_matches_uninterrupted(tmp_path, r18_weights):
         Image.fromarray(rng.integers(0, 255, (96, 96, 3), dtype=np.uint8)).save(corpus / f"{i:03d}.png")
     run_cli(*_mine_cmd(corpus, r18_weights, tmp_path / "whole")[3:])
     out = tmp_path / "killed"
-    p = subprocess.Popen(_mine_cmd(corpus, r18_weights, out, "--checkpoint-every", "0.2"), cwd=ROOT,
-                         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    # Held for good on the 21st tally update (batch 11 of 40, tests/pause.py), checkpointing every batch,
+    # so the kill lands part-way on any machine.
+    marker = tmp_path / "paused"
+    p = subprocess.Popen([sys.executable, str(ROOT / "tests" / "pause.py"), "unitlens.mining:LayerTally.added", "21",
+                          str(marker), "--", *_mine_cmd(corpus, r18_weights, out, "--checkpoint-every", "0")[3:]],
+                         cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     state = out / "mine" / "state.json"
     deadline = time.monotonic() + 120
-    while time.monotonic() < deadline:
-        if state.is_file() and json.loads(state.read_text())["next"] >= 10:
-            break
+    while time.monotonic() < deadline and p.poll() is None and not marker.is_file():
         time.sleep(0.05)
     os.kill(p.pid, signal.SIGKILL)
-    p.wait()
+    assert p.wait() == -signal.SIGKILL and marker.is_file()
     done_before = json.loads(state.read_text())["next"]
-    assert 0 < done_before < 80, "the kill should land part-way"
+    assert done_before == 20, "the kill should land part-way"
     run_cli(*_mine_cmd(corpus, r18_weights, out)[3:])
     for layer in ("layer2", "layer3"):
         a, b = Run(tmp_path / "whole").index(layer), Run(out).index(layer)

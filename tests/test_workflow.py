@@ -101,14 +101,10 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
     assert "mining 24 images" not in again.stderr and "min left" not in again.stderr
     assert _atlas_data(whole) == expect
 
-    def mining_started(out):
-        return lambda: (out / "mine" / "state.json").is_file()
-
-    def synth_started(out):
-        return lambda: any((out / "synth").rglob("*.png")) if (out / "synth").is_dir() else False
-
-    def atlas_started(out):
-        return lambda: (out / "atlas" / "data").is_dir()
+    # Each stage is held at a chosen call (tests/pause.py), so the kill lands inside it on any machine.
+    stops = {"mining": ("unitlens.mining:LayerTally.added", 7),  # batch 4 of 6, second layer pending
+             "synthesis": ("unitlens.synth.pipeline:_write_unit", 3),  # some units written, not all
+             "atlas": ("unitlens.atlas.render:_draw_layer", 2)}  # first layer drawn, second not
 
     def manifest(out):
         return json.loads((out / "manifest.json").read_text())
@@ -124,11 +120,14 @@ def test_run_resumes_after_sigkill_in_each_stage(tmp_path, r18_weights):
     def atlas_unfinished(out):
         return not (out / "atlas" / "index.html").is_file()  # the index is the atlas's last file
 
-    for name, ready, unfinished in (("mining", mining_started, mining_unfinished),
-                                    ("synthesis", synth_started, synth_unfinished),
-                                    ("atlas", atlas_started, atlas_unfinished)):
-        out = tmp_path / name
-        assert _kill_when(_cmd(corpus, out, r18_weights), ready(out)) == -signal.SIGKILL, f"{name}: ended unkilled"
+    for name, unfinished in (("mining", mining_unfinished), ("synthesis", synth_unfinished),
+                             ("atlas", atlas_unfinished)):
+        out, marker = tmp_path / name, tmp_path / f"{name}.paused"
+        target, n = stops[name]
+        held = [sys.executable, str(ROOT / "tests" / "pause.py"), target, str(n), str(marker), "--",
+                *_cmd(corpus, out, r18_weights)[3:]]
+        assert _kill_when(held, marker.is_file) == -signal.SIGKILL, f"{name}: ended unkilled"
+        assert marker.is_file(), f"{name}: the kill came before the chosen moment"
         assert unfinished(out), f"the kill should land during {name}"
         r = subprocess.run(_cmd(corpus, out, r18_weights), cwd=ROOT, capture_output=True, text=True)
         assert r.returncode == 0, r.stderr
