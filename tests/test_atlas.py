@@ -22,7 +22,7 @@ from conftest import ROOT, TESTS, run_cli
 from unitlens import MineConfig, UnitlensError, load_model, mine, open_corpus, parse_layers, render_atlas
 from unitlens.atlas.data import SPARK, rebin, spark
 from unitlens.crops import SHEET_ROWS, sheet_cell
-from unitlens.mining import LayerTally, _index_arrays, hist_edges
+from unitlens.tally import LayerTally, hist_edges, index_arrays
 from unitlens.store import Run, read_npz, safe_name, write_json, write_npz
 from unitlens.units import LayerUnits
 
@@ -61,7 +61,7 @@ def tiny(tmp_path_factory):
 def fake_run(root: Path, layer: str = "layer4", units: int = 2048, k: int = 16, images: int = 64, thumb: int = 16,
              synth: bool = True, negative: bool = False) -> Run:
     """A run folder in the real on-disk format with made-up numbers (nothing is mined): the index
-    comes from mining's own LayerTally and _index_arrays, fed random feature maps."""
+    comes from mining's own LayerTally and index_arrays, fed random feature maps."""
     run, rng = Run(root), np.random.default_rng(0)
     classes = ["a", "b", "c", "d"]
     t = LayerTally(tuple(range(units)), units, 2, k, len(classes))
@@ -72,7 +72,7 @@ def fake_run(root: Path, layer: str = "layer4", units: int = 2048, k: int = 16, 
         f = torch.randn(32, units, 2, 2, generator=g) * scale + shift  # (B, U, 2, 2)
         t.update(f if negative else torch.relu(f), torch.arange(s, s + 32), torch.arange(s, s + 32) % 4)
     lu = LayerUnits(layer, tuple(range(units)))
-    idx = _index_arrays(t, SimpleNamespace(channels=units, height=2, width=2), lu)
+    idx = index_arrays(t, SimpleNamespace(channels=units, height=2, width=2), lu)
     kinds = ["top", "bottom"] if negative else ["top"]
     idx.update({f"{kd}_box": rng.integers(0, 40, (units, k, 4)) for kd in kinds})
     idx.update(sheet_rows=np.array(SHEET_ROWS), sheet_cols=np.array(k * len(kinds)), thumb=np.array(thumb))

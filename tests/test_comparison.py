@@ -13,7 +13,7 @@ from conftest import TESTS, run_cli
 from digits import MEAN, SIZE, STD, digit_images, normalize
 from digits_finetune import BLOCKS, accuracy, permute_block, seeded_net, silence_unit, train, write_corpus
 from unitlens import CompareConfig, MineConfig, UnitlensError, compare, load_model, mine, open_corpus, parse_layers
-from unitlens._cka import _resampled_cka, hsic_unbiased, linear_cka, minibatch_cka
+from unitlens._cka import resampled_cka, hsic_unbiased, linear_cka, minibatch_cka
 
 SPEC = f"{TESTS / 'digits_finetune.py'}:digits_bn_net"
 PROBE = 600  # the first 600 digits are the probe corpus; the networks train on the other 1197
@@ -163,7 +163,7 @@ def test_bootstrap_reweighting_equals_resampled_images():
     y = x[:, :2] + rng.normal(size=(30, 2))
     draws = rng.integers(0, 30, (6, 30))
     W = np.stack([np.bincount(d, minlength=30) for d in draws], 1).astype(float)
-    np.testing.assert_allclose(_resampled_cka(x, y, W), [linear_cka(x[d], y[d]) for d in draws], rtol=1e-10)
+    np.testing.assert_allclose(resampled_cka(x, y, W), [linear_cka(x[d], y[d]) for d in draws], rtol=1e-10)
 
 
 # ----------------------------------------------------------------------------- networks

@@ -23,6 +23,7 @@ from unitlens import MineConfig, SynthConfig, load_model, mine, open_corpus, par
 from unitlens.synth import OVERNIGHT
 from unitlens import dist
 from unitlens.errors import UnitlensError
+from unitlens.tally import merge_ranks
 
 NET = f"{TESTS / 'nets.py'}:digits_net"
 LAYERS = ["3:0-15", "6"]
@@ -236,5 +237,5 @@ def test_merged_colour_sums_keep_the_channel_count_of_a_grey_model():
     # two ranks that both measured the same grey pixels: the merge is exactly twice one rank's sums
     colour = [torch.tensor([3.0], dtype=torch.float64), torch.tensor([[5.0]], dtype=torch.float64), 7]
     g = SimpleNamespace(world=2, main=True, gather=lambda obj, what: [obj, obj])
-    _tallies, total, _skipped = dist.merge_tallies(g, {}, colour, [], [])
+    _tallies, total, _skipped = merge_ranks(g, {}, colour, [], [])
     assert total[0].tolist() == [6.0] and total[1].tolist() == [[10.0]] and total[2] == 14

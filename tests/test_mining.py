@@ -13,7 +13,7 @@ import torch
 
 from conftest import ROOT, TESTS, run_cli
 from unitlens import MineConfig, load_model, mine, open_corpus, parse_layers, unit_summary
-from unitlens.mining import HIST_BINS, PAD, LayerTally, _merge, class_selectivity, hist_edges
+from unitlens.tally import HIST_BINS, PAD, LayerTally, class_selectivity, hist_edges, keep_best
 from unitlens.store import Run
 
 
@@ -86,7 +86,7 @@ def test_merge_breaks_ties_by_corpus_order_like_lexsort():
     pos = torch.zeros((3, k), dtype=torch.long)
     for lo in range(0, 40, 6):  # arbitrary batch boundaries
         ids = torch.arange(lo, min(lo + 6, 40)).view(1, -1).expand(3, -1)
-        val, img, pos = _merge(val, img, pos, torch.from_numpy(scores[:, lo:lo + 6]), ids, ids, k, True)
+        val, img, pos = keep_best(val, img, pos, torch.from_numpy(scores[:, lo:lo + 6]), ids, ids, k, True)
     for u in range(3):
         expect = np.lexsort((np.arange(40), -scores[u]))[:k]
         assert img[u].tolist() == expect.tolist()
@@ -261,15 +261,15 @@ def test_a_run_stopped_while_finishing_completes_when_run_again(tmp_path, smooth
     entry = run.manifest()["mine"]["layers"]["layer1"]
     assert run.manifest()["mine"]["done"] and "embedding" in entry and "facets" in entry
     # Resuming over a lost or foreign per-image file is refused instead of leaving zeros in earlier rows.
-    from unitlens.mining import _open_values
+    from unitlens.mining import open_rows
 
     values = run.layer_dir("layer1") / "values.npy"
-    assert _open_values(values, (len(corpus), 4), fresh=False).shape == (len(corpus), 4)
+    assert open_rows(values, (len(corpus), 4), fresh=False).shape == (len(corpus), 4)
     with pytest.raises(UnitlensError, match="Cannot resume mining: .*holds float32"):
-        _open_values(values, (len(corpus), 5), fresh=False)
+        open_rows(values, (len(corpus), 5), fresh=False)
     values.unlink()
     with pytest.raises(UnitlensError, match="Cannot resume mining: .*values.npy is missing"):
-        _open_values(values, (len(corpus), 4), fresh=False)
+        open_rows(values, (len(corpus), 4), fresh=False)
 
 
 def test_a_checkpoint_whose_json_lags_its_tallies_resumes_without_counting_twice(tmp_path, smooth_corpus, r18_weights,
@@ -408,9 +408,9 @@ def test_a_finished_run_loses_the_checkpoint_a_kill_during_clean_up_left(tmp_pat
 def test_per_image_arrays_take_their_disk_blocks_when_created(tmp_path):
     # A sparse memory map takes its blocks at the first write into each page; on a full disk that
     # write kills the process with SIGBUS. Allocated up front, a full disk is an error at creation.
-    from unitlens.mining import _open_values
+    from unitlens.mining import open_rows
 
-    a = _open_values(tmp_path / "values.npy", (2000, 512), fresh=True)
+    a = open_rows(tmp_path / "values.npy", (2000, 512), fresh=True)
     st = os.stat(tmp_path / "values.npy")
     assert st.st_blocks * 512 >= a.nbytes, (st.st_blocks * 512, a.nbytes)
 
@@ -457,7 +457,7 @@ def test_a_disk_filling_up_mid_pass_is_one_error_line_and_the_rerun_resumes(tmp_
             "--layers", "layer1:0-7", "--top", "3", "--workers", "0", "--batch-size", "4", "--checkpoint-every", "0"]
     code, _, err = cli(capsys, *args, "--out", tmp_path / "whole")
     assert code == 0, err
-    real, writes = store._atomic, []
+    real, writes = store.atomic_write, []
 
     def full_at_the_third_checkpoint(path, write):
         writes.append(path.name)
@@ -467,7 +467,7 @@ def test_a_disk_filling_up_mid_pass_is_one_error_line_and_the_rerun_resumes(tmp_
                 raise OSError(errno.ENOSPC, "No space left on device")
         real(path, write)
 
-    monkeypatch.setattr(store, "_atomic", full_at_the_third_checkpoint)
+    monkeypatch.setattr(store, "atomic_write", full_at_the_third_checkpoint)
     code, _, err = cli(capsys, *args, "--out", tmp_path / "r")
     assert code == 1 and "Traceback" not in err and err.count("Error: ") == 1, err
     line = err.strip().splitlines()[-1]

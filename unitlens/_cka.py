@@ -66,7 +66,7 @@ def hsic_unbiased(K, L) -> float:
     return _hsic1(_zero_diagonal(K), _zero_diagonal(L))
 
 
-class _MinibatchTally:
+class MinibatchTally:
     """Unbiased HSIC per minibatch for every pair (A's layer i, B's layer j) and each layer with itself;
     CKA_mb = mean HSIC(K,L) / sqrt(mean HSIC(K,K) mean HSIC(L,L)) (Nguyen, Raghu & Kornblith 2021)."""
 
@@ -104,7 +104,7 @@ def minibatch_cka(X, Y, batch_size: int = 256) -> float:
     if len(X) != len(Y) or len(X) < 4 or batch_size < 4:
         raise UnitlensError(f"Minibatch CKA needs the same examples in both and batches of at least 4, "
                             f"got {len(X)} and {len(Y)} rows, batch size {batch_size}.")
-    tally = _MinibatchTally()
+    tally = MinibatchTally()
     for s in range(0, len(X), batch_size):
         x, y = X[s:s + batch_size], Y[s:s + batch_size]
         tally.add([x @ x.T], [y @ y.T])
@@ -119,7 +119,7 @@ def _percentiles(values: np.ndarray, confidence: float) -> list[float] | None:
     return [float(v) for v in np.percentile(values, [tail, 100 - tail])]
 
 
-def _resampled_cka(x: np.ndarray, y: np.ndarray, W: np.ndarray) -> np.ndarray:
+def resampled_cka(x: np.ndarray, y: np.ndarray, W: np.ndarray) -> np.ndarray:
     """Linear CKA of x (m, p1), y (m, p2) under each column of W (m, R): image i taken W[i, r] times
     (columns sum to m), without building any resample. With K, L the Gram matrices,
     (m-1)^2 HSIC = tr(K~HL~H) = w'(K*L)w - (2/m) sum_i w_i (Kw)_i (Lw)_i + (w'Kw)(w'Lw)/m^2."""
@@ -135,7 +135,7 @@ def _resampled_cka(x: np.ndarray, y: np.ndarray, W: np.ndarray) -> np.ndarray:
         return hsic(K, KW, L, LW) / np.sqrt(hsic(K, KW, K, KW) * hsic(L, LW, L, LW))
 
 
-def _pooled_interval(X, Y, rows: np.ndarray, point: float, cfg, rng):
+def pooled_interval(X, Y, rows: np.ndarray, point: float, cfg, rng):
     """Percentile bootstrap over images of the pooled linear CKA. Above `bootstrap_images` images it
     resamples a random subset of m and scales the spread around the subset's own estimate by
     sqrt(m/N) to the whole corpus (the m-out-of-n bootstrap; Bickel, Goetze & van Zwet 1997)."""
@@ -146,7 +146,7 @@ def _pooled_interval(X, Y, rows: np.ndarray, point: float, cfg, rng):
     sub = rows if m == n_all else np.sort(rng.choice(rows, m, replace=False))
     x, y = _as_rows(X[sub]), _as_rows(Y[sub])
     W = rng.multinomial(m, np.full(m, 1 / m), size=cfg.bootstrap).T.astype(np.float64)  # (m, R)
-    ci = _percentiles(_resampled_cka(x, y, W), cfg.confidence)
+    ci = _percentiles(resampled_cka(x, y, W), cfg.confidence)
     if ci is None or m == n_all:
         return ci, f"percentile bootstrap over {n_all} images, {cfg.bootstrap} resamples"
     own, scale = linear_cka(x, y), math.sqrt(m / n_all)
@@ -168,7 +168,7 @@ def _resampled_corr(x: np.ndarray, y: np.ndarray, W: np.ndarray) -> np.ndarray:
 
 def corr_intervals(X, Y, rows: np.ndarray, point: np.ndarray, cfg, rng) -> np.ndarray | None:
     """(U, 2) percentile-bootstrap intervals over images of the same-column correlations of X and
-    Y ((N, U) each, read at `rows`); the m-out-of-n rescaling of `_pooled_interval` above
+    Y ((N, U) each, read at `rows`); the m-out-of-n rescaling of `pooled_interval` above
     `bootstrap_images` images. None when the bootstrap is off."""
     n_all = len(rows)
     if cfg.bootstrap == 0 or n_all < 4:
@@ -195,11 +195,11 @@ def _blocks(X, rows: np.ndarray):
         yield np.asarray(X[rows[s:s + _CHUNK]], dtype=np.float64)
 
 
-def _mean(X, rows: np.ndarray) -> np.ndarray:
+def mean_of_rows(X, rows: np.ndarray) -> np.ndarray:
     return sum(b.sum(0) for b in _blocks(X, rows)) / len(rows)
 
 
-def _moments(X, rows: np.ndarray):
+def column_moments(X, rows: np.ndarray):
     """Mean, std and firing rate (> 0) of each column of X over `rows`, in float64 (two passes)."""
     total, fires = 0.0, 0.0
     for b in _blocks(X, rows):
@@ -209,19 +209,19 @@ def _moments(X, rows: np.ndarray):
     return mean, np.sqrt(sq / len(rows)), fires / len(rows)
 
 
-def _cross(X, Y, rows: np.ndarray, mx: np.ndarray, my: np.ndarray) -> np.ndarray:
+def cross_products(X, Y, rows: np.ndarray, mx: np.ndarray, my: np.ndarray) -> np.ndarray:
     """sum over rows of (x - mx)(y - my)', (p1, p2) float64."""
     return sum((a - mx).T @ (b - my) for a, b in zip(_blocks(X, rows), _blocks(Y, rows)))
 
 
-def _cka_matrix(As: list, Bs: list, rows: np.ndarray) -> np.ndarray:
+def cka_matrix(As: list, Bs: list, rows: np.ndarray) -> np.ndarray:
     """Linear CKA of every (A layer, B layer) from (N, C) pooled features, centred over `rows`."""
-    means_a = [_mean(X, rows) for X in As]
-    means_b = [_mean(Y, rows) for Y in Bs]
-    self_a = [np.linalg.norm(_cross(X, X, rows, m, m)) for X, m in zip(As, means_a)]
-    self_b = [np.linalg.norm(_cross(Y, Y, rows, m, m)) for Y, m in zip(Bs, means_b)]
+    means_a = [mean_of_rows(X, rows) for X in As]
+    means_b = [mean_of_rows(Y, rows) for Y in Bs]
+    self_a = [np.linalg.norm(cross_products(X, X, rows, m, m)) for X, m in zip(As, means_a)]
+    self_b = [np.linalg.norm(cross_products(Y, Y, rows, m, m)) for Y, m in zip(Bs, means_b)]
     M = np.full((len(As), len(Bs)), math.nan)
     for i, (X, mx) in enumerate(zip(As, means_a)):
         for j, (Y, my) in enumerate(zip(Bs, means_b)):
-            M[i, j] = _ratio(np.linalg.norm(_cross(X, Y, rows, mx, my)) ** 2, self_a[i] * self_b[j])
+            M[i, j] = _ratio(np.linalg.norm(cross_products(X, Y, rows, mx, my)) ** 2, self_a[i] * self_b[j])
     return M

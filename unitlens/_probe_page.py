@@ -5,8 +5,8 @@ from __future__ import annotations
 from importlib import resources
 from pathlib import Path
 
-from .atlas.html import _dl, join, page, tag
-from .store import Run, _atomic, safe_name
+from .atlas.html import facts_list, join, page, tag
+from .store import Run, atomic_write, safe_name
 
 TITLES = {"integrated-gradients": "integrated gradients", "gradient-x-input": "gradient × input",
           "smoothgrad": "SmoothGrad |mean gradient|"}
@@ -31,8 +31,8 @@ CSS = """
 def write_page(d: Path, run: Run, s: dict) -> Path:
     """Write d/index.html (+ the stylesheet and icon) for the probe summary `s`; returns its path."""
     static = resources.files("unitlens.atlas").joinpath("static")
-    _atomic(d / "atlas.css", lambda f: f.write(static.joinpath("atlas.css").read_bytes() + CSS.encode()))
-    _atomic(d / "icon.png", lambda f: f.write(static.joinpath("icon.png").read_bytes()))
+    atomic_write(d / "atlas.css", lambda f: f.write(static.joinpath("atlas.css").read_bytes() + CSS.encode()))
+    atomic_write(d / "icon.png", lambda f: f.write(static.joinpath("icon.png").read_bytes()))
     layer, unit, st = s["layer"], s["unit"], s["stats"]
     settings = s["settings"]
     facts = [("model", tag("code", s["model"])), ("run", tag("code", str(run.path))),
@@ -46,7 +46,7 @@ def write_page(d: Path, run: Run, s: dict) -> Path:
     atlas = run.path / "atlas" / f"layer-{safe_name(layer)}.html"
     link = (tag("p", tag("a", "This unit in the run's atlas", href=f"../../atlas/{atlas.name}#unit-{unit}"))
             if atlas.is_file() else None)
-    stats = tag("section", tag("h2", "Statistics"), _dl(facts), link, class_="panel")
+    stats = tag("section", tag("h2", "Statistics"), facts_list(facts), link, class_="panel")
     synth = [tag("figure", tag("img", src=im["page_image"], width=160, height=160, alt=f"synthesised for unit {unit}"),
                  tag("figcaption", f"activation {im['max_activation']:.4g}" +
                      (f", {im['vs_best_exemplar']:.2f}× the best exemplar" if im.get("vs_best_exemplar") else "")),
@@ -82,7 +82,7 @@ def write_page(d: Path, run: Run, s: dict) -> Path:
     crumbs = [tag("span", run.path.resolve().name), "/", tag("span", f"{layer}:{unit}", class_="here")]
     path = d / "index.html"
     html = page(f"{layer}:{unit} · unitlens probe", "probe", crumbs, main)
-    _atomic(path, lambda f: f.write(html.encode()))
+    atomic_write(path, lambda f: f.write(html.encode()))
     return path
 
 

@@ -13,7 +13,7 @@ import re
 from functools import lru_cache
 from importlib import resources
 
-from .atlas.html import Html, _dl, join, tag
+from .atlas.html import Html, facts_list, join, tag
 
 SHOW_TOP = 16  # exemplars drawn per unit; the rest are counted
 SHOW_NEGATIVE = 8
@@ -163,7 +163,7 @@ def _synth(s) -> Html:
                 tag("figcaption", f"{p.similarity:.2f}" if p.similarity is not None else "", title=p.id), class_="near")
             for p in s.nearest[:SHOW_NEAR]]
     return tag("figure", _picture(s.image, SYNTH_PX, "synthesised image"),
-               tag("figcaption", _dl([f for f in facts if f[0]]),
+               tag("figcaption", facts_list([f for f in facts if f[0]]),
                    tag("div", *near, class_="facet-grid") if near else None), class_="syn")
 
 
@@ -173,7 +173,7 @@ def unit_html(u) -> str:
 
 def _unit_body(u) -> Html:
     st = u.stats
-    facts = _dl([
+    facts = facts_list([
         ("images", f"{st['images']:,}"),
         ("per-image max", (f"mean {_num(st['mean_max'])}, std {_num(st['std_max'])}, "
                            f"range {_num(st['min'])} .. {_num(st['max'])}")),
@@ -215,7 +215,7 @@ def layer_html(layer) -> str:
 
 def run_html(run) -> str:
     m, c = run.model, run.corpus
-    facts = _dl([("folder", tag("code", str(run.path))), ("model", tag("code", m.get("spec", "?"))),
+    facts = facts_list([("folder", tag("code", str(run.path))), ("model", tag("code", m.get("spec", "?"))),
                  ("weights", (m.get("weights") or {}).get("kind")),
                  ("corpus", f"{c.get('count', 0):,} images, {len(c.get('skipped') or [])} skipped"
                   + (f", {len(c.get('classes') or [])} classes" if c.get("classes") else "")),
@@ -272,5 +272,5 @@ def pair_html(pair) -> str:
         inner = _unit_body(u) if u is not None else tag("p", "No run folder on this side: numbers only.",
                                                              class_="note")
         sides.append(tag("section", tag("h4", label), inner))
-    return wrap(tag("h3", f"{pair.layer} · unit {pair.unit}"), _dl([(k, _num(v)) for k, v in pair.row.items()]),
+    return wrap(tag("h3", f"{pair.layer} · unit {pair.unit}"), facts_list([(k, _num(v)) for k, v in pair.row.items()]),
                 tag("div", *sides, class_="nb-side"))

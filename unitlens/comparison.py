@@ -28,11 +28,11 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from ._cka import _cka_matrix, _cross, _MinibatchTally, _moments, _pooled_interval, corr_intervals
+from ._cka import cka_matrix, cross_products, MinibatchTally, column_moments, pooled_interval, corr_intervals
 from .errors import UnitlensError, interrupted, log, shown
 from .runview import Comparison
-from .store import Run, _atomic, check_folder, now, safe_name, write_json
-from .summary import _num
+from .store import Run, atomic_write, check_folder, now, safe_name, write_json
+from .summary import finite_or_none
 
 DEAD_TOLERANCE = 1e-6  # a unit is dead when std(max) <= this * |mean(max)|: constant to float precision
 RANKING = ("change = 1 - (max(corr, 0) + jaccard) / 2 in [0, 1], largest first (ties: lower unit "
@@ -86,13 +86,13 @@ def _unit_table(A: _Held, B: _Held, chosen, rows: np.ndarray, k: int, cfg: Compa
     if not units:
         return []
     ca = [col_a[u] for u in units]
-    mean_a, std_a, fire_a = (v[ca] for v in _moments(A.maxima, rows))
-    mean_b, std_b, fire_b = _moments(B.maxima, rows)
+    mean_a, std_a, fire_a = (v[ca] for v in column_moments(A.maxima, rows))
+    mean_b, std_b, fire_b = column_moments(B.maxima, rows)
     dead_a = std_a <= DEAD_TOLERANCE * np.abs(mean_a)
     dead_b = std_b <= DEAD_TOLERANCE * np.abs(mean_b)
     sub = _Columns(A.maxima, ca)
     with np.errstate(invalid="ignore", divide="ignore"):
-        corr = _cross(sub, B.maxima, rows, mean_a, mean_b) / (len(rows) * np.outer(std_a, std_b))
+        corr = cross_products(sub, B.maxima, rows, mean_a, mean_b) / (len(rows) * np.outer(std_a, std_b))
     corr = np.clip(corr, -1, 1)  # (U, Ub)
     corr[dead_a] = math.nan
     corr[:, dead_b] = math.nan
@@ -115,13 +115,13 @@ def _unit_table(A: _Held, B: _Held, chosen, rows: np.ndarray, k: int, cfg: Compa
         changed = da != db if da or db else (cci[1] if cci else c) < CHANGED_BELOW
         table.append({
             "unit": u, "dead": da or db, "dead_a": da, "dead_b": db,
-            "corr": _num(c) if c is not None else None, "corr_ci": cci, "changed": bool(changed),
+            "corr": finite_or_none(c) if c is not None else None, "corr_ci": cci, "changed": bool(changed),
             "best_match": None if best is None else B.units[best],
-            "best_match_corr": None if best is None else _num(corr[i, best]),
+            "best_match_corr": None if best is None else finite_or_none(corr[i, best]),
             "jaccard": jac,
-            "mean_a": _num(mean_a[i]), "mean_b": _num(mean_b[j]), "mean_change": _num(mean_b[j] - mean_a[i]),
-            "fire_rate_a": _num(fire_a[i]), "fire_rate_b": _num(fire_b[j]),
-            "fire_rate_change": _num(fire_b[j] - fire_a[i]),
+            "mean_a": finite_or_none(mean_a[i]), "mean_b": finite_or_none(mean_b[j]), "mean_change": finite_or_none(mean_b[j] - mean_a[i]),
+            "fire_rate_a": finite_or_none(fire_a[i]), "fire_rate_b": finite_or_none(fire_b[j]),
+            "fire_rate_change": finite_or_none(fire_b[j] - fire_a[i]),
             "change": round(float(change), 9),  # float noise must not order unchanged units
             "top_a": tops_a[i], "top_b": tops_b[i],
         })
@@ -247,9 +247,9 @@ def _skipped_mask(corpus, manifests) -> np.ndarray:
 
 def _check_unchanged(corpus, run: Run) -> None:
     """Recomputed features must come from the images that were mined: sizes and dates as recorded."""
-    from .corpus import _stamp
+    from .corpus import file_stamp
 
-    changed = [f for i, (f, s) in enumerate(zip(corpus.files, corpus.stamps)) if _stamp(corpus.path(i)) != tuple(s)]
+    changed = [f for i, (f, s) in enumerate(zip(corpus.files, corpus.stamps)) if file_stamp(corpus.path(i)) != tuple(s)]
     if changed:
         raise UnitlensError(f"{len(changed)} image(s) of the corpus of {run.path} changed or vanished since it was "
                             f"mined (first: {changed[0]}), so features recomputed now would not match the run. "
@@ -326,7 +326,7 @@ def _plan_runs(ra: Run, rb: Run, layers, layers_b, full_maps: bool, allow_pickle
 
 # ----------------------------------------------------------------------------- the sweep
 
-def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally | None:
+def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> MinibatchTally | None:
     """One pass over the corpus, in a seeded random order (whole-map minibatches must be random
     samples, not runs of one class folder): one truncated forward per model per batch."""
     from torch.utils.data import DataLoader
@@ -355,7 +355,7 @@ def _sweep(plan: _Plan, cfg: CompareConfig, progress: bool) -> _MinibatchTally |
                 h.pooled = np.zeros((N, h.channels), dtype=np.float32)
             if "maxima" in what:  # all channels; exemplar sets then come from these maxima too
                 h.maxima, h.units, h.top = np.zeros((N, h.channels), dtype=np.float32), tuple(range(h.channels)), None
-    tally = _MinibatchTally() if cfg.full_maps else None
+    tally = MinibatchTally() if cfg.full_maps else None
     order = np.random.default_rng(cfg.seed).permutation(N)
     loader = DataLoader(CorpusDataset(plan.corpus, size, order.tolist()), batch_size=cfg.batch_size, shuffle=False,
                         collate_fn=partial(collate, size=size),
@@ -418,12 +418,12 @@ def _summarise(plan: _Plan, cfg: CompareConfig, tally) -> dict:
     rng = np.random.default_rng(cfg.seed + 1)
     pooled_a = [plan.held["a"][n].pooled for n in plan.names_a]
     pooled_b = [plan.held["b"][n].pooled for n in plan.names_b]
-    M = _cka_matrix(pooled_a, pooled_b, rows)
+    M = cka_matrix(pooled_a, pooled_b, rows)
     F = tally.cka() if tally is not None and tally.kl else None
     unit_pairs = plan.unit_pairs()
     entries = []
     for i, (la, lb) in enumerate(zip(plan.names_a, plan.names_b)):
-        ci, how = _pooled_interval(pooled_a[i], pooled_b[i], rows, M[i, i], cfg, rng)
+        ci, how = pooled_interval(pooled_a[i], pooled_b[i], rows, M[i, i], cfg, rng)
         A, B = plan.held["a"][la], plan.held["b"][lb]
         k = min([cfg.top_k] + [h.top.shape[1] for h in (A, B) if h.top is not None])  # a run keeps its own K
         table = _unit_table(A, B, plan.chosen[la], rows, k, cfg, rng) if la in unit_pairs else []
@@ -432,8 +432,8 @@ def _summarise(plan: _Plan, cfg: CompareConfig, tally) -> dict:
         ranked = sorted(table, key=lambda e: e["rank"])
         entries.append({
             "layer": la, "layer_b": lb, "channels": A.channels, "channels_b": B.channels,
-            "cka": _num(M[i, i]), "cka_ci": ci, "cka_ci_method": how,
-            "cka_full_maps": _num(F[i, i]) if F is not None else None,
+            "cka": finite_or_none(M[i, i]), "cka_ci": ci, "cka_ci_method": how,
+            "cka_full_maps": finite_or_none(F[i, i]) if F is not None else None,
             "cka_full_maps_ci": tally.interval(i, i, cfg, rng) if F is not None else None,
             "units_compared": len(table), "units_note": note, "top_k": k,
             "dead": sum(e["dead"] for e in table),
@@ -445,7 +445,7 @@ def _summarise(plan: _Plan, cfg: CompareConfig, tally) -> dict:
         })
     c = plan.corpus
     skipped = [c.files[i] for i in np.flatnonzero(~plan.ok)]
-    nested = lambda m: None if m is None else [[_num(v) for v in r] for r in m]  # noqa: E731
+    nested = lambda m: None if m is None else [[finite_or_none(v) for v in r] for r in m]  # noqa: E731
     return {
         "kind": "unitlens comparison", "format": 1, "unitlens": __version__, "created": now(),
         "a": plan.sides["a"], "b": plan.sides["b"],
@@ -468,7 +468,7 @@ def _write_csv(path: Path, rows) -> None:
 
     buf = io.StringIO()
     csv.writer(buf, lineterminator="\n").writerows(["" if v is None else v for v in r] for r in rows)
-    _atomic(path, lambda f: f.write(buf.getvalue().encode()))
+    atomic_write(path, lambda f: f.write(buf.getvalue().encode()))
 
 
 def _write(out: Path, summary: dict, corpus) -> None:
@@ -551,9 +551,9 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
     if out is not None:
         _write(Path(out), summary, plan.corpus)
         if atlas:
-            from .atlas.comparison_page import render_comparison
+            from .atlas.render import draw_comparison
 
-            summary["atlas"] = str(render_comparison(out))
+            summary["atlas"] = str(draw_comparison(out))
     return Comparison(summary)
 
 

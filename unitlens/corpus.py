@@ -122,7 +122,7 @@ def open_corpus(source: str | Path, labels: str | None = None) -> Corpus:
                 if ignored else "")
         raise UnitlensError(f"No images in '{source}'.{seen} {_ACCEPTED}")
     per_file = tuple(_folder_label(f) for f in files) if labels == "folders" else None
-    stamps = tuple(_stamp(root / f) for f in files)
+    stamps = tuple(file_stamp(root / f) for f in files)
     lines = [f"unitlens corpus v1, labels={labels}"]
     lines += [json.dumps([f, *s, None if per_file is None else per_file[i]])
               for i, (f, s) in enumerate(zip(files, stamps))]
@@ -175,7 +175,7 @@ def _folder_label(fid: str) -> str | None:
     return parts[0] if len(parts) > 1 and not PurePosixPath(fid).is_absolute() else None
 
 
-def _stamp(path: Path) -> tuple[int, int]:
+def file_stamp(path: Path) -> tuple[int, int]:
     try:
         st = os.stat(path)
     except OSError:  # kept: it will be reported as unreadable when decoded

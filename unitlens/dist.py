@@ -2,7 +2,7 @@
 
 Launched by torchrun (RANK, WORLD_SIZE, LOCAL_RANK, MASTER_ADDR, MASTER_PORT in the environment),
 mining shards the corpus and synthesis shards each layer's units over the ranks; partial results
-meet here. Without those variables `group()` is a world of one: no process group, no store, no
+travel here (merging them is the stage's own job: tally.py for mining). Without those variables `group()` is a world of one: no process group, no store, no
 thread, and every helper below does what a single process would.
 
 Ranks meet rarely (at the start of a stage and at its end), and a rank may wait hours at a
@@ -353,46 +353,14 @@ def shutdown() -> None:
         td.destroy_process_group()
 
 
-# -- merging partial results ----------------------------------------------------------------
-
-def merge_tallies(g: Group, tallies: dict, colour: list, skipped: list, files) -> tuple | None:
-    """Rank 0 gets the exact merge of every rank's mining state; the others get None.
-
-    tallies {layer: LayerTally}; colour [sum (C,), outer (C, C), n]; skipped [(file, reason)],
-    returned in corpus order (`files`: the corpus's file list) as one process lists them.
-    """
-    if g.world == 1:
-        return tallies, colour, skipped
-    from .mining import LayerTally
-
-    mine = ({name: t.state() for name, t in tallies.items()}, [c.numpy() if torch.is_tensor(c) else c
-                                                                for c in colour], skipped)
-    parts = g.gather(mine, "the mining tallies")
-    if not g.main:
-        return None
-    def blank(t):
-        return LayerTally(tuple(t.units.tolist()), 0, t.width, t.k, t.class_count.numel())
-
-    merged = {name: blank(t) for name, t in tallies.items()}
-    total = [torch.zeros_like(colour[0]), torch.zeros_like(colour[1]), 0]  # (C,), (C, C): RGB or grey
-    bad = []
-    for states, (s, o, n), sk in parts:  # rank order; the merge itself does not depend on it
-        for name, t in merged.items():
-            other = blank(t)
-            other.load(states[name])
-            t.merge(other)
-        total = [total[0] + torch.from_numpy(s), total[1] + torch.from_numpy(o), total[2] + int(n)]
-        bad += [tuple(x) for x in sk]
-    order = {f: i for i, f in enumerate(files)}
-    return merged, total, sorted(bad, key=lambda f: order[f[0]])
-
+# -- merging per-image rows ------------------------------------------------------------------
 
 def assemble_rows(g: Group, path: Path, rows: int, block: int) -> None:
     """Deal the ranks' part files of per-image rows (shards from `Group.blocks`) back into corpus
     order, as one .npy at `path`; written sequentially, one batch at a time."""
     if g.world == 1:
         return
-    from .store import _atomic
+    from .store import atomic_write
 
     parts = [np.load(p, mmap_mode="r") for p in g.parts(path)]
     shape, dtype = (rows, *parts[0].shape[1:]), parts[0].dtype
@@ -409,7 +377,7 @@ def assemble_rows(g: Group, path: Path, rows: int, block: int) -> None:
             local = b // g.world * block
             f.write(np.ascontiguousarray(parts[b % g.world][local:local + block]).tobytes())
 
-    _atomic(Path(path), write)
+    atomic_write(Path(path), write)
 
 
 def _blocks(rank: int, world: int, n: int, block: int):

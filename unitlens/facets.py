@@ -242,11 +242,11 @@ class NaturalNeighbours:
         self.files = corpus.files
         vpath = run.layer_dir(layer) / "values.npy"
         if vpath.is_file() and len(self.rows):
-            from ._cka import _mean
+            from ._cka import mean_of_rows
 
             values = np.load(vpath, mmap_mode="r")  # (N, U) per-image maxima of the mined channels
             self.units = np.asarray(run.index(layer)["units"], dtype=np.int64)
-            self.centre = _mean(values, self.rows)  # (U,) float64
+            self.centre = mean_of_rows(values, self.rows)  # (U,) float64
             self.base = np.empty((len(self.rows), values.shape[1]), dtype=np.float32)  # centred maxima
             for a in range(0, len(self.rows), 65536):
                 self.base[a:a + 65536] = np.asarray(values[self.rows[a:a + 65536]], np.float64) - self.centre
@@ -472,7 +472,7 @@ def synth_neighbours(near: NaturalNeighbours, model, layer: str, u8: np.ndarray,
     from PIL import Image
 
     from .corpus import CorpusDataset
-    from .store import _atomic
+    from .store import atomic_write
 
     size = model.preprocess.size  # (H, W)
     x = torch.from_numpy(u8).permute(0, 3, 1, 2).float() / 255.0
@@ -491,5 +491,5 @@ def synth_neighbours(near: NaturalNeighbours, model, layer: str, u8: np.ndarray,
             if problem is None:
                 strip[m * NEAR_THUMB:(m + 1) * NEAR_THUMB, c * NEAR_THUMB:(c + 1) * NEAR_THUMB] = px.permute(1, 2, 0).numpy()
     name = f"{stem}.jpg"
-    _atomic(out_dir / name, lambda fh: Image.fromarray(strip).save(fh, format="JPEG", quality=88))
+    atomic_write(out_dir / name, lambda fh: Image.fromarray(strip).save(fh, format="JPEG", quality=88))
     return [[{"index": i, "id": near.files[i], "similarity": s} for i, s in row] for row in hits], name

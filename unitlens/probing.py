@@ -39,7 +39,7 @@ from PIL import Image
 
 from .errors import UnitlensError
 from .runview import Probed
-from .store import Run, _atomic, safe_name, write_json, write_npz
+from .store import Run, atomic_write, safe_name, write_json, write_npz
 
 METHODS = {"ig": "integrated-gradients", "gxi": "gradient-x-input", "smoothgrad": "smoothgrad"}
 BASELINES = ("black", "blur")
@@ -174,7 +174,7 @@ def heat_overlay(cell: np.ndarray, heat: np.ndarray, fit: tuple[int, int], signe
 
 
 def _save_png(path: Path, a: np.ndarray) -> None:
-    _atomic(path, lambda fh: Image.fromarray(a).save(fh, format="PNG"))
+    atomic_write(path, lambda fh: Image.fromarray(a).save(fh, format="PNG"))
 
 
 # -- the probe -----------------------------------------------------------------------------------

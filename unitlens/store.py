@@ -31,7 +31,9 @@ _UMASK = os.umask(0)
 os.umask(_UMASK)
 
 
-def _atomic(path: Path, write) -> None:
+def atomic_write(path: Path, write) -> None:
+    """Write `path` whole or not at all: `write(f)` fills a temporary file beside it (binary), which
+    replaces `path` once synced, so a reader or a killed process never sees half a file."""
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
@@ -118,7 +120,7 @@ def space_for(path: Path, need: int, what: str):
 
 
 def write_json(path: Path, obj) -> None:
-    _atomic(Path(path), lambda f: f.write(json.dumps(obj, indent=1, default=_jsonable).encode()))
+    atomic_write(Path(path), lambda f: f.write(json.dumps(obj, indent=1, default=_jsonable).encode()))
 
 
 def read_json(path: Path):
@@ -131,7 +133,7 @@ def read_json(path: Path):
 
 
 def write_npz(path: Path, **arrays) -> None:
-    _atomic(Path(path), lambda f: np.savez(f, **arrays))
+    atomic_write(Path(path), lambda f: np.savez(f, **arrays))
 
 
 def read_npz(path: Path) -> dict[str, np.ndarray]:

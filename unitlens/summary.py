@@ -10,7 +10,7 @@ from .errors import UnitlensError
 from .store import Run, read_npz
 
 
-def _num(x) -> float | None:
+def finite_or_none(x) -> float | None:
     x = float(x)
     return None if math.isnan(x) or math.isinf(x) else x
 
@@ -116,14 +116,14 @@ def unit_stats(idx: dict, u: int, classes: list[str]) -> dict:
     class_mean = idx["class_mean"][:, u] if len(classes) else []
     return {
         "images": int(idx["count"]),
-        "mean_max": _num(idx["mean_max"][u]),
-        "std_max": _num(idx["std_max"][u]),
-        "mean_mean": _num(idx["mean_mean"][u]),
-        "fire_rate": _num(idx["fire_rate"][u]),
-        "min": _num(idx["low"][u]),
-        "max": _num(idx["high"][u]),
-        "class_selectivity": _num(idx["csi"][u]) if len(classes) >= 2 else None,
-        "class_means": {c: _num(v) for c, v in zip(classes, class_mean)},
+        "mean_max": finite_or_none(idx["mean_max"][u]),
+        "std_max": finite_or_none(idx["std_max"][u]),
+        "mean_mean": finite_or_none(idx["mean_mean"][u]),
+        "fire_rate": finite_or_none(idx["fire_rate"][u]),
+        "min": finite_or_none(idx["low"][u]),
+        "max": finite_or_none(idx["high"][u]),
+        "class_selectivity": finite_or_none(idx["csi"][u]) if len(classes) >= 2 else None,
+        "class_means": {c: finite_or_none(v) for c, v in zip(classes, class_mean)},
     }
 
 
@@ -152,4 +152,4 @@ def unit_facets(run: Run, layer: str, channel: int, corpus) -> dict | None:
     for i, f in zip(z["image"][j], z["facet"][j]):
         if f >= 0 and i < len(corpus):
             groups[int(f)].append({"id": corpus.files[int(i)], "image": str(corpus.path(int(i)).absolute())})
-    return {"k": len(groups), "silhouette": _num(z["silhouette"][j]), "groups": groups}
+    return {"k": len(groups), "silhouette": finite_or_none(z["silhouette"][j]), "groups": groups}

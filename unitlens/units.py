@@ -78,3 +78,38 @@ def parse_unit(text: str) -> tuple[str, int]:
         return name, int(ch)
     except ValueError:
         raise UnitlensError(f"Channel must be a number in '{text}'.") from None
+
+
+def ranges_text(units) -> str:
+    """(0, 1, 2, 3, 7) -> '0-3,7' (the --units syntax)."""
+    units = list(units)
+    parts, i = [], 0
+    while i < len(units):
+        j = i
+        while j + 1 < len(units) and units[j + 1] == units[j] + 1:
+            j += 1
+        parts.append(str(units[i]) if i == j else f"{units[i]}-{units[j]}")
+        i = j + 1
+    return ",".join(parts)
+
+
+def run_layers(model, manifest: dict, layers: list[str] | None, units: str | None):
+    """Resolve --layers/--units for a run folder: a layer named without channels (and no --units)
+    gets the channels mined for it (or synthesised before); no --layers means all of those."""
+    known = {name: ranges_text(u) for name, u in ((manifest.get("mine") or {}).get("settings") or {})
+             .get("layers", {}).items()}
+    for name, st in ((manifest.get("synth") or {}).get("layers") or {}).items():
+        if st.get("channels"):
+            known.setdefault(name, st["channels"])
+    if not layers:
+        if not known:
+            raise UnitlensError("This run folder has no mined (or earlier synthesised) layers to default to; "
+                                "name them with --layers (`unitlens layers MODEL` lists them).")
+        if units:
+            return parse_layers(model, list(known), units)
+        return parse_layers(model, [f"{n}:{r}" for n, r in known.items()])
+    items = []
+    for text in layers:
+        for name in ([text] if ":" in text else [n.strip() for n in text.split(",") if n.strip()]):
+            items.append(f"{name}:{known[name]}" if ":" not in name and not units and name in known else name)
+    return parse_layers(model, items, units)

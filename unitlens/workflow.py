@@ -245,7 +245,7 @@ def _synthesised(run, lu: LayerUnits, config, size: int) -> bool:
     """True when the run folder holds every image of `lu` made with these settings."""
     import json
 
-    from .synth.pipeline import ranges_text
+    from .units import ranges_text
 
     if not run.exists():
         return False

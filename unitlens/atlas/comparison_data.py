@@ -22,7 +22,7 @@ from urllib.parse import quote
 import numpy as np
 
 from ..store import Run, read_json, read_npz, safe_name
-from .data import _sheets, _synth_records
+from .data import sheet_layout, synth_records
 
 SHOW = 6          # exemplars per side and unit on a page
 THUMB = 64        # px, side of a whole-image thumbnail
@@ -102,7 +102,7 @@ class _Held:
 
     pos: dict[int, int] = field(default_factory=dict)   # unit -> row in the sprite sheets
     top: np.ndarray | None = None                       # (U, K) the run's own exemplar image indices
-    sheets: dict | None = None                          # the sheet layout for the page (see data._sheets)
+    sheets: dict | None = None                          # the sheet layout for the page (see data.sheet_layout)
     synth: dict[int, dict] = field(default_factory=dict)
     files: list[Path] = field(default_factory=list)     # sheets and synthesised PNGs to place
     href: str | None = None                             # the run atlas's page of this layer
@@ -117,9 +117,9 @@ def _held(side: Side, layer: str, img_dir: str, out: Path) -> _Held:
         idx = read_npz(path)
         units = [int(u) for u in idx["units"]]
         h.pos, h.top = {u: p for p, u in enumerate(units)}, idx["top_image"]
-        sheets, h.sheets = _sheets(side.run, layer, idx, len(units), img_dir)
+        sheets, h.sheets = sheet_layout(side.run, layer, idx, len(units), img_dir)
         h.files += sheets
-    sdir, records = _synth_records(side.run, layer)
+    sdir, records = synth_records(side.run, layer)
     for u, rec in records.items():
         first = rec["images"][0]
         name = Path(str(first["file"])).name

@@ -20,11 +20,11 @@ from importlib import resources
 from pathlib import Path
 
 from ..errors import UnitlensError
-from ..store import Run, read_json, safe_name
+from ..store import read_json, safe_name
 from .comparison_data import THUMB, find_sides, image_ids, make_thumbs, pair_data, rel_url, wanted_thumbs
-from .html import Html, _dl, _params, _weights, esc, join, js_data, page, tag
+from .html import Html, esc, facts_list, join, js_data, page, settings_table, tag, weights_cell
+from .files import place_all, write_if_changed
 from .paths import model_name
-from .render import _place_all, _write_if_changed
 
 STATIC = ("atlas.css", "compare.css", "plots.js", "compare.js", "icon.png")
 CAUTION = ("CKA summarises a layer in one number: it can move while the network's function barely changes, "
@@ -168,11 +168,11 @@ def _side_panel(side, d: dict, out: Path) -> Html:
     if run is not None:
         where = (tag("a", str(d.get("run")), href=rel_url(side.atlas / "index.html", out)) if side.atlas
                  else tag("code", str(d.get("run"))))
-    return tag("section", tag("h2", tag("span", side.key.upper(), class_=f"side-tag {side.key}"), " ", side.label), _dl([
+    return tag("section", tag("h2", tag("span", side.key.upper(), class_=f"side-tag {side.key}"), " ", side.label), facts_list([
         ("source", "a mined run" if d.get("source") == "run" else "a model"),
         ("run folder", where),
         ("architecture", tag("code", model.get("spec", "?"))),
-        ("weights", _weights(model.get("weights") or {})),
+        ("weights", weights_cell(model.get("weights") or {})),
         ("note", side.note),
     ]), class_=f"panel side {side.key}")
 
@@ -209,7 +209,7 @@ def index_page(summary: dict, sides: dict, names: list[str], folder_name: str, o
                           "Read the row of an A layer: the B layer it resembles most is its darkest cell.", class_="note"),
                  tag("div", *maps, class_="heatmaps"), class_="panel wide", id="matrix")
     skipped = corpus.get("skipped") or []
-    corpus_s = tag("section", tag("h2", "Probe corpus"), _dl([
+    corpus_s = tag("section", tag("h2", "Probe corpus"), facts_list([
         ("images used", join([tag("span", f"{corpus.get('images_used', 0):,}", class_="num"), " of ",
                               tag("span", f"{corpus.get('count', 0):,}", class_="num")])),
         ("skipped", f"{len(skipped)} file(s)" if skipped else None),
@@ -224,7 +224,7 @@ def index_page(summary: dict, sides: dict, names: list[str], folder_name: str, o
     rec_s = tag("section", tag("h2", "Recomputed from the models"), tag("ul", *notes), class_="panel") if notes else Html("")
     settings = {k: v for k, v in (summary.get("settings") or {}).items() if k != "ranking"}
     params_s = tag("section", tag("h2", "Settings"), tag("p", (summary.get("settings") or {}).get("ranking", ""), class_="note"),
-                   _params("Comparison", settings), class_="panel wide")
+                   settings_table("Comparison", settings), class_="panel wide")
     title = f"{sides['a'].label} vs {sides['b'].label}"
     head = tag("header", tag("h1", tag("span", "A", class_="side-tag a"), " ", sides["a"].label, " ",
                              tag("span", "vs", class_="vs"), " ", tag("span", "B", class_="side-tag b"), " ", sides["b"].label),
@@ -265,7 +265,7 @@ def pair_page(summary: dict, e: dict, sides: dict, folder_name: str, data_js: st
     dead_b = sum(u["dead_b"] and not u["dead_a"] for u in units)
     both = sum(u["dead_a"] and u["dead_b"] for u in units)
     moved = sum(u["best_match"] is not None and u["best_match"] != u["unit"] for u in units)
-    sum_s = tag("section", tag("h2", "Units"), _dl([
+    sum_s = tag("section", tag("h2", "Units"), facts_list([
         ("compared", f"{e['units_compared']} of {e['channels']}" if units else
          f"none: {e.get('units_note') or 'no unit table'}; the layers are compared as wholes only"),
         ("mean correlation", _fmt(e.get("mean_corr")) if units else None),
@@ -321,7 +321,7 @@ def render_comparison(folder: str | os.PathLike) -> Path:
     out = folder / "atlas"
     out.mkdir(parents=True, exist_ok=True)
     for name in STATIC:
-        _write_if_changed(out / name, resources.files(__package__).joinpath("static", name).read_bytes())
+        write_if_changed(out / name, resources.files(__package__).joinpath("static", name).read_bytes())
     sides = find_sides(summary, folder, out)
     corpus = read_json(folder / "corpus.json")
     names = _page_names(summary["layers"])
@@ -332,7 +332,7 @@ def render_comparison(folder: str | os.PathLike) -> Path:
         places.update(place)
     for rel, files in places.items():
         if files or (out / rel).is_dir():
-            _place_all({p.name: p for p in files}, out / rel)
+            place_all({p.name: p for p in files}, out / rel)
         if not files and (out / rel).is_dir():
             (out / rel).rmdir()
     for d in [*(out / "img").glob("a/*"), *(out / "img").glob("b/*")]:
@@ -342,7 +342,7 @@ def render_comparison(folder: str | os.PathLike) -> Path:
     have = make_thumbs(corpus, wanted_thumbs(payloads), out / thumbs)
     for d in (out / "img").glob("thumbs-*"):
         if d.name != Path(thumbs).name:
-            _place_all({}, d)
+            place_all({}, d)
             d.rmdir()
     keep = set()
     for e, name, payload in zip(summary["layers"], names, payloads):
@@ -350,21 +350,15 @@ def render_comparison(folder: str | os.PathLike) -> Path:
         payload["thumbs"] = {"dir": thumbs, "have": sorted(used & have), "size": THUMB}
         payload["ids"] = image_ids(corpus, payload)
         data_js = f"data/{name}.js"
-        _write_if_changed(out / data_js, js_data("UNITLENS_PAIR", payload).encode())
-        _write_if_changed(out / f"{name}.html",
+        write_if_changed(out / data_js, js_data("UNITLENS_PAIR", payload).encode())
+        write_if_changed(out / f"{name}.html",
                           pair_page(summary, e, sides, folder.resolve().name, data_js, names, name,
                                     any(v["sheets"] for v in payload["sides"].values())).encode())
         keep |= {f"{name}.html", f"{name}.js"}
     for f in [*out.glob("pair-*.html"), *(out / "data").glob("*.js")]:
         if f.name not in keep:  # pages of layer pairs this comparison no longer has
             f.unlink()
-    _write_if_changed(out / "index.html", index_page(summary, sides, names, folder.resolve().name, out).encode())
-    owner = folder.resolve().parent.parent
-    if folder.resolve().parent.name == "compare" and (owner / "atlas" / "index.html").is_file() and \
-            (owner / "manifest.json").is_file():
-        from .render import render_atlas  # the owner run's index lists this comparison
-
-        render_atlas(Run(owner))
+    write_if_changed(out / "index.html", index_page(summary, sides, names, folder.resolve().name, out).encode())
     return out / "index.html"
 
 

@@ -92,7 +92,7 @@ class LayerData:
         return len(self.cards["units"])
 
 
-def _synth_records(run: Run, layer: str) -> tuple[Path, dict[int, dict]]:
+def synth_records(run: Run, layer: str) -> tuple[Path, dict[int, dict]]:
     """{channel: record} of units.json (see synth/results.py), {} when the layer has none."""
     d = run.layer_dir(layer, "synth")
     table = read_json(d / "units.json") or {}
@@ -205,7 +205,7 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     """
     ipath = run.layer_dir(layer) / "index.npz"
     idx = read_npz(ipath) if ipath.is_file() else None
-    sdir, synth = _synth_records(run, layer)
+    sdir, synth = synth_records(run, layer)
     if idx is None and not synth:
         return None
     mined = [int(u) for u in idx["units"]] if idx is not None else []
@@ -223,7 +223,7 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
         details.update(_mined_details(run, idx, units, pos))
         fd, facet_thumbs = _facet_details(run, layer, units, pos, dict(zip(units, cards["filled"])))
         details.update(fd)
-        sheets, cards["sheets"] = _sheets(run, layer, idx, len(mined), img_dir)
+        sheets, cards["sheets"] = sheet_layout(run, layer, idx, len(mined), img_dir)
     images: list[Path] = []
     scard, sdet = [None] * U, [None] * U
     sc = (((read_json(run.manifest_path) or {}).get("synth") or {}).get("settings") or {}).get("config") or {}
@@ -361,7 +361,7 @@ def _mined_details(run: Run, idx: dict, units: list[int], pos: dict[int, int]) -
     return out
 
 
-def _sheets(run: Run, layer: str, idx: dict, n_mined: int, img_dir: str) -> tuple[list[Path], dict | None]:
+def sheet_layout(run: Run, layer: str, idx: dict, n_mined: int, img_dir: str) -> tuple[list[Path], dict | None]:
     from ..crops import SHEET_ROWS, sheet_cell
 
     if "thumb" not in idx:  # crops not cut (yet)

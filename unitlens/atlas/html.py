@@ -74,7 +74,7 @@ def page(title: str, kind: str, crumbs, main, scripts=(), body_attrs: dict | Non
 
 # -- the run summary ------------------------------------------------------------------------
 
-def _dl(rows) -> Html:
+def facts_list(rows) -> Html:
     return tag("dl", *[join([tag("dt", k), tag("dd", v)]) for k, v in rows if v is not None], class_="facts")
 
 
@@ -98,7 +98,7 @@ def _flat(d, prefix="") -> list[tuple[str, object]]:
     return out
 
 
-def _params(title: str, d: dict) -> Html:
+def settings_table(title: str, d: dict) -> Html:
     rows = _flat(d)
     if not rows:
         return Html("")
@@ -106,7 +106,7 @@ def _params(title: str, d: dict) -> Html:
     return tag("details", tag("summary", title), tag("table", tag("tbody", body), class_="params"))
 
 
-def _weights(w: dict) -> Html:
+def weights_cell(w: dict) -> Html:
     kind = w.get("kind", "none")
     if kind == "none":
         return Html("none (random initialisation)")
@@ -140,9 +140,9 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
                    tag("ul", *[tag("li", c) for c in CAUTIONS]), class_="caution", role="note")
     mean = ", ".join(f"{v:g}" for v in pre.get("mean", []))
     std = ", ".join(f"{v:g}" for v in pre.get("std", []))
-    model_s = tag("section", tag("h2", "Model and input"), _dl([
+    model_s = tag("section", tag("h2", "Model and input"), facts_list([
         ("architecture", tag("code", model.get("spec", "unknown"))),
-        ("weights", _weights(model.get("weights") or {})),
+        ("weights", weights_cell(model.get("weights") or {})),
         ("constructor options", tag("code", json.dumps(model["arch_options"])) if model.get("arch_options") else None),
         ("input", _input_text(pre)),
         ("normalisation", f"mean ({mean}), std ({std})" if mean else None),
@@ -155,7 +155,7 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
     skipped = corpus.get("skipped") or []
     classes = corpus.get("classes") or []
     ignored = corpus.get("ignored") or []
-    corpus_s = tag("section", tag("h2", "Corpus"), _dl([
+    corpus_s = tag("section", tag("h2", "Corpus"), facts_list([
         ("images", join([tag("span", f"{corpus.get('count', 0) - len(skipped):,}", class_="num"), " of ",
                          tag("span", f"{corpus.get('count', 0):,}", class_="num"), " files read",
                          tag("a", f" ({len(skipped)} skipped)", href="#skipped") if skipped else ""])
@@ -197,15 +197,15 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
         layers_s = tag("section", tag("h2", "Layers"), tag("p", "Nothing mined or synthesised yet."),
                        class_="panel wide", id="layers")
 
-    params = [_params("Mining", {**(mine.get("config") or {}),
+    params = [settings_table("Mining", {**(mine.get("config") or {}),
                                   "colour statistics": (mine.get("colour") or {}).get("source")})]
     ss = synth.get("settings") or {}
     if ss:
-        params.append(_params("Synthesis", {**(ss.get("config") or {}), "goal": ss.get("goal"),
+        params.append(settings_table("Synthesis", {**(ss.get("config") or {}), "goal": ss.get("goal"),
                                             "colour": (synth.get("colour") or {}).get("source") or ss.get("colour")}))
     params_s = tag("section", tag("details", tag("summary", tag("h2", "Settings"), " mining and synthesis, as run"),
                                   *params, class_="settings"), class_="panel wide")
-    prov_s = tag("section", tag("h2", "Provenance"), _dl([
+    prov_s = tag("section", tag("h2", "Provenance"), facts_list([
         ("run started", tag("time", m.get("created", "?"))),
         ("last updated", tag("time", m.get("updated", "?"))),
         ("atlas drawn", tag("time", rendered)),

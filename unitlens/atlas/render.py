@@ -21,8 +21,9 @@ from importlib import resources
 from pathlib import Path
 
 from ..errors import UnitlensError, closest
-from ..store import Run, _atomic, now, read_json, safe_name, write_json
+from ..store import Run, atomic_write, now, read_json, safe_name, write_json
 from .data import layer_data
+from .files import READABLE, place_all, write_if_changed
 from .html import Html, index_page, join, js_data, layer_page, tag
 from .paths import model_name
 from .paths import strip_paths as _strip
@@ -45,11 +46,9 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     PosixPath('runs/demo/atlas/index.html')
     """
     if not isinstance(run, Run) and (Path(run) / "compare.json").is_file() and not (Path(run) / "manifest.json").is_file():
-        from .comparison_page import render_comparison  # a comparison folder: its pages are drawn whole
-
         if layers is not None:
             raise UnitlensError(f"{run} is a comparison folder; its pages are drawn all at once. Leave out --layers.")
-        return render_comparison(run)
+        return draw_comparison(run)
     run = run if isinstance(run, Run) else Run(run)
     m = run.manifest()
     known = _known_layers(m)
@@ -64,7 +63,7 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     out.mkdir(parents=True, exist_ok=True)
     version = _renderer_version()
     for name in STATIC:
-        _write_if_changed(out / name, resources.files(__package__).joinpath("static", name).read_bytes())
+        write_if_changed(out / name, resources.files(__package__).joinpath("static", name).read_bytes())
 
     state = read_json(out / STATE) or {}
     share = bool(state.get("strip_paths")) if strip_paths is None else strip_paths
@@ -94,7 +93,7 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     nav = [(n, pages[n]["href"], pages[n]["units"]) for n in known if n in pages and pages[n].get("href")]
     for name, href, _ in nav:
         p = pages[name]
-        _write_if_changed(out / href, layer_page(run_name, name, p["facts"], p["cards"], p["details"], nav).encode())
+        write_if_changed(out / href, layer_page(run_name, name, p["facts"], p["cards"], p["details"], nav).encode())
     rows = [_layer_row(n, m, pages.get(n)) for n in known]
     m = {**m, "model": {**(m.get("model") or {}), "name": model_name((m.get("model") or {}).get("spec", "?"))}}
     if share:
@@ -106,9 +105,23 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     cmp = comparisons_section(run.path, out)  # the comparisons under RUN/compare/
     if drew or not index.is_file() or index.read_text() != index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp):
         state["drawn"] = drawn = now()  # the date on the index is that of the atlas's last change
-    _write_if_changed(index, index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp).encode())
-    _write_if_changed(out / STATE, json.dumps(state, indent=1).encode())
+    write_if_changed(index, index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp).encode())
+    write_if_changed(out / STATE, json.dumps(state, indent=1).encode())
     return out / "index.html"
+
+
+def draw_comparison(folder: str | os.PathLike) -> Path:
+    """Draw the pages of a comparison folder (comparison_page.py), then redraw the atlas of the run it
+    lies under (RUN/compare/NAME), whose index lists it; returns the path of the comparison's index.html."""
+    from .comparison_page import render_comparison
+
+    index = render_comparison(folder)
+    folder = Path(folder).resolve()
+    owner = folder.parent.parent
+    if folder.parent.name == "compare" and (owner / "atlas" / "index.html").is_file() and \
+            (owner / "manifest.json").is_file():
+        render_atlas(Run(owner))
+    return index
 
 
 def _known_layers(m: dict) -> list[str]:
@@ -156,13 +169,13 @@ def _draw_layer(run: Run, out: Path, name: str, share: bool = False) -> dict:
     if share:
         data.cards, data.details = _strip(data.cards), _strip(data.details)
     wanted = {p.name: p for p in data.sheets + data.images}
-    _place_all(wanted, out / img_rel, keep=("facets.jpg",) if data.facet_thumbs else ())
+    place_all(wanted, out / img_rel, keep=("facets.jpg",) if data.facet_thumbs else ())
     if data.facet_thumbs:
         _facet_sheet(data.facet_thumbs, out / img_rel / "facets.jpg", data.details["facet_sheet"])
     cards_js, units_js = f"data/{safe}.cards.js", f"data/{safe}.units.js"
     # the details go first: a page whose cards are new must never find old details
-    _write_if_changed(out / units_js, js_data("UNITLENS_UNITS", data.details).encode())
-    _write_if_changed(out / cards_js, js_data("UNITLENS_CARDS", data.cards).encode())
+    write_if_changed(out / units_js, js_data("UNITLENS_UNITS", data.details).encode())
+    write_if_changed(out / cards_js, js_data("UNITLENS_CARDS", data.cards).encode())
     c = data.cards
     facts = [f"{data.units} unit{'s' if data.units != 1 else ''}"]
     if c.get("shape"):
@@ -246,28 +259,6 @@ def _remove_layer(out: Path, name: str, page: dict) -> None:
     shutil.rmtree(out / "img" / safe, ignore_errors=True)
 
 
-# -- files -----------------------------------------------------------------------------------
-
-def _readable_mode() -> int:
-    """Mode of a new file under the user's umask (temporary files are created private)."""
-    mask = os.umask(0)
-    os.umask(mask)
-    return 0o666 & ~mask
-
-
-READABLE = _readable_mode()  # an atlas is made to be shared or served: its files are readable like any new file
-
-
-def _write_if_changed(path: Path, data: bytes) -> None:
-    try:
-        if path.read_bytes() == data:
-            return
-    except FileNotFoundError:
-        pass
-    _atomic(path, lambda f: f.write(data))
-    os.chmod(path, READABLE)
-
-
 def _facet_sheet(files: list[Path], path: Path, spec: dict) -> None:
     """Whole-image thumbnails (the centred square, as the network sees it) of `files`, row by row."""
     from PIL import Image, ImageOps
@@ -281,37 +272,5 @@ def _facet_sheet(files: list[Path], path: Path, spec: dict) -> None:
                 sheet.paste(ImageOps.fit(im.convert("RGB"), (t, t)), (n % cols * t, n // cols * t))
         except OSError:
             pass
-    _atomic(path, lambda fh: sheet.save(fh, format="JPEG", quality=85))
+    atomic_write(path, lambda fh: sheet.save(fh, format="JPEG", quality=85))
     os.chmod(path, READABLE)
-
-
-def _place_all(wanted: dict[str, Path], d: Path, keep: tuple[str, ...] = ()) -> None:
-    """Make folder `d` hold exactly `wanted` ({name: source}) and the files named in `keep`: hard links
-    where possible, else copies."""
-    d.mkdir(parents=True, exist_ok=True)
-    for p in d.iterdir():
-        if p.name not in wanted and p.name not in keep:
-            p.unlink()
-    for name, src in wanted.items():
-        _place(src, d / name)
-
-
-def _place(src: Path, dst: Path) -> None:
-    s = src.stat()
-    try:
-        t = dst.stat()
-        if (t.st_ino == s.st_ino and t.st_dev == s.st_dev) or (t.st_size == s.st_size and t.st_mtime_ns == s.st_mtime_ns):
-            return  # the same file, or an unchanged copy
-    except FileNotFoundError:
-        pass
-    tmp = dst.with_name(f".{dst.name}.tmp")
-    tmp.unlink(missing_ok=True)
-    readable = (s.st_mode & 0o444) & READABLE == READABLE & 0o444
-    try:
-        if not readable:  # a private file of the run: copy it, rather than change the run's own file
-            raise OSError
-        os.link(src, tmp)
-    except OSError:  # another file system, links not allowed, or private: copy (keeps the time stamp)
-        shutil.copy2(src, tmp)
-        os.chmod(tmp, READABLE)
-    os.replace(tmp, dst)

@@ -103,7 +103,7 @@ class Goal:
         a layer named without channels gets the channels mined (or synthesised) there, and no units
         at all means all of those."""
         if manifest is not None:
-            from .pipeline import run_layers
+            from ..units import run_layers
 
             layers = run_layers(model, manifest, list(self.units), self.channels)
         else:
@@ -148,7 +148,7 @@ class Goal:
 
 def _unit_text(u) -> str:
     if hasattr(u, "layer"):  # a LayerUnits already resolved
-        from .pipeline import ranges_text
+        from ..units import ranges_text
 
         return f"{u.layer}:{ranges_text(u.units)}"
     if not isinstance(u, str) or not u.strip():

@@ -8,7 +8,8 @@ import torch
 
 from .. import dist
 from ..errors import UnitlensError, interrupted
-from ..store import Run, _atomic, disk_bytes, read_json, read_npz, space_for, write_json, write_npz
+from ..units import ranges_text
+from ..store import Run, atomic_write, disk_bytes, read_json, read_npz, space_for, write_json, write_npz
 from ..facets import NaturalNeighbours, synth_neighbours
 from .evidence import assess, exemplar_references, parity
 from .bases import ColourBasis
@@ -75,7 +76,7 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
         for lu in layers:
             _layer(run, model, lu, config, goal, colour, size, progress)
     if g.main:  # every rank is past its last write (the barrier closing _layer)
-        run.remove_stage("synth", ())  # half-written files of a process killed mid-write (store._atomic)
+        run.remove_stage("synth", ())  # half-written files of a process killed mid-write (store.atomic_write)
         m = run.manifest()
         m["synth"]["done"] = all(v.get("complete") for v in m["synth"]["layers"].values())
         run.save_manifest(m)
@@ -218,7 +219,7 @@ def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, ex
     M = len(u8)
     files = [f"unit-{r.target:04d}-{m}.png" for m in range(M)]
     for f, a in zip(files, u8):  # a grey image (H, W, 1) is saved as an 8-bit grey PNG
-        _atomic(d / f, lambda fh, a=a: Image.fromarray(a[..., 0] if a.shape[-1] == 1 else a).save(fh, format="PNG"))
+        atomic_write(d / f, lambda fh, a=a: Image.fromarray(a[..., 0] if a.shape[-1] == 1 else a).save(fh, format="PNG"))
     T = max(len(t) for t in r.traces)
     trace = np.full((M, T), np.nan, dtype=np.float32)
     for m, t in enumerate(r.traces):
@@ -292,40 +293,3 @@ def _diff(prev, new) -> str:
         elif prev.get(k) != new[k]:
             parts.append(k)
     return "differs in " + ", ".join(parts) if parts else "unknown settings"
-
-
-def ranges_text(units) -> str:
-    """(0, 1, 2, 3, 7) -> '0-3,7' (the --units syntax)."""
-    units = list(units)
-    parts, i = [], 0
-    while i < len(units):
-        j = i
-        while j + 1 < len(units) and units[j + 1] == units[j] + 1:
-            j += 1
-        parts.append(str(units[i]) if i == j else f"{units[i]}-{units[j]}")
-        i = j + 1
-    return ",".join(parts)
-
-
-def run_layers(model, manifest: dict, layers: list[str] | None, units: str | None):
-    """Resolve --layers/--units for a run folder: a layer named without channels (and no --units)
-    gets the channels mined for it (or synthesised before); no --layers means all of those."""
-    from ..units import parse_layers
-
-    known = {name: ranges_text(u) for name, u in ((manifest.get("mine") or {}).get("settings") or {})
-             .get("layers", {}).items()}
-    for name, st in ((manifest.get("synth") or {}).get("layers") or {}).items():
-        if st.get("channels"):
-            known.setdefault(name, st["channels"])
-    if not layers:
-        if not known:
-            raise UnitlensError("This run folder has no mined (or earlier synthesised) layers to default to; "
-                                "name them with --layers (`unitlens layers MODEL` lists them).")
-        if units:
-            return parse_layers(model, list(known), units)
-        return parse_layers(model, [f"{n}:{r}" for n, r in known.items()])
-    items = []
-    for text in layers:
-        for name in ([text] if ":" in text else [n.strip() for n in text.split(",") if n.strip()]):
-            items.append(f"{name}:{known[name]}" if ":" not in name and not units and name in known else name)
-    return parse_layers(model, items, units)
