@@ -235,7 +235,7 @@ def test_changed_corpus_is_detected_and_reported(tmp_path, r18_weights):
         Image.new("RGB", (40, 40), (40 * i, 10, 10)).save(d / f"{i}.png")
     model = load_model("torchvision:resnet18", str(r18_weights), size=32)
     layers = parse_layers(model, ["layer1:0"])
-    mine(model, open_corpus(d), layers, tmp_path / "r", MineConfig(workers=0, batch_size=2), _stop_after=2)
+    mine(model, open_corpus(d), layers, tmp_path / "r", MineConfig(workers=0, batch_size=2), stop=lambda done: done >= 2)
     Image.new("RGB", (40, 40)).save(d / "new.png")
     with pytest.raises(UnitlensError, match="corpus changed since this run started.*1 added"):
         mine(model, open_corpus(d), layers, tmp_path / "r", MineConfig(workers=0, batch_size=2))
@@ -517,7 +517,9 @@ def test_a_mining_pass_started_by_an_older_version_with_float16_files_resumes(tm
     layers = parse_layers(model, ["layer1:0-3"])
     cfg = MineConfig(top_k=3, workers=0, batch_size=4)
     whole = mine(model, corpus, layers, tmp_path / "whole", cfg)
-    mine(model, corpus, layers, tmp_path / "r", cfg, _stop_after=8)
+    asked = []  # `stop` is asked after each batch with the corpus position reached
+    mine(model, corpus, layers, tmp_path / "r", cfg, stop=lambda done: asked.append(done) or done >= 8)
+    assert asked == [4, 8] and json.loads((tmp_path / "r" / "mine" / "state.json").read_text())["next"] == 8
     d = Run(tmp_path / "r").layer_dir("layer1")
     for f in ("values.npy", "means.npy", "pooled.npy"):
         np.save(d / f, np.load(d / f).astype(np.float16))  # as earlier versions wrote them

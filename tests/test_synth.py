@@ -634,7 +634,7 @@ def test_synth_refuses_a_run_whose_mining_is_unfinished(tmp_path, smooth_corpus,
 
     layers = parse_layers(r18, ["layer2:0-1"])
     mine(r18, open_corpus(smooth_corpus), layers, tmp_path / "r", MineConfig(top_k=2, workers=0, batch_size=4),
-         _stop_after=8)
+         stop=lambda done: done >= 8)
     with pytest.raises(UnitlensError, match=r"Mining in .* is not finished \(8 of 24 images\).*Finish mining first"):
         synthesize(r18, Goal("layer2:0-1"), tmp_path / "r", SynthConfig(steps=2, **QUICK))
     assert not (tmp_path / "r" / "synth").exists() and "synth" not in Run(tmp_path / "r").manifest()

@@ -1,12 +1,14 @@
 """Pass 1: one sweep over the corpus keeps, per unit, the top-K and bottom-K images and statistics.
 
-Memory is O(units x K) plus one batch, whatever the corpus size. Ranking is by (score, corpus
-order), so the kept lists are the same for any batch size, worker count, shard split or resume.
+Memory is O(units x K) plus one batch, whatever the corpus size (the tallies: tally.py). The pass
+checks its settings against the run folder, resumes from its checkpoint, sweeps the batches and
+finishes (merge of the ranks, index, crops, embeddings, facets); see MiningPass.
 """
 from __future__ import annotations
 
 import json
 import time
+from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
@@ -21,6 +23,7 @@ from .facets import EMBED_DIM, THUMB, NearDuplicates, needs_pooled, thumbnails
 from .store import Run, disk_bytes, new_array, read_json, read_npz, space_for, write_json, write_npz
 from .tally import HIST_BINS, LayerTally, colour_moments, index_arrays, merge_ranks
 from .units import LayerUnits
+
 
 @dataclass(frozen=True)
 class MineConfig:
@@ -65,18 +68,26 @@ def mined(out: str | Path, model, corpus, layers, config: MineConfig = MineConfi
 
 
 def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config: MineConfig = MineConfig(),
-         *, progress: bool = False, force: bool = False, _stop_after: int | None = None) -> Run:
+         *, progress: bool = False, force: bool = False, stop: Callable[[int], bool] | None = None) -> Run:
     """Mine exemplars for `layers` over `corpus` into the run folder `out`; resumes if interrupted.
 
     Returns the Run. Re-running a finished mining pass with the same settings does nothing. Refused
     up front when the disk lacks the space the pass will write; a disk that fills up during the
     pass is one UnitlensError, and the same call then resumes.
+
+    `stop` is asked after each batch with the number of corpus images behind it; True saves a
+    checkpoint and returns with the pass unfinished, as if interrupted (the next call resumes):
+
+    >>> mine(model, corpus, layers, "runs/r", stop=lambda done: done >= 1000)   # doctest: +SKIP
     """
     run = Run(out)
     finished = not force and ((read_json(run.manifest_path) or {}).get("mine") or {}).get("done")
     need = 0 if finished else max(0, space_needed(model, corpus, layers, config) - disk_bytes(run.path / "mine"))
     with space_for(run.path, need, "this mining pass"):
-        return _mine(model, corpus, layers, out, config, progress=progress, force=force, _stop_after=_stop_after)
+        work = MiningPass(model, corpus, layers, run, config)
+        if work.prepare(force=force) and work.sweep(progress=progress, stop=stop):
+            work.finish(progress=progress)
+    return run
 
 
 def space_needed(model, corpus, layers: tuple[LayerUnits, ...], config: MineConfig) -> int:
@@ -97,195 +108,252 @@ def space_needed(model, corpus, layers: tuple[LayerUnits, ...], config: MineConf
     return total
 
 
-def _mine(model, corpus, layers, out, config, *, progress, force, _stop_after) -> Run:
-    from .corpus import batches
+@dataclass(frozen=True)
+class MiningState:
+    """What a checkpoint holds: the tallies, colour sums and skipped files of whole batches, and the
+    corpus position after them. A batch makes a new state from copies (`LayerTally.added`), which
+    replaces the old one in a single assignment, so an interrupt anywhere in between leaves the state
+    before that batch, never half of it."""
 
-    run = Run(out)
-    settings = _settings(model, corpus, layers, config)
-    g = dist.group()  # one process, or this rank of a torchrun job: it mines every world-th batch
-    if config.dedupe and g.world > 1:
-        raise UnitlensError("Near-duplicate suppression (--dedupe) needs every image in one process, in corpus "
-                            f"order; run it without torchrun (this job has {g.world} ranks).")
-    mdir = run.path / "mine"
-    old = read_json(run.manifest_path)
-    prev_corpus = read_json(run.path / "corpus.json")
-    if prev_corpus and prev_corpus.get("fingerprint") != corpus.fingerprint and not force:
-        change = corpus.describe_change(prev_corpus.get("files", []), prev_corpus.get("fingerprint", ""),
-                                        prev_corpus.get("stamps"))
-        raise UnitlensError(f"The corpus changed since this run started ({change}). Use --force to start over.")
+    tallies: dict[str, LayerTally]
+    colour: tuple  # sum (C,), sum xx^T (C, C), pixels: RGB or grey
+    skipped: tuple[tuple[str, str], ...]
+    next: int  # the resume point: every corpus index below it is tallied (or skipped)
 
-    if not old and mdir.exists() and any(mdir.iterdir()):
-        raise UnitlensError(f"{shown(run.path)} holds a mine/ folder but no manifest.json, so unitlens did not write "
-                            "it (or its manifest was lost); nothing was changed. Move that folder away, or give "
-                            "--out a new or empty folder.")
-    if old and old.get("mine") and not force:
-        prev = old["mine"].get("settings")
-        if not _same_settings(prev, settings):
-            raise UnitlensError(
-                f"{run.path} already holds a mining pass with other settings ({_diff(prev, settings)}). "
-                "Use another --out folder, or --force to start that folder over."
-            )
-        if old["mine"].get("done"):
-            if g.main:  # a process stopped during the final clean-up left its checkpoint behind
-                run.remove_stage("mine", (), _CHECKPOINTS)
-            return run
-    g.agree((corpus.fingerprint, settings, force), "the corpus or the mining settings")
-    if g.main:  # the other ranks write only files of their own (dist.py)
-        if force and old and old.get("mine"):  # only what the manifest says this stage wrote
-            m = old["mine"]
-            run.remove_stage("mine", {*m.get("layers", {}), *(m.get("settings") or {}).get("layers", {})},
-                             (*_CHECKPOINTS, "thumbs.npy"))
-        run.path.mkdir(parents=True, exist_ok=True)
-        run.save_corpus(corpus)
-        manifest = old if old and not force else {}
-        manifest.update(model=model.describe(), corpus=_corpus_summary(corpus, []))
-        manifest["mine"] = {"settings": settings, "done": False,
-                            "layers": {lu.layer: {"units": len(lu.units), "done": False} for lu in layers}}
-        run.save_manifest(manifest)
-    g.check_shared(run.path)
-
-    N = len(corpus)
-    n_classes = len(corpus.classes)
-    class_of = None
-    if corpus.labels is not None:
-        lookup = {c: i for i, c in enumerate(corpus.classes)}
-        class_of = torch.tensor([lookup.get(c, -1) if c is not None else -1 for c in corpus.labels])
-    infos = {lu.layer: model.layer(lu.layer) for lu in layers}
-    tallies = {lu.layer: LayerTally(lu.units, infos[lu.layer].channels, infos[lu.layer].width,
-                                    config.top_k, n_classes) for lu in layers}
-    C = model.preprocess.channels
-    colour = [torch.zeros(C, dtype=torch.float64), torch.zeros(C, C, dtype=torch.float64), 0]
-    skipped: list[tuple[str, str]] = []
-    start = 0
-    state_path, meta_path = g.part(mdir / "state.npz"), g.part(mdir / "state.json")
-    if g.stray(mdir, "state", ".json"):
-        raise UnitlensError(f"{mdir} holds checkpoints of a launch with another number of processes "
-                            f"({', '.join(g.stray(mdir, 'state', '.json'))}); resume with that number, or use "
-                            "--force to start over.")
-    shard = g.blocks(N, config.batch_size)
-    meta = read_json(meta_path)
-    if meta and g.world > 1 and meta.get("batch_size") != config.batch_size:  # it decides the shards
-        raise UnitlensError(f"This mining pass was started with --batch-size {meta.get('batch_size')} on "
-                            f"{g.world} processes; resume it with that batch size, or use --force to start over.")
-    if meta and state_path.is_file():
-        st = read_npz(state_path)
-        if "meta" in st:  # the resume point saved with these very tallies (state.json may be older)
-            meta = json.loads(str(st["meta"]))
-        for name, t in tallies.items():
-            t.load({k: st[f"{name}/{k}"] for k in LayerTally.STATE})
-        colour = [torch.from_numpy(st["colour_sum"]), torch.from_numpy(st["colour_outer"]), int(meta["colour_n"])]
-        skipped = [tuple(s) for s in meta["skipped"]]
-        start = int(meta["next"])
-
-    values, row_files = {}, []  # per-image rows; with several ranks each writes its own part file
-
-    def rows_file(path, width):
-        row_files.append(path)
-        return open_rows(g.part(path), (len(shard), width), fresh=start == 0)
-
-    if config.keep_values:
-        for lu in layers:
-            d = run.layer_dir(lu.layer)
-            d.mkdir(parents=True, exist_ok=True)
-            values[lu.layer] = tuple(rows_file(d / f"{kind}.npy", len(lu.units)) for kind in ("values", "means"))
-            if needs_pooled(lu.units, infos[lu.layer].channels):  # embedding source (facets.py)
-                values[lu.layer] += (rows_file(d / "pooled.npy", infos[lu.layer].channels),)
-    dedupe = None
-    if config.dedupe:
-        dedupe = NearDuplicates(open_rows(mdir / "thumbs.npy", (N, C * THUMB * THUMB), start == 0, np.uint8),
-                                config.dedupe_threshold)
-        dedupe.extend(start)  # groups of the images before a resume point are recomputed from their thumbnails
-        for t in tallies.values():
-            t.groups = dedupe.groups
-
-    # What the checkpoint holds: whole batches only. A batch is added to copies, and the copies
-    # replace this tuple in one assignment once the batch is done, so an interrupt anywhere in
-    # between saves the state before that batch, never half of it.
-    done = (tallies, tuple(colour), tuple(skipped), start)
-
-    def checkpoint() -> None:
-        tallies, colour, skipped, next_index = done
-        for vm in values.values():
-            for a in vm:
-                a.flush()
-        if dedupe:
-            dedupe.flush()
-        arrays = {f"{name}/{k}": v for name, t in tallies.items() for k, v in t.state().items()}
-        meta = {"next": next_index, "skipped": skipped, "colour_n": colour[2], "batch_size": config.batch_size}
+    def save(self, path: Path, batch_size: int) -> None:
+        """Write the state to `path` (.npz) and its resume point also to the .json beside it, each atomically."""
+        meta = {"next": self.next, "skipped": self.skipped, "colour_n": self.colour[2], "batch_size": batch_size}
+        arrays = {f"{name}/{k}": v for name, t in self.tallies.items() for k, v in t.state().items()}
         # The resume point goes into the npz too: a process killed between the two writes must not
         # resume new tallies from an old point (it would count a batch twice).
-        arrays.update(colour_sum=colour[0].numpy(), colour_outer=colour[1].numpy(), meta=np.array(json.dumps(meta)))
-        write_npz(state_path, **arrays)
-        write_json(meta_path, meta)
-        g.check("while mining")  # stop early if another rank died
+        arrays.update(colour_sum=self.colour[0].numpy(), colour_outer=self.colour[1].numpy(),
+                      meta=np.array(json.dumps(meta)))
+        write_npz(path, **arrays)
+        write_json(path.with_suffix(".json"), meta)
 
-    extractor = model.extractor([lu.layer for lu in layers])
-    # Under torchrun only rank 0 draws the bar; batches are dealt in turn, so its place in the corpus
-    # is the job's progress to within a batch per rank.
-    bar = Progress(N, start, "mining", "img") if progress and g.main else None
-    last_save = time.monotonic()
-    stopped = False
-    try:
-        for batch in batches(corpus, model.preprocess.frame, start=start, batch_size=config.batch_size,
-                             workers=config.workers, indices=shard):
-            tallies, colour, skipped, next_index = done
-            for i, reason in batch.failures:
-                log.warning(f"Skipped {shown(corpus.files[i])}: {reason}")
-            skipped = skipped + tuple((corpus.files[i], reason) for i, reason in batch.failures)
-            # The resume point after this batch; recorded only once the batch is tallied.
-            upto = max([next_index, *(batch.indices + 1).tolist(), *(i + 1 for i, _ in batch.failures)])
-            if len(batch.indices):
-                ids = batch.indices
-                s, o, n = colour_moments(batch.images)
-                colour = (colour[0] + s, colour[1] + o, colour[2] + n)
-                if dedupe:
-                    dedupe.thumbs[ids.numpy()] = thumbnails(batch.images)
-                    dedupe.extend(upto)
-                with torch.inference_mode():
-                    feats = forward_batch(extractor, model.normalize(batch.images))
-                    cls = class_of[ids] if class_of is not None else None
-                    tallies = dict(tallies)
-                    for name, t in tallies.items():
-                        tallies[name], mx, mean = t.added(feats[name], ids, cls)
-                        if name in values:
-                            rows = g.row(ids.numpy(), config.batch_size)
-                            rows_of = (mx, mean)
-                            if len(values[name]) > 2:
-                                rows_of += (mean if t.all_units else feats[name].float().mean((2, 3)),)
-                            for a, x in zip(values[name], rows_of):
-                                a[rows] = _fit(x, a.dtype)
-            done = (tallies, colour, skipped, upto)  # the batch counts from here on
+    def load(self, path: Path) -> "MiningState":
+        """The state saved at `path`, into this state's (fresh) tallies; the resume point saved with the
+        tallies wins over the .json, which may be older."""
+        st = read_npz(path)
+        meta = json.loads(str(st["meta"])) if "meta" in st else read_json(path.with_suffix(".json"))
+        for name, t in self.tallies.items():
+            t.load({k: st[f"{name}/{k}"] for k in LayerTally.STATE})
+        return MiningState(self.tallies, (torch.from_numpy(st["colour_sum"]), torch.from_numpy(st["colour_outer"]),
+                                          int(meta["colour_n"])),
+                           tuple(tuple(s) for s in meta["skipped"]), int(meta["next"]))
+
+
+class MiningPass:
+    """One mining pass over a run folder: `prepare` (settings, resume point, per-image files),
+    `sweep` (the batches; checkpoints), `finish` (merge the ranks, index, crops, embeddings, facets)."""
+
+    def __init__(self, model, corpus, layers: tuple[LayerUnits, ...], run: Run, config: MineConfig):
+        self.model, self.corpus, self.layers, self.run, self.config = model, corpus, layers, run, config
+        self.g = dist.group()  # one process, or this rank of a torchrun job: it mines every world-th batch
+        self.mdir = run.path / "mine"
+        self.state_path = self.g.part(self.mdir / "state.npz")
+        self.values: dict[str, tuple] = {}  # per-image rows per layer; with several ranks each writes its own part
+        self.row_files: list[Path] = []
+        self.dedupe: NearDuplicates | None = None
+
+    # -- prepare --------------------------------------------------------------------------------
+    def prepare(self, force: bool = False) -> bool:
+        """Check the settings against the folder, claim it, and load the checkpoint; False when
+        this pass is already finished (nothing to do)."""
+        if self.config.dedupe and self.g.world > 1:
+            raise UnitlensError("Near-duplicate suppression (--dedupe) needs every image in one process, in corpus "
+                                f"order; run it without torchrun (this job has {self.g.world} ranks).")
+        if not self._claim(force):
+            return False
+        self.state = self._resume()
+        self._open_rows(fresh=self.state.next == 0)
+        return True
+
+    def _claim(self, force: bool) -> bool:
+        run, corpus, g = self.run, self.corpus, self.g
+        settings = _settings(self.model, corpus, self.layers, self.config)
+        old = read_json(run.manifest_path)
+        prev_corpus = read_json(run.path / "corpus.json")
+        if prev_corpus and prev_corpus.get("fingerprint") != corpus.fingerprint and not force:
+            change = corpus.describe_change(prev_corpus.get("files", []), prev_corpus.get("fingerprint", ""),
+                                            prev_corpus.get("stamps"))
+            raise UnitlensError(f"The corpus changed since this run started ({change}). Use --force to start over.")
+        if not old and self.mdir.exists() and any(self.mdir.iterdir()):
+            raise UnitlensError(f"{shown(run.path)} holds a mine/ folder but no manifest.json, so unitlens did not "
+                                "write it (or its manifest was lost); nothing was changed. Move that folder away, or "
+                                "give --out a new or empty folder.")
+        if old and old.get("mine") and not force:
+            prev = old["mine"].get("settings")
+            if not _same_settings(prev, settings):
+                raise UnitlensError(
+                    f"{run.path} already holds a mining pass with other settings ({_diff(prev, settings)}). "
+                    "Use another --out folder, or --force to start that folder over."
+                )
+            if old["mine"].get("done"):
+                if g.main:  # a process stopped during the final clean-up left its checkpoint behind
+                    run.remove_stage("mine", (), _CHECKPOINTS)
+                return False
+        g.agree((corpus.fingerprint, settings, force), "the corpus or the mining settings")
+        if g.main:  # the other ranks write only files of their own (dist.py)
+            if force and old and old.get("mine"):  # only what the manifest says this stage wrote
+                m = old["mine"]
+                run.remove_stage("mine", {*m.get("layers", {}), *(m.get("settings") or {}).get("layers", {})},
+                                 (*_CHECKPOINTS, "thumbs.npy"))
+            run.path.mkdir(parents=True, exist_ok=True)
+            run.save_corpus(corpus)
+            manifest = old if old and not force else {}
+            manifest.update(model=self.model.describe(), corpus=_corpus_summary(corpus, []))
+            manifest["mine"] = {"settings": settings, "done": False,
+                                "layers": {lu.layer: {"units": len(lu.units), "done": False} for lu in self.layers}}
+            run.save_manifest(manifest)
+        g.check_shared(run.path)
+        return True
+
+    def _resume(self) -> MiningState:
+        """The saved state, or an empty one."""
+        g, mdir, cfg = self.g, self.mdir, self.config
+        C = self.model.preprocess.channels
+        tallies = {lu.layer: LayerTally(lu.units, self.model.layer(lu.layer).channels, self.model.layer(lu.layer).width,
+                                        cfg.top_k, len(self.corpus.classes)) for lu in self.layers}
+        state = MiningState(tallies, (torch.zeros(C, dtype=torch.float64), torch.zeros(C, C, dtype=torch.float64), 0),
+                            (), 0)
+        if g.stray(mdir, "state", ".json"):
+            raise UnitlensError(f"{mdir} holds checkpoints of a launch with another number of processes "
+                                f"({', '.join(g.stray(mdir, 'state', '.json'))}); resume with that number, or use "
+                                "--force to start over.")
+        meta = read_json(self.state_path.with_suffix(".json"))
+        if meta and g.world > 1 and meta.get("batch_size") != cfg.batch_size:  # it decides the shards
+            raise UnitlensError(f"This mining pass was started with --batch-size {meta.get('batch_size')} on "
+                                f"{g.world} processes; resume it with that batch size, or use --force to start over.")
+        return state.load(self.state_path) if meta and self.state_path.is_file() else state
+
+    def _open_rows(self, fresh: bool) -> None:
+        """The memory-mapped per-image files (and, with dedupe, the thumbnails and their groups)."""
+        g, N, cfg = self.g, len(self.corpus), self.config
+        self.shard = g.blocks(N, cfg.batch_size)
+
+        def rows_file(path, width):
+            self.row_files.append(path)
+            return open_rows(g.part(path), (len(self.shard), width), fresh=fresh)
+
+        if cfg.keep_values:
+            for lu in self.layers:
+                d = self.run.layer_dir(lu.layer)
+                d.mkdir(parents=True, exist_ok=True)
+                C = self.model.layer(lu.layer).channels
+                self.values[lu.layer] = tuple(rows_file(d / f"{kind}.npy", len(lu.units)) for kind in ("values", "means"))
+                if needs_pooled(lu.units, C):  # embedding source (facets.py)
+                    self.values[lu.layer] += (rows_file(d / "pooled.npy", C),)
+        if cfg.dedupe:
+            C = self.model.preprocess.channels
+            self.dedupe = NearDuplicates(open_rows(self.mdir / "thumbs.npy", (N, C * THUMB * THUMB), fresh, np.uint8),
+                                         cfg.dedupe_threshold)
+            self.dedupe.extend(self.state.next)  # groups of the images before a resume point are recomputed
+            for t in self.state.tallies.values():
+                t.groups = self.dedupe.groups
+
+    # -- sweep ----------------------------------------------------------------------------------
+    def checkpoint(self) -> None:
+        """Save the state of the whole batches done, after the per-image rows it refers to."""
+        for vm in self.values.values():
+            for a in vm:
+                a.flush()
+        if self.dedupe:
+            self.dedupe.flush()
+        self.state.save(self.state_path, self.config.batch_size)
+        self.g.check("while mining")  # stop early if another rank died
+
+    def sweep(self, progress: bool = False, stop: Callable[[int], bool] | None = None) -> bool:
+        """Tally the batches from the resume point on; True when the corpus is done, False when `stop`
+        ended the pass. Ctrl-C saves a checkpoint and raises `interrupted`."""
+        from .corpus import batches
+
+        corpus, model, cfg, g = self.corpus, self.model, self.config, self.g
+        N = len(corpus)
+        class_of = None
+        if corpus.labels is not None:
+            lookup = {c: i for i, c in enumerate(corpus.classes)}
+            class_of = torch.tensor([lookup.get(c, -1) if c is not None else -1 for c in corpus.labels])
+        extractor = model.extractor([lu.layer for lu in self.layers])
+        start = self.state.next
+        # Under torchrun only rank 0 draws the bar; batches are dealt in turn, so its place in the corpus
+        # is the job's progress to within a batch per rank.
+        bar = Progress(N, start, "mining", "img") if progress and g.main else None
+        last_save = time.monotonic()
+        stopped = False
+        try:
+            for batch in batches(corpus, model.preprocess.frame, start=start, batch_size=cfg.batch_size,
+                                 workers=cfg.workers, indices=self.shard):
+                state = self.state
+                for i, reason in batch.failures:
+                    log.warning(f"Skipped {shown(corpus.files[i])}: {reason}")
+                # The resume point after this batch; recorded only once the batch is tallied.
+                upto = max([state.next, *(batch.indices + 1).tolist(), *(i + 1 for i, _ in batch.failures)])
+                tallies, colour = state.tallies, state.colour
+                if len(batch.indices):
+                    tallies, colour = self._tally(batch, state, class_of, extractor, upto)
+                self.state = MiningState(tallies, colour, state.skipped + tuple(
+                    (corpus.files[i], reason) for i, reason in batch.failures), upto)  # the batch counts from here on
+                if bar:
+                    bar.advance(upto)
+                if time.monotonic() - last_save > cfg.checkpoint_seconds:
+                    self.checkpoint()
+                    last_save = time.monotonic()
+                if stop is not None and stop(upto):
+                    self.checkpoint()
+                    return False
+        except KeyboardInterrupt:
+            stopped = True
+        finally:
             if bar:
-                bar.advance(upto)
-            if time.monotonic() - last_save > config.checkpoint_seconds:
-                checkpoint()
-                last_save = time.monotonic()
-            if _stop_after is not None and upto >= _stop_after:
-                checkpoint()
-                return run
-    except KeyboardInterrupt:
-        stopped = True
-    finally:
-        if bar:
-            bar.close()
-    checkpoint()
-    tallies, colour, skipped, next_index = done
-    if stopped:
-        raise interrupted(f"after {next_index} of {N} images; state saved. Run the same command to resume.")
-    merged = merge_ranks(g, tallies, list(colour), list(skipped), corpus.files)
-    if g.main:
-        _check_usable(corpus, merged[0], merged[2])
-        for path in row_files:
-            dist.assemble_rows(g, path, N, config.batch_size)
-        _finish(run, model, corpus, layers, *merged, config, progress, dedupe.groups.numpy() if dedupe else None)
-        if g.world > 1:  # the merged files are complete: the ranks' parts and checkpoints can go
-            for path in row_files + [mdir / "state.npz", mdir / "state.json"]:
-                for p in g.parts(path):
-                    p.unlink(missing_ok=True)
-        for p in mdir.rglob(".*.tmp"):  # half-written files of a process killed mid-write (store.atomic_write)
-            p.unlink(missing_ok=True)
-    g.barrier("the end of mining")
-    return run
+                bar.close()
+        self.checkpoint()
+        if stopped:
+            raise interrupted(f"after {self.state.next} of {N} images; state saved. Run the same command to resume.")
+        return True
+
+    def _tally(self, batch, state: MiningState, class_of, extractor, upto: int):
+        """The tallies and colour sums with `batch` added (new objects; `state` is unchanged), and its
+        per-image rows written."""
+        ids = batch.indices
+        s, o, n = colour_moments(batch.images)
+        colour = (state.colour[0] + s, state.colour[1] + o, state.colour[2] + n)
+        if self.dedupe:
+            self.dedupe.thumbs[ids.numpy()] = thumbnails(batch.images)
+            self.dedupe.extend(upto)
+        with torch.inference_mode():
+            feats = forward_batch(extractor, self.model.normalize(batch.images))
+            cls = class_of[ids] if class_of is not None else None
+            tallies = dict(state.tallies)
+            for name, t in tallies.items():
+                tallies[name], mx, mean = t.added(feats[name], ids, cls)
+                if name in self.values:
+                    rows = self.g.row(ids.numpy(), self.config.batch_size)
+                    rows_of = (mx, mean)
+                    if len(self.values[name]) > 2:
+                        rows_of += (mean if t.all_units else feats[name].float().mean((2, 3)),)
+                    for a, x in zip(self.values[name], rows_of):
+                        a[rows] = _fit(x, a.dtype)
+        return tallies, colour
+
+    # -- finish ---------------------------------------------------------------------------------
+    def finish(self, progress: bool = False) -> None:
+        """Merge the ranks' tallies and rows (rank 0), then write the index, crops, embeddings and facets."""
+        g, corpus, st = self.g, self.corpus, self.state
+        merged = merge_ranks(g, st.tallies, list(st.colour), list(st.skipped), corpus.files)
+        if g.main:
+            _check_usable(corpus, merged[0], merged[2])
+            for path in self.row_files:
+                dist.assemble_rows(g, path, len(corpus), self.config.batch_size)
+            _finish(self.run, self.model, corpus, self.layers, *merged, self.config, progress,
+                    self.dedupe.groups.numpy() if self.dedupe else None)
+            if g.world > 1:  # the merged files are complete: the ranks' parts and checkpoints can go
+                for path in self.row_files + [self.mdir / "state.npz", self.mdir / "state.json"]:
+                    for p in g.parts(path):
+                        p.unlink(missing_ok=True)
+            for p in self.mdir.rglob(".*.tmp"):  # half-written files of a process killed mid-write (atomic_write)
+                p.unlink(missing_ok=True)
+        g.barrier("the end of mining")
 
 
 _CHECKPOINTS = ("state.npz", "state.json", "state-rank*of*.npz", "state-rank*of*.json")
