@@ -31,7 +31,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from unitlens import MineConfig, mine, open_corpus, parse_layers
 from unitlens.demo.build import demo_corpus, demo_model
-from unitlens.facets import NEAR_K, normalise
+from unitlens.embedding import normalise
+from unitlens.neighbours import NEAR_K
 from unitlens.store import Run, read_npz
 from unitlens.synth import Goal, SynthConfig, synthesize
 

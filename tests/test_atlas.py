@@ -537,7 +537,7 @@ def test_index_previews_load_in_the_browser(tiny, browser, shots):
 
 def test_facets_carry_pictures_and_a_stated_margin(tiny):
     from unitlens.atlas.data import FACET_COSINE
-    from unitlens.facets import Embedding
+    from unitlens.embedding import Embedding
 
     checked = 0
     for layer in ("3", "6"):

@@ -9,7 +9,7 @@ from PIL import Image
 import cdp
 from conftest import TESTS, chromium_or_skip
 from unitlens import MineConfig, load_model, mine, open_corpus, parse_layers, render_atlas
-from unitlens import facets
+from unitlens import dedupe, embedding, facets, neighbours
 from unitlens.store import read_npz
 
 FACETED = f"{TESTS / 'faceted.py'}:two_faced"
@@ -33,17 +33,17 @@ def test_kmeans_assignment_is_the_nearest_centroid_and_silhouette_matches_scikit
     np.testing.assert_array_equal(facets.kmeans(x, 3)[1], again)  # seeded: the same every time
     centres = rng.normal(size=(3, 8)) * 3  # three blobs in different directions
     y = np.concatenate([rng.normal(c, 0.3, (20, 8)) for c in centres])
-    labels, s = facets.facets_of(facets.normalise(y - y.mean(0)))
+    labels, s = facets.facets_of(embedding.normalise(y - y.mean(0)))
     assert labels.max() == 2 and np.bincount(labels).tolist() == [20, 20, 20] and s > 0.5
-    one, s1 = facets.facets_of(facets.normalise(rng.normal(size=(40, 8))))  # no structure: one facet
+    one, s1 = facets.facets_of(embedding.normalise(rng.normal(size=(40, 8))))  # no structure: one facet
     assert one.max() == 0 and s1 == 0.0
 
 
 def test_inner_product_search_equals_numpy_argsort():
     rng = np.random.default_rng(1)
-    base = facets.normalise(rng.normal(size=(300, 16)))
-    q = facets.normalise(rng.normal(size=(7, 16)))
-    sim, rows = facets.nearest(base, q, 5)
+    base = embedding.normalise(rng.normal(size=(300, 16)))
+    q = embedding.normalise(rng.normal(size=(7, 16)))
+    sim, rows = embedding.nearest(base, q, 5)
     dots = q.astype(np.float64) @ base.T.astype(np.float64)
     np.testing.assert_array_equal(rows, np.argsort(-dots, axis=1, kind="stable")[:, :5])
     np.testing.assert_allclose(sim, np.take_along_axis(dots, rows, 1), atol=1e-5)
@@ -72,7 +72,7 @@ def test_range_search_groups_equal_numpy_pairwise_cosine_for_any_chunking():
     want = _groups_numpy(t, 0.99)
     assert (want != np.arange(len(t))).sum() == 5  # the planted copies, nothing else
     for chunks in ([len(t)], [1] * len(t), [7, 13, 20, len(t)]):
-        nd = facets.NearDuplicates(t, 0.99)
+        nd = dedupe.NearDuplicates(t, 0.99)
         upto = 0
         for c in chunks:
             upto = min(len(t), upto + c)
@@ -215,7 +215,7 @@ def test_embedding_manifest_entry_is_right(faceted_run, tmp_path, monkeypatch):
     # a wider layer than EMBED_DIM, one unit mined: pooled features reduced by PCA (scikit-learn's PCA as reference)
     from sklearn.decomposition import PCA
 
-    monkeypatch.setattr(facets, "EMBED_DIM", 2)
+    monkeypatch.setattr(embedding, "EMBED_DIM", 2)
     r = mine(model, corpus, parse_layers(model, ["2:2"]), tmp_path / "pca", MineConfig(top_k=4, workers=0))
     e = r.manifest()["mine"]["layers"]["2"]["embedding"]
     path = r.path / e["path"]
@@ -241,14 +241,14 @@ def test_nearest_natural_images_of_a_synthesised_image_equal_brute_force(faceted
     q = q[:, units]
     # the search space: per-image channel maxima minus their mean, unit 2's own channel weighted x4
     base = np.load(run.layer_dir("2") / "values.npy").astype(np.float64)
-    w = np.where(units == 2, facets.OWN_WEIGHT, 1.0)
+    w = np.where(units == 2, neighbours.OWN_WEIGHT, 1.0)
     centre = base.mean(0)
     b = (base - centre) * w
     b /= np.linalg.norm(b, axis=1, keepdims=True)
     q = (q - centre) * w
     q /= np.linalg.norm(q)
     cos = (b @ q.T)[:, 0]
-    want = np.argsort(-cos, kind="stable")[:facets.NEAR_K]
+    want = np.argsort(-cos, kind="stable")[:neighbours.NEAR_K]
     assert [n["index"] for n in im["nearest"]] == want.tolist()
     np.testing.assert_allclose([n["similarity"] for n in im["nearest"]], cos[want], atol=1e-4)
     assert [n["id"] for n in im["nearest"]] == [corpus.files[i] for i in want]
@@ -266,7 +266,7 @@ def test_unit_view_shows_facets_and_nearest_images_without_errors(faceted_run):
         assert len(heads) == 2 and all("of 28 images" in h for h in heads), heads
         assert page.js("document.querySelectorAll('.uv-facets .facet-grid .crop').length") == 8  # the kept crops
         sims = page.js("[...document.querySelectorAll('.syn-near .near figcaption')].map(e => e.textContent)")
-        assert len(sims) == facets.NEAR_K
+        assert len(sims) == neighbours.NEAR_K
         strip = page.js("getComputedStyle(document.querySelector('.syn-near .crop')).backgroundImage")
         assert "near-0002.jpg" in strip
         assert page.errors == [] and all(u.startswith("file://") for u in page.requests), page.errors

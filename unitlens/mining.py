@@ -19,7 +19,8 @@ from . import dist
 from ._extract import forward_batch
 from ._progress import Progress
 from .errors import UnitlensError, interrupted, log, shown
-from .facets import EMBED_DIM, THUMB, NearDuplicates, needs_pooled, thumbnails
+from .dedupe import THUMB, NearDuplicates, thumbnails
+from .embedding import EMBED_DIM, needs_pooled
 from .store import Run, disk_bytes, new_array, read_json, read_npz, space_for, write_json, write_npz
 from .tally import HIST_BINS, LayerTally, colour_moments, index_arrays, merge_ranks
 from .units import LayerUnits
@@ -33,7 +34,7 @@ class MineConfig:
     checkpoint_seconds: float = 5.0
     keep_values: bool = True  # per-image maxima and means on disk (for compare and facets)
     thumb: int = 96  # exemplar crop size in the sprite sheets
-    dedupe: bool = False  # near-identical images count once in a unit's exemplar lists (facets.py)
+    dedupe: bool = False  # near-identical images count once in a unit's exemplar lists (dedupe.py)
     dedupe_threshold: float = 0.99  # cosine between normalised 16x16 thumbnails
 
 
@@ -242,7 +243,7 @@ class MiningPass:
                 d.mkdir(parents=True, exist_ok=True)
                 C = self.model.layer(lu.layer).channels
                 self.values[lu.layer] = tuple(rows_file(d / f"{kind}.npy", len(lu.units)) for kind in ("values", "means"))
-                if needs_pooled(lu.units, C):  # embedding source (facets.py)
+                if needs_pooled(lu.units, C):  # embedding source (embedding.py)
                     self.values[lu.layer] += (rows_file(d / "pooled.npy", C),)
         if cfg.dedupe:
             C = self.model.preprocess.channels

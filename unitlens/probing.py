@@ -238,7 +238,7 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
         shutil.copyfile(s["image"], d / name)
         s["page_image"] = name
     summary["settings"] = _settings(config)
-    from ._probe_page import write_page
+    from .atlas.probe_page import write_page
 
     summary["page"] = str(write_page(d, run, summary))
     write_json(d / "probe.json", summary)

@@ -8,7 +8,7 @@ Layout (every file readable without unitlens):
   mine/<layer>/values.npy       per-image spatial maxima (N, U) float32 (float16 in older runs)
   mine/<layer>/means.npy        per-image spatial means (N, U) float32 (pooled embedding)
   mine/<layer>/sheet-NNN.jpg    exemplar crops, one row per unit (see crops.py)
-  mine/<layer>/pooled.npy, embed.npy, embed-basis.npz, facets.npz   embedding and facets (facets.py)
+  mine/<layer>/pooled.npy, embed.npy, embed-basis.npz, facets.npz   embedding (embedding.py) and facets (facets.py)
   mine/thumbs.npy               near-duplicate thumbnails (N, 768) uint8, with --dedupe
 """
 from __future__ import annotations

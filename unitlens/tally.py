@@ -149,7 +149,7 @@ def keep_best(val, img, pos, new_val, new_img, new_pos, k, largest, groups=None)
     v, i, p = v.gather(1, o), i.gather(1, o), p.gather(1, o)
     o = torch.argsort(v, dim=1, descending=largest, stable=True)  # ... then score, stable
     if groups is not None:
-        from .facets import keep_first_of_group
+        from .dedupe import keep_first_of_group
 
         return keep_first_of_group(v.gather(1, o), i.gather(1, o), p.gather(1, o), k, groups, largest)
     o = o[:, :k]

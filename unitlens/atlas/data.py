@@ -190,7 +190,7 @@ def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.0
     detail = {"images": images, "trace": traces, "best_exemplar": _f(best) if best is not None else None}
     strip = Path(str(rec.get("nearest_strip") or "")).name
     if strip and (d / strip).is_file():
-        from ..facets import NEAR_K, NEAR_THUMB
+        from ..neighbours import NEAR_K, NEAR_THUMB
 
         files.append(d / strip)
         detail["near"] = {"src": strip, "thumb": NEAR_THUMB, "cols": NEAR_K,
@@ -394,7 +394,7 @@ def _facet_details(run: Run, layer: str, units: list[int], pos: dict[int, int],
     at = {int(u): j for j, u in enumerate(z["units"])}
     emb = None
     if (z["k"] > 1).any():
-        from ..facets import Embedding
+        from ..embedding import Embedding
 
         try:
             emb = Embedding(run, layer)

@@ -10,7 +10,7 @@ from .. import dist
 from ..errors import UnitlensError, interrupted
 from ..units import ranges_text
 from ..store import Run, atomic_write, disk_bytes, read_json, read_npz, space_for, write_json, write_npz
-from ..facets import NaturalNeighbours, synth_neighbours
+from ..neighbours import NaturalNeighbours, synth_neighbours
 from .evidence import assess, exemplar_references, parity
 from .bases import ColourBasis
 from .goal import Goal
@@ -236,7 +236,7 @@ def _write_unit(d: Path, model, layer, r, scorer, spec, colour, config, best, ex
                        **c, "vs_best_exemplar": ratio, "parity": parity(c, reference, scorer.sign, first)})
     rec = {"unit": r.target, "best_exemplar": best, "exemplar_objective": reference,
            "trace": f"unit-{r.target:04d}.npz", "images": images}
-    if near is not None:  # nearest natural images in the layer's embedding (facets.py)
+    if near is not None:  # nearest natural images of the layer (neighbours.py)
         hits, rec["nearest_strip"] = synth_neighbours(near, model, layer, u8, extract, d, f"near-{r.target:04d}",
                                                         r.target)
         rec["nearest_space"] = near.describe()

@@ -17,7 +17,7 @@ Layout, beside the mining pass (every file readable without unitlens):
                                   null if never), synthesised (robustness mean), exemplar (the
                                   same on the best exemplar)}, and, when the layer was mined,
                                   "nearest": [{index, id, similarity}] the closest corpus images
-                                  in the layer's embedding (cosine, facets.py); the record's
+                                  of the layer (cosine, neighbours.py); the record's
                                   "nearest_strip" names their thumbnails (near-0037.jpg)
   manifest.json["synth"]          settings (config, goal: the plain fields of Goal.record, colour),
                                   colour basis and where it came from, per-layer status

@@ -5,8 +5,8 @@ from __future__ import annotations
 from importlib import resources
 from pathlib import Path
 
-from .atlas.html import facts_list, join, page, tag
-from .store import Run, atomic_write, safe_name
+from ..store import Run, atomic_write, safe_name
+from .html import facts_list, join, page, tag
 
 TITLES = {"integrated-gradients": "integrated gradients", "gradient-x-input": "gradient × input",
           "smoothgrad": "SmoothGrad |mean gradient|"}
