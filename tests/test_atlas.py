@@ -683,3 +683,20 @@ def test_a_2048_unit_layer_mounts_only_visible_cards_and_sorts_like_numpy(big, b
     assert page.js("document.querySelectorAll('.uv-ex .ex').length") == 16
     _clean(page)
     page.close()
+
+
+def test_the_page_skeleton_keeps_plain_text_as_text():
+    # The skeleton is an autoescaping template: plain text passed anywhere stays text, and only markup
+    # built by the helpers (Html) goes in as markup. Oracle: the standard library's html.unescape.
+    import html
+
+    from unitlens.atlas.html import page, tag
+
+    hostile = '<script>alert("x")</script> & <b>'
+    out = page("t", "index", [hostile], hostile)
+    main = out.split("<main>\n", 1)[1].split("\n</main>", 1)[0]
+    assert "<" not in main and html.unescape(main) == hostile
+    crumbs = out.split('<div class="crumbs">', 1)[1].split("</div>", 1)[0]
+    assert "<" not in crumbs and html.unescape(crumbs) == hostile
+    built = page("t", "index", [], tag("p", hostile))
+    assert "<p>&lt;script&gt;" in built and "<script>alert" not in built

@@ -2,13 +2,14 @@
 
 Every string that reaches a page passes `esc` unless it is an `Html` built here: text from the
 corpus, the model or the user (file names, layer names, labels, reasons) can never become markup.
+The page skeleton (templates/page.html) is a Jinja2 template with autoescaping: there too, only
+`Html` (which declares itself safe through MarkupSafe's `__html__`) goes in unescaped.
 """
 from __future__ import annotations
 
 import html as _html
 import json
-from importlib import resources
-from string import Template
+from functools import lru_cache
 
 CAUTIONS = (
     "Exemplars and synthesised images are evidence about a unit, not proof of what it means. A unit "
@@ -32,6 +33,9 @@ CSP = ("default-src 'none'; script-src 'self' file:; style-src 'self' file:; img
 
 class Html(str):
     """Markup that is already safe (built by the helpers below)."""
+
+    def __html__(self) -> str:  # MarkupSafe's protocol: Jinja2's autoescaping leaves it as it is
+        return self
 
 
 def esc(x) -> Html:
@@ -60,12 +64,20 @@ def js_data(name: str, obj) -> str:
     return f"window.{name} = {text};\n"
 
 
+@lru_cache(maxsize=None)
+def _templates():
+    """The page templates, autoescaping everything that is not `Html`; undefined names are errors."""
+    import jinja2
+
+    return jinja2.Environment(loader=jinja2.PackageLoader(__package__, "templates"), autoescape=True,
+                              undefined=jinja2.StrictUndefined, keep_trailing_newline=True)
+
+
 def page(title: str, kind: str, crumbs, main, scripts=(), body_attrs: dict | None = None, styles=()) -> str:
     """A whole page: `styles` are stylesheets to load after atlas.css."""
-    tpl = Template(resources.files(__package__).joinpath("templates/page.html").read_text())
     attrs = " ".join(f'{k}="{esc(v)}"' for k, v in (body_attrs or {}).items())
-    return tpl.substitute(
-        title=esc(title), kind=esc(kind), csp=Html(CSP), logo=LOGO, crumbs=join(crumbs), main=main,
+    return _templates().get_template("page.html").render(
+        title=esc(title), kind=esc(kind), csp=Html(CSP), logo=Html(LOGO), crumbs=join(crumbs), main=main,
         body_attrs=Html(attrs), cautions=esc(CAUTIONS[0].split(".")[0] + "."),
         styles=join(Html(f'<link rel="stylesheet" href="{esc(s)}">') for s in styles),
         scripts=join(Html(f'<script src="{esc(s)}"></script>') for s in scripts),
