@@ -433,7 +433,7 @@ def test_unit_view_deep_link_keys_and_hostile_exemplar(tiny, browser, shots):
 
 
 def test_firing_share_and_class_selectivity_carry_information(tiny):
-    from unitlens.atlas.data import FIRE_QUANTILE
+    from unitlens.summary import FIRE_QUANTILE
 
     for layer in ("3", "6"):
         c = _units_data(tiny.atlas, layer)

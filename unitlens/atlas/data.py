@@ -18,13 +18,13 @@ from pathlib import Path
 import numpy as np
 
 from ..store import Run, read_json, read_npz
+from ..summary import layer_firing
 
 HIST_BINS = 24  # linear bins of the re-binned histogram (cards and unit view)
 TRACE_POINTS = 96  # at most this many points of an optimisation trace reach the page
 FACET_COSINE = 0.5  # facets count as different things when their centres' cosine in the layer's embedding is below this
 FACET_THUMB = 48  # whole-image thumbnails of facet members that have no kept crop
 FACET_SHOWN = 4  # such thumbnails per facet
-FIRE_QUANTILE = 0.9  # a unit "fires" on an image when its maximum there reaches the layer's 90th percentile
 
 
 def _f(x, digits: int = 4):
@@ -142,7 +142,7 @@ def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.0
     """Card part, detail part and image files of one synthesised unit (names within the layer's image folder).
 
     `stop`: the run's early-stop window and gain, which also say whether a finished image converged."""
-    from ..synth.results import stalled
+    from ..synth.results import parity_share, stalled
 
     tr = None
     tname = Path(str(rec.get("trace", ""))).name
@@ -177,11 +177,10 @@ def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.0
         images[-1]["doubts"], images[-1]["checks"] = _doubts(images[-1], images[-1]["converged"])
     traces = [_thin(row) for row in tr] if tr is not None else []
     ratios = [im["ratio"] for im in images if im["ratio"] is not None]
-    reached = [im["parity"]["reached"] for im in images if im["parity"]]
     first = images[0] if images else {}
     card = {"src": files[0].name if files else None, "count": len(images),
             "ratio": max(ratios) if ratios else None,
-            "parity": None if not reached else sum(reached) / len(reached),  # share of the unit's images at parity
+            "parity": parity_share(images),  # share of the unit's images at parity
             # the card shows the first image: its doubts, and the share of its judged checks it passes
             "doubts": first.get("doubts") or [],
             "trust": _f(1 - len(first["doubts"]) / first["checks"], 3) if first.get("checks") else None,
@@ -264,21 +263,6 @@ def spark(counts) -> str:
     return "".join(SPARK[v] for v in lv)
 
 
-def fire_rates(hist: np.ndarray, edges: np.ndarray, q: float = FIRE_QUANTILE) -> tuple[float, np.ndarray]:
-    """(t, per-unit share of images whose per-image maximum is >= t).
-
-    hist (U, J) counts of the per-image maxima on fixed bins, edges (J + 1,). t is the lowest bin
-    edge with at most 1 - q of the layer's per-image maxima (all units pooled) at or above it:
-    "max > 0" says nothing on a layer whose units are positive on every image, and a threshold
-    on a bin edge makes each share exact, read off the counts.
-    """
-    h = np.asarray(hist, dtype=np.float64)  # (U, J)
-    tail = np.append(np.cumsum(h.sum(0)[::-1])[::-1], 0.0)  # (J + 1,): pooled count at or above each edge
-    j = int(np.argmax(tail <= (1 - q) * tail[0]))
-    n = h.sum(1)
-    return float(edges[j]), np.where(n > 0, h[:, j:].sum(1) / np.maximum(n, 1), np.nan)
-
-
 def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict, dict]:
     """(card columns, histogram columns for the details) of the mined units."""
     K = int(idx["top_image"].shape[1])
@@ -300,14 +284,14 @@ def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict
     csi = idx.get("csi")
     if csi is not None and not float(np.nanmin(idx["low"])) >= 0:
         csi = None  # the index assumes non-negative activations: with negative class means it means nothing
-    fire_at, fire = fire_rates(idx["hist"], idx["hist_edges"]) if "hist" in idx else (None, idx["fire_rate"])
+    firing = layer_firing(idx)
     top_ok = idx["top_score"]
     cards = {
         "shape": shape, "images": int(idx["count"]), "k": K,
         "negative": "bottom_box" in idx,  # the sheets hold bottom crops only when the layer goes negative
         "peak": _pick(idx["high"], units, pos),
-        "fire": _pick(fire, units, pos),
-        "fire_at": _f(fire_at) if fire_at is not None else None, "fire_q": FIRE_QUANTILE,
+        "fire": _pick(firing["rates"], units, pos),
+        "fire_at": _f(firing["threshold"]) if firing["quantile"] is not None else None, "fire_q": firing["quantile"],
         "csi": _pick(csi, units, pos) if csi is not None else [None] * len(units),
         # number of filled exemplar slots per unit (a tiny corpus may have fewer than K images)
         "filled": [int(np.isfinite(top_ok[pos[u]]).sum()) if u in pos else 0 for u in units],
