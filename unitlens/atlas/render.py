@@ -37,7 +37,8 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     """Draw (or bring up to date) the atlas of a run folder; returns the path of its index.html.
 
     `layers`: redraw only these (the index and navigation always list every layer). Given a
-    comparison folder (compare.json, no manifest), it draws that folder's pages instead.
+    comparison folder (compare.json, no manifest), it draws that folder's pages instead (with
+    `strip_paths` as here).
     `strip_paths`: cut every absolute path on the pages and in their data to its last part, so the
     folder can be handed on; None keeps the choice the atlas was last drawn with.
 
@@ -49,7 +50,7 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
 
         if layers is not None:
             raise UnitlensError(f"{run} is a comparison folder; its pages are drawn all at once. Leave out --layers.")
-        return render_comparison(run)
+        return render_comparison(run, strip_paths)
     run = run if isinstance(run, Run) else Run(run)
     m = run.manifest()
     known = _known_layers(m)
@@ -103,7 +104,7 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     drawn = state.get("drawn", "")
     from .comparison_page import comparisons_section
 
-    cmp = comparisons_section(run.path, out)  # the comparisons under RUN/compare/
+    cmp = comparisons_section(run.path, out, share)  # the comparisons under RUN/compare/
     if drew or not index.is_file() or index.read_text() != index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp):
         state["drawn"] = drawn = now()  # the date on the index is that of the atlas's last change
     _write_if_changed(index, index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp).encode())
