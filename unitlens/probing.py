@@ -291,7 +291,7 @@ def _exemplar_files(model, run: Run, layer: str, channel: int, exemplars: list[d
         y, x = e["position"]
         box_in = input_box(info.field, y, x, size)
         need = int(math.ceil(config.thumb * size.side / max(1.0, min(box_in[2] - box_in[0], box_in[3] - box_in[1]))))
-        boxes, cells, err = image_cells(Path(e["image"]), [(box_in, need)], size, config.thumb)
+        boxes, _views, cells, err = image_cells(Path(e["image"]), [(box_in, need)], size, config.thumb)
         if err is not None:
             e["crop"] = None
             e["problem"] = f"no crop: {err}"

@@ -157,9 +157,18 @@ def _draw_layer(run: Run, out: Path, name: str, share: bool = False) -> dict:
     if share:
         data.cards, data.details = _strip(data.cards), _strip(data.details)
     wanted = {p.name: p for p in data.sheets + data.images}
-    _place_all(wanted, out / img_rel, keep=("facets.jpg",) if data.facet_thumbs else ())
+    w = data.details.get("whole")
+    per = w["cols"] * w["rows"] if w else 1
+    whole = [f"whole-{s:03d}.jpg" for s in range(-(-len(data.whole) // per))]
+    _place_all(wanted, out / img_rel, keep=(("facets.jpg",) if data.facet_thumbs else ()) + tuple(whole))
     if data.facet_thumbs:
-        _facet_sheet(data.facet_thumbs, out / img_rel / "facets.jpg", data.details["facet_sheet"])
+        spec = data.details["facet_sheet"]
+        _thumb_sheet(data.facet_thumbs, out / img_rel / "facets.jpg", spec["thumb"], spec["cols"])
+    if w:
+        w["names"] = whole
+        for s, name in enumerate(whole):  # per cell: where the letterboxed original lies, and its size
+            w["sizes"] += _thumb_sheet(data.whole[s * per:(s + 1) * per], out / img_rel / name, w["thumb"], w["cols"],
+                                       whole=True)
     cards_js, units_js = f"data/{safe}.cards.js", f"data/{safe}.units.js"
     # the details go first: a page whose cards are new must never find old details
     _write_if_changed(out / units_js, js_data("UNITLENS_UNITS", data.details).encode())
@@ -170,6 +179,9 @@ def _draw_layer(run: Run, out: Path, name: str, share: bool = False) -> dict:
         facts.append("feature map " + " × ".join(map(str, c["shape"])))
     if c.get("mined"):
         facts.append(f"{c['k']} exemplars per unit from {c['images']:,} images")
+        if c.get("context"):
+            facts.append(f"each crop shows at least {c['context']} × {c['context']} original pixels around its receptive "
+                         "field (outlined)")
         if c.get("fire_at") is not None:
             facts.append(f"“fires” = per-image maximum ≥ {c['fire_at']:.3g}, the layer's "
                          f"{round(100 * c['fire_q'])}th percentile over all its units")
@@ -269,21 +281,40 @@ def _write_if_changed(path: Path, data: bytes) -> None:
     os.chmod(path, READABLE)
 
 
-def _facet_sheet(files: list[Path], path: Path, spec: dict) -> None:
-    """Whole-image thumbnails (the centred square, as the network sees it) of `files`, row by row."""
+def _thumb_sheet(files: list[Path], path: Path, t: int, cols: int, whole: bool = False) -> list:
+    """Thumbnails of `files`, row by row, t px cells: the centred square (as the network sees it), or
+    with `whole` the whole original (upright, as mining saw it) scaled into the cell and centred.
+    Returns, for `whole`, [x, y, w, h, width, height] per cell: where the picture lies in its cell
+    and the original's size (None: the file cannot be read now; its cell stays grey)."""
     from PIL import Image, ImageOps
 
-    t, cols = spec["thumb"], spec["cols"]
+    from ..corpus import ImageProblem, decode_original
+
     rows = -(-len(files) // cols)
     sheet = Image.new("RGB", (cols * t, rows * t), (128, 128, 128))  # grey: a file that cannot be read now
+    placed: list = []
     for n, f in enumerate(files):
+        at = (n % cols * t, n // cols * t)
+        if not whole:
+            try:
+                with Image.open(f) as im:
+                    sheet.paste(ImageOps.fit(im.convert("RGB"), (t, t)), at)
+            except OSError:
+                pass
+            continue
         try:
-            with Image.open(f) as im:
-                sheet.paste(ImageOps.fit(im.convert("RGB"), (t, t)), (n % cols * t, n // cols * t))
-        except OSError:
-            pass
+            img, (W, H), _ = decode_original(Path(f), size=t)
+        except ImageProblem:
+            placed.append(None)
+            continue
+        s = t / max(W, H)
+        w, h = max(1, round(W * s)), max(1, round(H * s))
+        x, y = (t - w) // 2, (t - h) // 2
+        sheet.paste(img.convert("RGB").resize((w, h), Image.BILINEAR, reducing_gap=2.0), (at[0] + x, at[1] + y))
+        placed.append([x, y, w, h, W, H])
     _atomic(path, lambda fh: sheet.save(fh, format="JPEG", quality=85))
     os.chmod(path, READABLE)
+    return placed
 
 
 def _place_all(wanted: dict[str, Path], d: Path, keep: tuple[str, ...] = ()) -> None:
