@@ -48,11 +48,12 @@ def _reference_image_cells(path, entries, field, size, thumb):
     try:
         img, (W, H), (rx, ry) = ucorpus.decode_original(path, size=need)
     except ucorpus.ImageProblem as e:
-        return None, None, e.reason
+        return None, None, None, e.reason
     place = ucorpus.placement(W, H, size)
     boxes = [place.to_original(b) for b in boxes_in]
-    cells = [ucrops._cell(img, (b[0] * rx, b[1] * ry, b[2] * rx, b[3] * ry), thumb) for b in boxes]
-    return boxes, cells, None
+    views = [ucrops.context_box(b, W, H, ucrops.CONTEXT) for b in boxes]
+    cells = [ucrops._cell(img, (v[0] * rx, v[1] * ry, v[2] * rx, v[3] * ry), thumb) for v in views]
+    return boxes, views, cells, None
 
 
 def per_sheet_reference(run, model, corpus, layers, thumb: int) -> None:
@@ -66,6 +67,7 @@ def per_sheet_reference(run, model, corpus, layers, thumb: int) -> None:
         kinds = [("top", 0)] + ([("bottom", K)] if bool((idx["low"] < 0).any()) else [])
         cols = K * len(kinds)
         boxes = {k: np.full((U, K, 4), -1, dtype=np.int64) for k, _ in kinds}
+        views = {k: np.full((U, K, 4), -1, dtype=np.int64) for k, _ in kinds}
         for s in range((U + R - 1) // R):
             rows = range(s * R, min(U, (s + 1) * R))
             sheet = np.full((len(rows) * thumb, cols * thumb, 3), ucrops.PAD_VALUE, dtype=np.uint8)
@@ -81,16 +83,19 @@ def per_sheet_reference(run, model, corpus, layers, thumb: int) -> None:
             with ThreadPoolExecutor(max_workers=2) as pool:
                 results = pool.map(lambda it, field=field: _reference_image_cells(
                     corpus.path(it[0]), [e[:4] for e in it[1]], field, size, thumb), items)
-                for (_, entries), (bxs, cells, err) in zip(items, results):
+                for (_, entries), (bxs, vws, cells, err) in zip(items, results):
                     if err is not None:
                         continue
-                    for (u, col, _y, _x, kind, r), box, cell in zip(entries, bxs, cells):
+                    for (u, col, _y, _x, kind, r), box, view, cell in zip(entries, bxs, vws, cells):
                         row = u - rows.start
                         sheet[row * thumb:(row + 1) * thumb, col * thumb:(col + 1) * thumb] = cell
                         boxes[kind][u, r] = box
+                        views[kind][u, r] = view
             Image.fromarray(sheet).save(d / f"sheet-{s:03d}.jpg", quality=88)
         idx.update({f"{k}_box": b for k, b in boxes.items()})
-        idx.update(sheet_rows=np.array(R), sheet_cols=np.array(cols), thumb=np.array(thumb))
+        idx.update({f"{k}_view": v for k, v in views.items()})
+        idx.update(sheet_rows=np.array(R), sheet_cols=np.array(cols), thumb=np.array(thumb),
+                   context=np.array(ucrops.CONTEXT))
         write_npz(d / "index.npz", **idx)
 
 

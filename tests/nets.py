@@ -68,3 +68,8 @@ class Carried(nn.Sequential):
 
 def carried() -> nn.Module:
     return Carried()
+
+
+def field5_net() -> nn.Module:
+    """One 5x5 convolution, stride 1, padding 2: layer '0' has a 5-px receptive field."""
+    return nn.Sequential(nn.Conv2d(3, 4, 5, padding=2), nn.ReLU())

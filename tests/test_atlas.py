@@ -219,6 +219,31 @@ def test_cards_and_unit_view_carry_parity_with_the_best_exemplar(tiny):
             assert [im["parity"]["reached"] for im in details["synth"][i]["images"]] == reached
 
 
+def test_an_image_stopped_at_parity_is_not_called_unconverged(tmp_path):
+    """The loop stops an image once it is past parity (stop_at_parity), so its trace still rises: the
+    early-stop test on it would say "did not converge". Cases: (steps, the run's stop_at_parity,
+    expected converged), on a trace rising in a straight line, which never stalls (its last 32 steps gain
+    32 slopes over the 32 before: a relative gain near 0.5, far above 0.01)."""
+    from unitlens.atlas.data import _synth_payload
+
+    cases = [(80, 0.1, None),    # stopped at step 80 of 128 past parity: the loop's own stop
+             (80, None, False),  # the same trace in a run without the parity stop: it stopped rising nowhere
+             (128, 0.1, False)]  # ran every step and still rose: not converged, whatever the parity rule
+    for steps, margin, want in cases:
+        trace = np.full((1, 128), np.nan, np.float32)
+        trace[0, :steps] = np.arange(steps) * 0.01 + 1  # (T,) rising in a straight line
+        np.savez(tmp_path / "unit-0000.npz", trace=trace, steps=np.array([steps]))
+        rec = {"unit": 0, "best_exemplar": 1.0, "trace": "unit-0000.npz", "images": [
+            {"file": "unit-0000-0.png", "steps": steps, "activation": 2.0, "max_activation": 2.0, "vs_best_exemplar": 2.0,
+             "rank": 1, "channels": 4, "robustness": {"n": 8, "mean": 1.9, "std": 0.1, "relative": 0.95},
+             "parity": {"reached": True, "step": steps - 16, "synthesised": 1.9, "exemplar": 1.5}}]}
+        card, detail, _ = _synth_payload(tmp_path, rec, (32, 0.01), (margin, 128))
+        im = detail["images"][0]
+        assert im["converged"] is want, (steps, margin)
+        assert ("did not converge" in im["doubts"]) == (want is False), (steps, margin)
+        assert im["checks"] == (3 if want is None else 4) and card["trust"] == (1.0 if want is None else 0.75)
+
+
 def test_hostile_names_are_text_everywhere(tiny, tmp_path):
     run = fake_run(tmp_path / "run", layer=HOSTILE_LAYER, units=3, k=2, images=8, synth=False)
     atlas = render_atlas(run).parent
@@ -433,7 +458,7 @@ def test_unit_view_deep_link_keys_and_hostile_exemplar(tiny, browser, shots):
 
 
 def test_firing_share_and_class_selectivity_carry_information(tiny):
-    from unitlens.atlas.data import FIRE_QUANTILE
+    from unitlens.summary import FIRE_QUANTILE
 
     for layer in ("3", "6"):
         c = _units_data(tiny.atlas, layer)
@@ -609,7 +634,8 @@ def test_synthesis_doubts_follow_the_evidence(doubtful):
     c = _units_data(doubtful.atlas, "layer4")
     assert c["doubts"][0] == [] and c["trust"][0] == 1
     assert c["doubts"][1] == ["did not converge"]
-    assert c["doubts"][2] == ["rank 3 on its own image"] and c["own_rank"][2] == 3
+    assert c["doubts"][2] == ["rank 3 on its own image: 2 other channels of the layer reach more on it (raw values)"]
+    assert c["own_rank"][2] == 3
     assert set(c["doubts"][3]) == {"below the best natural exemplar", "loses most of its effect under small warps"}
     assert c["trust"][3] == 0.5 and c["robust"][3] == pytest.approx(0.33)
 

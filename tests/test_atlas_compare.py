@@ -18,7 +18,7 @@ from PIL import Image
 
 from conftest import ROOT, TESTS, run_cli
 from nets import digits_net
-from test_atlas import FORBIDDEN, _clean
+from test_atlas import FORBIDDEN, _clean, _text
 from unitlens import CompareConfig, MineConfig, UnitlensError, compare, load_model, mine, open_corpus, parse_layers, render_atlas
 from unitlens.atlas.comparison_data import SHOW, THUMB
 from unitlens.atlas.comparison_page import render_comparison
@@ -162,6 +162,28 @@ def test_atlas_command_redraws_a_comparison_and_refuses_what_is_not_one(cmp, tmp
         render_atlas(folder, layers=["6"])
     with pytest.raises(UnitlensError, match="holds no comparison"):
         render_comparison(tmp_path)
+
+
+def test_strip_paths_leaves_no_absolute_path_in_the_comparison_pages(cmp):
+    import sys
+
+    from test_atlas import _path_leaks
+
+    roots = [str(cmp.d), str(TESTS), str(ROOT), sys.prefix, "/tmp/"]
+    for kind, folder in cmp.folders.items():
+        assert _path_leaks(folder / "atlas", roots), kind  # the check can see a leak
+        index = run_cli("atlas", folder, "--strip-paths").stdout.strip()
+        assert _path_leaks(folder / "atlas", roots) == [], kind
+        assert "nets.py:digits_net" in _text(Path(index).read_text())  # the models are still named, as files
+        render_comparison(folder)  # a later redraw keeps the choice
+        assert _path_leaks(folder / "atlas", roots) == [], kind
+        render_comparison(folder, strip_paths=False)
+        assert _path_leaks(folder / "atlas", roots), kind
+    out = cmp.d / "models-shared"  # compare's own option draws the pages stripped at once
+    run_cli("compare", SPEC, SPEC, "--weights-a", cmp.d / "base.pth", "--weights-b", cmp.d / "tuned.pth", "--size", 32,
+            "--corpus", cmp.d / "corpus", "--layers", "3", "--out", out, "--bootstrap", 0, "--workers", 0, "--strip-paths")
+    assert _path_leaks(out / "atlas", roots) == []
+    assert str(cmp.d) in (out / "compare.json").read_text()  # the folder's own record keeps them: the pages are redrawn from it
 
 
 def test_runs_named_by_relative_paths_are_found_again(cmp, tmp_path, monkeypatch):

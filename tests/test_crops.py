@@ -94,7 +94,12 @@ def _mined(tmp_path, fmt):
 
 def _reference_sheets(run, model, corpus, layer, thumb):
     """Each crop cut on its own with PIL from decode_original, the way the sheet layout documents:
-    the decode of an image for a sheet is as large as its smallest box there needs to fill a cell."""
+    the decode of an image for a sheet is as large as its smallest box there needs to fill a cell,
+    and the cell shows the index's stored view, checked here to hold the field and at least
+    CONTEXT original pixels a side (the whole side of a smaller image), centred on the field
+    unless an image edge is in the way."""
+    from unitlens.crops import CONTEXT
+
     import functools
 
     from unitlens.corpus import decode_original, placement
@@ -117,7 +122,12 @@ def _reference_sheets(run, model, corpus, layer, thumb):
         s = u // SHEET_ROWS
         img, (W, H), (rx, ry) = decode(corpus.path(i), size=int(np.ceil(thumb * size / smallest[s, i])))
         box = placement(W, H, size).to_original(b)
-        x0, y0, x1, y1 = (box[0] * rx, box[1] * ry, box[2] * rx, box[3] * ry)
+        view = tuple(int(v) for v in idx[f"{kind}_view"][u, r])
+        for lo, hi, vlo, vhi, limit in ((box[0], box[2], view[0], view[2], W), (box[1], box[3], view[1], view[3], H)):
+            assert 0 <= vlo <= lo and hi <= vhi <= limit  # holds the field, inside the image
+            assert vhi - vlo == max(hi - lo, min(CONTEXT, limit))  # the stated least context, no more
+            assert vlo in (0, limit - (vhi - vlo)) or abs((vlo + vhi) - (lo + hi)) <= 1  # centred unless at an edge
+        x0, y0, x1, y1 = (view[0] * rx, view[1] * ry, view[2] * rx, view[3] * ry)
         crop = img.crop((x0, y0, max(x1, x0 + 1), max(y1, y0 + 1)))
         f = thumb / max(crop.size)
         w, h = max(1, round(crop.width * f)), max(1, round(crop.height * f))

@@ -59,3 +59,22 @@ def test_show_prints_a_unit_that_was_synthesised_but_not_mined(run):
     assert s["stats"] is None and s["exemplars"] is None and len(s["synth"]) == 1
     r = run_cli("show", str(run), "block2:1", check=False)  # neither mined nor synthesised
     assert r.returncode == 1 and "has not been mined" in r.stderr
+
+
+def test_show_fires_by_the_layers_percentile_and_says_so(run):
+    """show's firing share uses the atlas's threshold (the layer's pooled 90th percentile of per-image
+    maxima), checked by brute force on the raw per-image maxima mining keeps; text and JSON state it."""
+    import numpy as np
+
+    values = np.load(run / "mine" / "block1" / "values.npy").astype(np.float64)  # (N, U) per-image maxima
+    for channel in (0, 1):
+        s = json.loads(run_cli("show", str(run), f"block1:{channel}", "--json").stdout)
+        st = s["stats"]
+        t = st["fire_threshold"]
+        assert st["fire_quantile"] == 0.9 and st["fire_units"] == values.shape[1]
+        assert np.mean(values >= t) <= 0.1 + 1e-9  # pooled: at most a tenth of all maxima reach it
+        assert np.mean(values >= np.nextafter(np.float32(t), -np.inf)) > 0  # and some do
+        assert st["fire_rate"] == pytest.approx(np.mean(values[:, channel] >= np.float32(t)), abs=1e-9)
+        text = run_cli("show", str(run), f"block1:{channel}").stdout
+        assert f"fires (max >= {t:.3g}, the 90th percentile" in text
+        assert f"on {100 * st['fire_rate']:.1f}% of images" in text and "max > 0" not in text

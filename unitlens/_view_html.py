@@ -14,6 +14,7 @@ from functools import lru_cache
 from importlib import resources
 
 from .atlas.html import Html, facts_list, join, tag
+from .summary import fires_label
 
 SHOW_TOP = 16  # exemplars drawn per unit; the rest are counted
 SHOW_NEGATIVE = 8
@@ -177,7 +178,7 @@ def _unit_body(u) -> Html:
         ("images", f"{st['images']:,}"),
         ("per-image max", (f"mean {_num(st['mean_max'])}, std {_num(st['std_max'])}, "
                            f"range {_num(st['min'])} .. {_num(st['max'])}")),
-        ("fires (max > 0)", f"{100 * st['fire_rate']:.1f}% of images" if st["fire_rate"] is not None else None),
+        (fires_label(st), f"{100 * st['fire_rate']:.1f}% of images" if st["fire_rate"] is not None else None),
         ("class selectivity", _num(st["class_selectivity"], ".3f") if st["class_selectivity"] is not None else None),
     ])
     synth = [_synth(s) for s in u.synthesised]

@@ -333,6 +333,7 @@ def compare_cmd(
     std: Optional[str] = typer.Option(None, "--std", help="Normalisation std of both models, R,G,B."),
     arch_option: Optional[list[str]] = typer.Option(None, "--arch-option", metavar="KEY=VALUE", help="Constructor option for torchvision models, key=value, for both models (repeatable)."),
     allow_pickle: bool = AllowPickle, as_json: bool = Json, device: str = Device,
+    strip_paths: Optional[bool] = StripPaths,
 ):
     """Compare two checkpoints (or two mined runs) on one corpus: CKA per layer, drift per unit."""
     from . import CompareConfig, compare
@@ -343,14 +344,14 @@ def compare_cmd(
                      "--std": std, "--arch-option": arch_option}
     if _is_run(a, model_options) | _is_run(b, model_options):  # both checked: each may be a run folder
         s = compare(a, b, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
-                    progress=sys.stderr.isatty(), allow_pickle=allow_pickle)
+                    progress=sys.stderr.isatty(), allow_pickle=allow_pickle, strip_paths=strip_paths)
     else:
         if out is None:
             usage("Comparing two models writes a folder: give --out DIR.")
         ma = place(_load(a, weights_a, size, mean, std, allow_pickle, arch_option), device)
         mb = place(_load(b, weights_b, size, mean, std, allow_pickle, arch_option), device)
         s = compare(ma, mb, corpus=corpus, layers=layers, layers_b=layers_b, out=out, config=config,
-                    progress=sys.stderr.isatty())
+                    progress=sys.stderr.isatty(), strip_paths=strip_paths)
     if as_json:
         print(json.dumps(s, indent=1))
         return

@@ -509,7 +509,8 @@ def _check(cfg: CompareConfig) -> None:
 
 
 def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: CompareConfig = CompareConfig(),
-            progress: bool = False, allow_pickle: bool = False, atlas: bool = True) -> Comparison:
+            progress: bool = False, allow_pickle: bool = False, atlas: bool = True,
+            strip_paths: bool | None = None) -> Comparison:
     """Compare A with B layer by layer and unit by unit; return the summary (see the module doc), a
     dict with tables and views for notebooks (runview.Comparison).
 
@@ -519,7 +520,8 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
     manifests, said on stderr and listed in `recomputed`; `allow_pickle` lets a run's pickled model
     be reloaded for that). With `out` (for runs by default RUN_A/compare/<RUN_B name>) it writes
     compare.json, cka_matrix.csv, units_<layer>.csv and corpus.json there, and with `atlas` its pages
-    in OUT/atlas/ (the summary's `atlas` is then the path of their index.html).
+    in OUT/atlas/ (the summary's `atlas` is then the path of their index.html; `strip_paths`: drawn
+    without absolute paths, see render_comparison).
 
     >>> s = compare(load_model(spec, "base.pth"), load_model(spec, "tuned.pth"),
     ...             corpus="probe/", layers=["layer3,layer4"], out="cmp")    # doctest: +SKIP
@@ -553,7 +555,7 @@ def compare(a, b, *, corpus=None, layers=None, layers_b=None, out=None, config: 
         if atlas:
             from .atlas.render import draw_comparison
 
-            summary["atlas"] = str(draw_comparison(out))
+            summary["atlas"] = str(draw_comparison(out, strip_paths))
     return Comparison(summary)
 
 

@@ -4,6 +4,10 @@ Crops are packed into sprite sheets, one JPEG per SHEET_ROWS units of a layer, s
 layer with 16 exemplars is 64 files, not 32k. Cell (row, col) of sheet s holds unit number
 s * SHEET_ROWS + row (position in the layer's unit list); columns 0..K-1 are the top exemplars
 by rank, columns K..2K-1 the bottom ones (present when the layer goes negative).
+
+A cell shows the field with context: at least CONTEXT original pixels along each side (the whole
+side when the image is smaller), centred on the field. The index keeps both boxes: `top_box` the
+field, `top_view` what the cell shows (original pixels), so a page can outline the field.
 """
 from __future__ import annotations
 
@@ -19,6 +23,7 @@ from .errors import UnitlensWarning, shown
 from .store import write_npz
 
 SHEET_ROWS = 32
+CONTEXT = 32  # original pixels a crop shows at least along each side: a 3-9 px field alone is an unreadable blur
 PAD_VALUE = 128  # neutral grey around crops that are not square
 # Sheet pixels held at once: 32 default sheets (1,024 units, 16 exemplars each way, 96 px crops) fit.
 # Originals that feed several groups are decoded once per group.
@@ -38,6 +43,30 @@ def input_box(field, y: int, x: int, size) -> tuple[float, float, float, float]:
     return (float(max(x0, 0)), float(max(y0, 0)), float(min(x1, f.width)), float(min(y1, f.height)))
 
 
+def context_box(box, width: int, height: int, minimum: int) -> tuple[int, int, int, int]:
+    """The box a crop shows for the field `box` (x0, y0, x1, y1 in original pixels, x1/y1 exclusive):
+    each side widened to at least `minimum` pixels (at most the image's side), around the field's
+    centre, then shifted to lie inside the image. It always contains `box`."""
+    out = []
+    for lo, hi, limit in ((box[0], box[2], width), (box[1], box[3], height)):
+        side = max(hi - lo, min(minimum, limit))
+        start = (lo + hi - side) // 2  # floor: never right of lo, and start + side >= hi
+        out.append((min(max(start, 0), limit - side), side))
+    (x0, w), (y0, h) = out
+    return (x0, y0, x0 + w, y0 + h)
+
+
+def outline_in_cell(box, view, thumb: int) -> list[float]:
+    """Where the field `box` lies in the cell cut from `view` (both in original pixels), as fractions
+    (x0, y0, x1, y1) of the cell's side: _cell scales the view to fit and centres it."""
+    w, h = max(view[2] - view[0], 1), max(view[3] - view[1], 1)
+    s = thumb / max(w, h)
+    cw, ch = max(1, round(w * s)), max(1, round(h * s))
+    ox, oy = (thumb - cw) // 2, (thumb - ch) // 2
+    return [round((ox + (box[0] - view[0]) * cw / w) / thumb, 4), round((oy + (box[1] - view[1]) * ch / h) / thumb, 4),
+            round((ox + (box[2] - view[0]) * cw / w) / thumb, 4), round((oy + (box[3] - view[1]) * ch / h) / thumb, 4)]
+
+
 def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
     x0, y0, x1, y1 = box
     crop = img.crop((x0, y0, max(x1, x0 + 1), max(y1, y0 + 1)))
@@ -49,35 +78,39 @@ def _cell(img: Image.Image, box, thumb: int) -> np.ndarray:
     return np.asarray(canvas)
 
 
-def image_cells(path: Path, entries, size, thumb: int):
+def image_cells(path: Path, entries, size, thumb: int, context: int = 0):
     """Decode one image and cut every cell it is needed for. entries: [(input-pixel box, need)],
-    where `need` is the decode size (see _plan) the entry's sheet asks of this image.
+    where `need` is the decode size (see _plan) the entry's sheet asks of this image; `context`:
+    the least the cell shows around the field (see context_box), 0 for the field alone.
 
     JPEG draft decoding shrinks by 1, 2, 4 or 8 depending on the size asked for, and a smaller
     draft gives different pixels, so entries are grouped by the draft their `need` selects and the
     image is decoded once per group: once in all for formats without drafts, and in practice once
-    for a JPEG unless its crops differ a lot in size. Returns (boxes, cells, reason)."""
+    for a JPEG unless its crops differ a lot in size. Returns (boxes, views, cells, reason): the
+    fields and what the cells show, in original pixels."""
     from .corpus import ImageProblem, as_frame, decode_original, placement
 
     grey = as_frame(size).channels == 1  # a grey model's crops show what it saw, not the file's colours
     needs = sorted({n for *_, n in entries})
     key = {n: n for n in needs} if len(needs) == 1 else _draft_sizes(path, needs)
     boxes: list = [None] * len(entries)
+    views: list = [None] * len(entries)
     cells: list = [None] * len(entries)
     for k in dict.fromkeys(key.values()):
         group = [j for j, (*_, n) in enumerate(entries) if key[n] == k]
         try:
             img, (W, H), (rx, ry) = decode_original(path, size=max(entries[j][1] for j in group))
         except ImageProblem as e:
-            return None, None, e.reason
+            return None, None, None, e.reason
         if grey:
             img = img.convert("L").convert("RGB")
         place = placement(W, H, size)
         for j in group:
             b = place.to_original(entries[j][0])
-            boxes[j] = b
-            cells[j] = _cell(img, (b[0] * rx, b[1] * ry, b[2] * rx, b[3] * ry), thumb)
-    return boxes, cells, None
+            v = context_box(b, W, H, context) if context else b
+            boxes[j], views[j] = b, v
+            cells[j] = _cell(img, (v[0] * rx, v[1] * ry, v[2] * rx, v[3] * ry), thumb)
+    return boxes, views, cells, None
 
 
 def _draft_sizes(path: Path, needs) -> dict:
@@ -147,7 +180,8 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
         U, K = idx["top_image"].shape
         n_sheets = (U + SHEET_ROWS - 1) // SHEET_ROWS
         plans.append(dict(layer=lu.layer, idx=idx, cols=cols, wanted=wanted, left=n_sheets,
-                          boxes={k: np.full((U, K, 4), -1, dtype=np.int64) for k, _ in kinds}))
+                          boxes={k: np.full((U, K, 4), -1, dtype=np.int64) for k, _ in kinds},
+                          views={k: np.full((U, K, 4), -1, dtype=np.int64) for k, _ in kinds}))
         sheets += [(len(plans) - 1, s, min(SHEET_ROWS, U - s * SHEET_ROWS)) for s in range(n_sheets)]
         if n_sheets == 0:  # no units: an index without crops, as for any layer
             _write_index(run, plans[-1], thumb)
@@ -163,18 +197,19 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
                 for i, es in plans[p]["wanted"].get(s, {}).items():
                     by_image.setdefault(i, []).extend((p, s, *e) for e in es)
             items = sorted(by_image.items())
-            results = pool.map(lambda it: image_cells(corpus.path(it[0]), [e[-2:] for e in it[1]], size, thumb),
-                               items)
-            for (i, todo), (bxs, cells, err) in zip(items, results):
+            results = pool.map(lambda it: image_cells(corpus.path(it[0]), [e[-2:] for e in it[1]], size, thumb,
+                                                      CONTEXT), items)
+            for (i, todo), (bxs, vws, cells, err) in zip(items, results):
                 if err is not None:
                     if i not in failed:
                         warnings.warn(f"no crop from {shown(corpus.files[i])}: {err}", UnitlensWarning, stacklevel=2)
                         failed.add(i)
                     continue
-                for (p, s, u, col, kind, r, _b, _n), box, cell in zip(todo, bxs, cells):
+                for (p, s, u, col, kind, r, _b, _n), box, view, cell in zip(todo, bxs, vws, cells):
                     row = u - s * SHEET_ROWS
                     arrays[p, s][row * thumb:(row + 1) * thumb, col * thumb:(col + 1) * thumb] = cell
                     plans[p]["boxes"][kind][u, r] = box
+                    plans[p]["views"][kind][u, r] = view
             for (p, s), sheet in arrays.items():
                 Image.fromarray(sheet).save(run.layer_dir(plans[p]["layer"]) / f"sheet-{s:03d}.jpg", quality=88)
                 plans[p]["left"] -= 1
@@ -190,7 +225,9 @@ def cut_exemplars(run, model, corpus, layers, thumb: int, progress: bool = False
 def _write_index(run, pl: dict, thumb: int) -> None:
     idx = pl["idx"]
     idx.update({f"{k}_box": b for k, b in pl["boxes"].items()})
-    idx.update(sheet_rows=np.array(SHEET_ROWS), sheet_cols=np.array(pl["cols"]), thumb=np.array(thumb))
+    idx.update({f"{k}_view": b for k, b in pl["views"].items()})
+    idx.update(sheet_rows=np.array(SHEET_ROWS), sheet_cols=np.array(pl["cols"]), thumb=np.array(thumb),
+               context=np.array(CONTEXT))
     write_npz(run.layer_dir(pl["layer"]) / "index.npz", **idx)
 
 

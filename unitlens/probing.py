@@ -40,6 +40,7 @@ from PIL import Image
 from .errors import UnitlensError
 from .runview import Probed
 from .store import Run, atomic_write, safe_name, write_json, write_npz
+from .summary import fires_label
 
 METHODS = {"ig": "integrated-gradients", "gxi": "gradient-x-input", "smoothgrad": "smoothgrad"}
 BASELINES = ("black", "blur")
@@ -290,7 +291,7 @@ def _exemplar_files(model, run: Run, layer: str, channel: int, exemplars: list[d
         y, x = e["position"]
         box_in = input_box(info.field, y, x, size)
         need = int(math.ceil(config.thumb * size.side / max(1.0, min(box_in[2] - box_in[0], box_in[3] - box_in[1]))))
-        boxes, cells, err = image_cells(Path(e["image"]), [(box_in, need)], size, config.thumb)
+        boxes, _views, cells, err = image_cells(Path(e["image"]), [(box_in, need)], size, config.thumb)
         if err is not None:
             e["crop"] = None
             e["problem"] = f"no crop: {err}"
@@ -383,8 +384,9 @@ def probe_image(source, image: str | Path, layer: str, top: int = 10, *, allow_p
 
 def probe_text(s: dict) -> str:
     st = s["stats"]
-    lines = [f"{s['layer']} channel {s['unit']} of {s['model']}  ({st['images']} images; fires on "
-             f"{100 * (st['fire_rate'] or 0):.1f}%; per-image max mean {st['mean_max']:.4g})",
+    lines = [f"{s['layer']} channel {s['unit']} of {s['model']}  ({st['images']} images; per-image max mean "
+             f"{st['mean_max']:.4g})",
+             f" {fires_label(st)} on {100 * (st['fire_rate'] or 0):.1f}% of images",
              f" {'rank':>4} {'score':>10}  {'box (x0, y0, x1, y1)':<24} image"]
     for e in s["exemplars"]:
         label = f"  [{e['label']}]" if e.get("label") else ""

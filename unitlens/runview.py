@@ -314,23 +314,24 @@ class RunView:
         """One row per mined unit of `layer`: unit, peak, mean (of per-image maxima), fire_rate,
         class_selectivity, synthesised (images), ratio (best synthesised / best natural), and parity
         where the synthesised images carry one. The numbers are summary.unit_stats', as in `show --json`."""
-        from .summary import unit_stats
-        from .synth.results import layer_images
+        from .summary import layer_firing, unit_stats
+        from .synth.results import layer_images, parity_share
 
         idx = self.folder.index(layer)
         classes = self.corpus.get("classes") or []
         synth = layer_images(self.folder, layer)
+        firing = layer_firing(idx)  # one threshold for the layer, computed once
         rows = []
         for u, ch in enumerate(int(c) for c in idx["units"]):
-            st = unit_stats(idx, u, classes)
+            st = unit_stats(idx, u, classes, firing)
             ims = synth.get(ch, [])
             ratios = [r["vs_best_exemplar"] for r in ims if r.get("vs_best_exemplar") is not None]
             row = {"unit": ch, "peak": st["max"], "mean": st["mean_max"], "fire_rate": st["fire_rate"],
                    "class_selectivity": st["class_selectivity"], "synthesised": len(ims),
                    "ratio": max(ratios) if ratios else None}
-            parity = [r["parity"] for r in ims if r.get("parity")]  # {"reached", "step", ...} per image
-            if parity:  # the share of the unit's images that reach their best natural exemplar
-                row["parity"] = sum(bool(p.get("reached")) for p in parity) / len(parity)
+            share = parity_share(ims)  # the share of the unit's images that reach their best natural exemplar
+            if share is not None:
+                row["parity"] = share
             rows.append(row)
         return Table(rows, title=f"{self.path.name} / {layer}")
 

@@ -93,7 +93,7 @@ def summary_text(s: dict, layer: str, channel: int) -> str:
         lines = [f"{shown(layer)} channel {channel}  ({st['images']} images)",
                  f"  per-image max: mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, range {st['min']:.4g} .. "
                  f"{st['max']:.4g}",
-                 f"  fires (max > 0) on {100 * st['fire_rate']:.1f}% of images{sel}"]
+                 f"  {fires_label(st)} on {100 * st['fire_rate']:.1f}% of images{sel}"]
     for title, key in (("top exemplars", "exemplars"), ("most negative", "negative_exemplars")):
         if not s.get(key):
             continue
@@ -111,15 +111,56 @@ def summary_text(s: dict, layer: str, channel: int) -> str:
     return "\n".join(lines)
 
 
-def unit_stats(idx: dict, u: int, classes: list[str]) -> dict:
-    """The statistics of the unit at place `u` of a layer index (also the rows of a layer table)."""
+FIRE_QUANTILE = 0.9  # a unit "fires" on an image when its maximum there reaches the layer's 90th percentile
+
+
+def fire_rates(hist: np.ndarray, edges: np.ndarray, q: float = FIRE_QUANTILE) -> tuple[float, np.ndarray]:
+    """(t, per-unit share of images whose per-image maximum is >= t).
+
+    hist (U, J) counts of the per-image maxima on fixed bins, edges (J + 1,). t is the lowest bin
+    edge with at most 1 - q of the layer's per-image maxima (all units pooled) at or above it:
+    "max > 0" says nothing on a layer whose units are positive on every image, and a threshold
+    on a bin edge makes each share exact, read off the counts.
+    """
+    h = np.asarray(hist, dtype=np.float64)  # (U, J)
+    tail = np.append(np.cumsum(h.sum(0)[::-1])[::-1], 0.0)  # (J + 1,): pooled count at or above each edge
+    j = int(np.argmax(tail <= (1 - q) * tail[0]))
+    n = h.sum(1)
+    return float(edges[j]), np.where(n > 0, h[:, j:].sum(1) / np.maximum(n, 1), np.nan)
+
+
+def layer_firing(idx: dict) -> dict:
+    """How often each unit of a layer index fires, by the one definition every view uses:
+    {"threshold", "quantile", "units" (pooled), "rates" (U,)}. An index without histograms (older
+    runs) has only mining's count of maxima above 0: threshold 0.0, quantile None."""
+    if "hist" in idx:
+        t, rates = fire_rates(idx["hist"], idx["hist_edges"])
+        return {"threshold": t, "quantile": FIRE_QUANTILE, "units": len(rates), "rates": rates}
+    return {"threshold": 0.0, "quantile": None, "units": len(idx["fire_rate"]), "rates": np.asarray(idx["fire_rate"])}
+
+
+def fires_label(st: dict) -> str:
+    """What "fires" means for the numbers of unit_stats, e.g. "fires (max >= 0.41, the 90th percentile of
+    the layer's 64 units)"; every view that prints the rate prints this beside it."""
+    if st.get("fire_quantile") is None:
+        return "fires (max > 0)"
+    n = st.get("fire_units")
+    return (f"fires (max >= {st['fire_threshold']:.3g}, the {round(100 * st['fire_quantile'])}th percentile of per-image "
+            f"maxima over the layer's {n} mined unit{'s' if n != 1 else ''})")
+
+
+def unit_stats(idx: dict, u: int, classes: list[str], firing: dict | None = None) -> dict:
+    """The statistics of the unit at place `u` of a layer index (also the rows of a layer table).
+    `firing`: layer_firing(idx), when the caller asks for many units of one layer."""
+    firing = firing or layer_firing(idx)
     class_mean = idx["class_mean"][:, u] if len(classes) else []
     return {
         "images": int(idx["count"]),
         "mean_max": finite_or_none(idx["mean_max"][u]),
         "std_max": finite_or_none(idx["std_max"][u]),
         "mean_mean": finite_or_none(idx["mean_mean"][u]),
-        "fire_rate": finite_or_none(idx["fire_rate"][u]),
+        "fire_rate": finite_or_none(firing["rates"][u]),
+        "fire_threshold": firing["threshold"], "fire_quantile": firing["quantile"], "fire_units": firing["units"],
         "min": finite_or_none(idx["low"][u]),
         "max": finite_or_none(idx["high"][u]),
         "class_selectivity": finite_or_none(idx["csi"][u]) if len(classes) >= 2 else None,

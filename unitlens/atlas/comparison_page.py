@@ -23,8 +23,9 @@ from ..errors import UnitlensError
 from ..store import read_json, safe_name
 from .comparison_data import THUMB, find_sides, image_ids, make_thumbs, pair_data, rel_url, wanted_thumbs
 from .html import Html, esc, facts_list, join, js_data, page, settings_table, tag, weights_cell
-from .files import place_all, write_if_changed
+from .files import STATE, place_all, write_if_changed
 from .paths import model_name
+from .paths import strip_paths as _strip
 
 STATIC = ("atlas.css", "compare.css", "plots.js", "compare.js", "icon.png")
 CAUTION = ("CKA summarises a layer in one number: it can move while the network's function barely changes, "
@@ -307,8 +308,12 @@ def pair_page(summary: dict, e: dict, sides: dict, folder_name: str, data_js: st
 
 # -- the folder --------------------------------------------------------------------------------
 
-def render_comparison(folder: str | os.PathLike) -> Path:
+def render_comparison(folder: str | os.PathLike, strip_paths: bool | None = None) -> Path:
     """Draw the pages of a comparison folder into FOLDER/atlas/; returns the path of its index.html.
+
+    `strip_paths`: cut every absolute path on the pages and in their data to its last part (as for a
+    run's atlas); None keeps the choice the pages were last drawn with. compare.json keeps its paths:
+    the pages are redrawn from it and find the runs by them.
 
     >>> render_comparison("runs/base/compare/tuned")      # doctest: +SKIP
     PosixPath('runs/base/compare/tuned/atlas/index.html')
@@ -322,7 +327,12 @@ def render_comparison(folder: str | os.PathLike) -> Path:
     out.mkdir(parents=True, exist_ok=True)
     for name in STATIC:
         write_if_changed(out / name, resources.files(__package__).joinpath("static", name).read_bytes())
-    sides = find_sides(summary, folder, out)
+    share = bool((read_json(out / STATE) or {}).get("strip_paths")) if strip_paths is None else strip_paths
+    sides = find_sides(summary, folder, out)  # from the paths as recorded
+    shown = _strip(summary) if share else summary  # what the pages say
+    if share:
+        for side in sides.values():
+            side.note = _strip(side.note)
     corpus = read_json(folder / "corpus.json")
     names = _page_names(summary["layers"])
     payloads, places = [], {}
@@ -349,21 +359,25 @@ def render_comparison(folder: str | os.PathLike) -> Path:
         used = {x[0] for u in payload["units"] for k in ("a", "b") for x in u[f"ex_{k}"] if x[1] < 0}
         payload["thumbs"] = {"dir": thumbs, "have": sorted(used & have), "size": THUMB}
         payload["ids"] = image_ids(corpus, payload)
+        if share:
+            payload, e = _strip(payload), _strip(e)
         data_js = f"data/{name}.js"
         write_if_changed(out / data_js, js_data("UNITLENS_PAIR", payload).encode())
         write_if_changed(out / f"{name}.html",
-                          pair_page(summary, e, sides, folder.resolve().name, data_js, names, name,
+                         pair_page(shown, e, sides, folder.resolve().name, data_js, names, name,
                                     any(v["sheets"] for v in payload["sides"].values())).encode())
         keep |= {f"{name}.html", f"{name}.js"}
     for f in [*out.glob("pair-*.html"), *(out / "data").glob("*.js")]:
         if f.name not in keep:  # pages of layer pairs this comparison no longer has
             f.unlink()
-    write_if_changed(out / "index.html", index_page(summary, sides, names, folder.resolve().name, out).encode())
+    write_if_changed(out / "index.html", index_page(shown, sides, names, folder.resolve().name, out).encode())
+    write_if_changed(out / STATE, json.dumps({"strip_paths": share}).encode())
     return out / "index.html"
 
 
-def comparisons_section(run_path: Path, atlas: Path) -> Html:
-    """The part of a run's atlas index that lists the comparisons under RUN/compare/ ('' if none)."""
+def comparisons_section(run_path: Path, atlas: Path, share: bool = False) -> Html:
+    """The part of a run's atlas index that lists the comparisons under RUN/compare/ ('' if none);
+    `share`: the run's atlas is drawn without absolute paths."""
     rows = []
     for cmp in sorted((run_path / "compare").glob("*/compare.json")) if (run_path / "compare").is_dir() else ():
         try:
@@ -375,7 +389,8 @@ def comparisons_section(run_path: Path, atlas: Path) -> Html:
         index = cmp.parent / "atlas" / "index.html"
         name = cmp.parent.name
         link = tag("a", name, href=rel_url(index, atlas)) if index.is_file() else join(
-            [esc(name), tag("span", f" (no pages yet: unitlens atlas {cmp.parent})", class_="note")])
+            [esc(name), tag("span", f" (no pages yet: unitlens atlas {_strip(str(cmp.parent)) if share else cmp.parent})",
+                            class_="note")])
         b = s.get("b") or {}
         other = Path(str(b.get("run"))).name if b.get("source") == "run" else model_name((b.get("model") or {}).get("spec", "?"))
         cka = ", ".join(f"{e['layer']} {cka_text(e['cka'])}" for e in s.get("layers", [])[:8])

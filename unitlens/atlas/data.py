@@ -4,8 +4,10 @@ Two payloads per layer, so a large layer page becomes usable before its details 
   cards    everything a unit card needs: ids, key numbers, a re-binned histogram, the first
            synthesised image. Crops need no data: their place in the sprite sheet follows from
            the unit's position in the layer list and the exemplar's rank (see crops.py).
-  details  what the unit view adds: every exemplar's file, score and box, class means, the
-           evidence stored beside each synthesised image and its (thinned) optimisation trace.
+  details  what the unit view adds: every exemplar's file, score, box and where the box lies in
+           its crop, class means, the evidence stored beside each synthesised image and its
+           (thinned) optimisation trace, and the cells of the whole-image sheets (whole-NNN.jpg:
+           each top exemplar's original, letterboxed, for the view of the whole image with its box).
 Reads the run folder only (mine/<layer>/index.npz, corpus.json, synth/<layer>/units.json and
 the traces); never touches the model.
 """
@@ -18,13 +20,16 @@ from pathlib import Path
 import numpy as np
 
 from ..store import Run, read_json, read_npz
+from ..summary import layer_firing
 
 HIST_BINS = 24  # linear bins of the re-binned histogram (cards and unit view)
 TRACE_POINTS = 96  # at most this many points of an optimisation trace reach the page
 FACET_COSINE = 0.5  # facets count as different things when their centres' cosine in the layer's embedding is below this
 FACET_THUMB = 48  # whole-image thumbnails of facet members that have no kept crop
 FACET_SHOWN = 4  # such thumbnails per facet
-FIRE_QUANTILE = 0.9  # a unit "fires" on an image when its maximum there reaches the layer's 90th percentile
+WHOLE = 160  # px, longest side of a whole-image thumbnail in the unit view
+WHOLE_COLS, WHOLE_ROWS = 16, 16  # cells per whole-image sheet: 2560 px square at most
+WHOLE_MAX = 4096  # whole images per layer, rank 1 of every unit first: bounds the atlas's decoding
 
 
 def _f(x, digits: int = 4):
@@ -86,6 +91,7 @@ class LayerData:
     sheets: list[Path] = field(default_factory=list)  # sprite sheets to place in the atlas
     images: list[Path] = field(default_factory=list)  # synthesised PNGs to place in the atlas
     facet_thumbs: list[Path] = field(default_factory=list)  # originals of the cells of the facet sheet, in order
+    whole: list[Path] = field(default_factory=list)  # originals of the cells of the whole-image sheets, in order
 
     @property
     def units(self) -> int:
@@ -120,7 +126,8 @@ def _thin(trace: np.ndarray) -> dict:
 def _doubts(im: dict, converged: bool | None) -> tuple[list[str], int]:
     """What speaks against trusting one synthesised image, and how many checks could be judged.
 
-    Checks: the optimisation converged (its own early-stop test on the finished trace), parity
+    Checks: the optimisation converged (its own early-stop test on the finished trace; not judged
+    for an image the loop stopped on purpose at parity, which is still rising by design), parity
     (the synthesis's own field when it wrote one, else a spatial maximum at least the best natural
     exemplar's), rank 1 among the layer's channels on its own image, and keeping at least half of
     its effect under random warps."""
@@ -133,16 +140,21 @@ def _doubts(im: dict, converged: bool | None) -> tuple[list[str], int]:
         parity = im["ratio"] >= 1
     rob = (im.get("robustness") or {}).get("relative")
     checks = [(converged, "did not converge"), (parity, "below the best natural exemplar"),
-              (None if im.get("rank") is None else im["rank"] == 1, f"rank {im.get('rank')} on its own image"),
+              (None if im.get("rank") is None else im["rank"] == 1,
+               f"rank {im.get('rank')} on its own image: {(im.get('rank') or 2) - 1} other channel"
+               f"{'s' if (im.get('rank') or 2) > 2 else ''} of the layer reach more on it (raw values)"),
               (None if rob is None else rob >= 0.5, "loses most of its effect under small warps")]
     return [why for ok, why in checks if ok is False], sum(ok is not None for ok, _ in checks)
 
 
-def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.01)) -> tuple[dict, dict, list[Path]]:
+def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.01),
+                   parity_stop: tuple[float | None, int | None] = (None, None)) -> tuple[dict, dict, list[Path]]:
     """Card part, detail part and image files of one synthesised unit (names within the layer's image folder).
 
-    `stop`: the run's early-stop window and gain, which also say whether a finished image converged."""
-    from ..synth.results import stalled
+    `stop`: the run's early-stop window and gain, which also say whether a finished image converged;
+    `parity_stop`: the run's stop_at_parity margin and step limit, which say whether the loop stopped
+    an image on purpose at parity (its convergence is then not judged)."""
+    from ..synth.results import parity_share, stalled
 
     tr = None
     tname = Path(str(rec.get("trace", ""))).name
@@ -173,15 +185,20 @@ def _synth_payload(d: Path, rec: dict, stop: tuple[int, float | None] = (32, 0.0
         row = tr[m][np.isfinite(tr[m])] if tr is not None and m < len(tr) else None
         window, gain = stop
         judged = row is not None and len(row) >= 2 * window
-        images[-1]["converged"] = bool(stalled(row.tolist(), window, gain or 0.01)) if judged else None
+        converged = bool(stalled(row.tolist(), window, gain or 0.01)) if judged else None
+        margin, limit = parity_stop
+        # stopped early, once past parity, by the loop's own rule: still rising by design, not a failure
+        at_parity = margin is not None and (im.get("parity") or {}).get("step") is not None \
+            and limit is not None and (im.get("steps") or limit) < limit
+        images[-1]["converged"] = None if at_parity and not converged else converged
+        images[-1]["stopped_at_parity"] = bool(at_parity)
         images[-1]["doubts"], images[-1]["checks"] = _doubts(images[-1], images[-1]["converged"])
     traces = [_thin(row) for row in tr] if tr is not None else []
     ratios = [im["ratio"] for im in images if im["ratio"] is not None]
-    reached = [im["parity"]["reached"] for im in images if im["parity"]]
     first = images[0] if images else {}
     card = {"src": files[0].name if files else None, "count": len(images),
             "ratio": max(ratios) if ratios else None,
-            "parity": None if not reached else sum(reached) / len(reached),  # share of the unit's images at parity
+            "parity": parity_share(images),  # share of the unit's images at parity
             # the card shows the first image: its doubts, and the share of its judged checks it passes
             "doubts": first.get("doubts") or [],
             "trust": _f(1 - len(first["doubts"]) / first["checks"], 3) if first.get("checks") else None,
@@ -220,7 +237,8 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
         c, hist = _mined_cards(idx, units, pos)
         cards.update(c)
         details.update(hist)
-        details.update(_mined_details(run, idx, units, pos))
+        md, whole = _mined_details(run, idx, units, pos)
+        details.update(md)
         fd, facet_thumbs = _facet_details(run, layer, units, pos, dict(zip(units, cards["filled"])))
         details.update(fd)
         sheets, cards["sheets"] = sheet_layout(run, layer, idx, len(mined), img_dir)
@@ -228,9 +246,10 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     scard, sdet = [None] * U, [None] * U
     sc = (((read_json(run.manifest_path) or {}).get("synth") or {}).get("settings") or {}).get("config") or {}
     stop = (int(sc.get("stop_window") or 32), sc.get("stop_gain", 0.01))
+    parity_stop = (sc.get("stop_at_parity"), sc.get("steps"))
     for i, u in enumerate(units):
         if u in synth:
-            scard[i], sdet[i], files = _synth_payload(sdir, synth[u], stop)
+            scard[i], sdet[i], files = _synth_payload(sdir, synth[u], stop, parity_stop)
             images += files
     cards["img_dir"] = img_dir
     cards["synth_src"] = [c["src"] if c else None for c in scard]
@@ -242,7 +261,7 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     details["synth"] = sdet
     data = LayerData(layer, cards, details, sheets, images)
     if idx is not None:
-        data.facet_thumbs = facet_thumbs
+        data.facet_thumbs, data.whole = facet_thumbs, whole
     return data
 
 
@@ -262,21 +281,6 @@ def spark(counts) -> str:
         return ""
     lv = np.where(c > 0, np.maximum(1, np.round(c / c.max() * 63)), 0).astype(int)
     return "".join(SPARK[v] for v in lv)
-
-
-def fire_rates(hist: np.ndarray, edges: np.ndarray, q: float = FIRE_QUANTILE) -> tuple[float, np.ndarray]:
-    """(t, per-unit share of images whose per-image maximum is >= t).
-
-    hist (U, J) counts of the per-image maxima on fixed bins, edges (J + 1,). t is the lowest bin
-    edge with at most 1 - q of the layer's per-image maxima (all units pooled) at or above it:
-    "max > 0" says nothing on a layer whose units are positive on every image, and a threshold
-    on a bin edge makes each share exact, read off the counts.
-    """
-    h = np.asarray(hist, dtype=np.float64)  # (U, J)
-    tail = np.append(np.cumsum(h.sum(0)[::-1])[::-1], 0.0)  # (J + 1,): pooled count at or above each edge
-    j = int(np.argmax(tail <= (1 - q) * tail[0]))
-    n = h.sum(1)
-    return float(edges[j]), np.where(n > 0, h[:, j:].sum(1) / np.maximum(n, 1), np.nan)
 
 
 def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict, dict]:
@@ -300,19 +304,23 @@ def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict
     csi = idx.get("csi")
     if csi is not None and not float(np.nanmin(idx["low"])) >= 0:
         csi = None  # the index assumes non-negative activations: with negative class means it means nothing
-    fire_at, fire = fire_rates(idx["hist"], idx["hist_edges"]) if "hist" in idx else (None, idx["fire_rate"])
+    firing = layer_firing(idx)
     top_ok = idx["top_score"]
     cards = {
         "shape": shape, "images": int(idx["count"]), "k": K,
         "negative": "bottom_box" in idx,  # the sheets hold bottom crops only when the layer goes negative
         "peak": _pick(idx["high"], units, pos),
-        "fire": _pick(fire, units, pos),
-        "fire_at": _f(fire_at) if fire_at is not None else None, "fire_q": FIRE_QUANTILE,
+        "fire": _pick(firing["rates"], units, pos),
+        "fire_at": _f(firing["threshold"]) if firing["quantile"] is not None else None, "fire_q": firing["quantile"],
         "csi": _pick(csi, units, pos) if csi is not None else [None] * len(units),
         # number of filled exemplar slots per unit (a tiny corpus may have fewer than K images)
         "filled": [int(np.isfinite(top_ok[pos[u]]).sum()) if u in pos else 0 for u in units],
         "spark": sparks, "spark_mean": spark_mean,
         "pos": [pos.get(u) for u in units],
+        # the least a crop shows around its field (original pixels; None: crops of the field alone), and
+        # where the field lies in each unit's first crop (fractions of the cell)
+        "context": int(idx["context"]) if "context" in idx else None,
+        "ring": [_ring(idx, "top", pos[u], 0) if u in pos else None for u in units],
     }
     details = {
         "mean_max": _pick(idx["mean_max"], units, pos), "std_max": _pick(idx["std_max"], units, pos),
@@ -322,7 +330,19 @@ def _mined_cards(idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict
     return cards, details
 
 
-def _mined_details(run: Run, idx: dict, units: list[int], pos: dict[int, int]) -> dict:
+def _ring(idx: dict, kind: str, p: int, r: int) -> list[float] | None:
+    """Where exemplar r of the unit at place p has its field within its crop (crops.outline_in_cell);
+    None without a stored view (crops cut before views were kept) or without a crop."""
+    from ..crops import outline_in_cell
+
+    box, view = idx.get(f"{kind}_box"), idx.get(f"{kind}_view")
+    if box is None or view is None or "thumb" not in idx or view[p, r, 0] < 0:
+        return None
+    return outline_in_cell([int(v) for v in box[p, r]], [int(v) for v in view[p, r]], int(idx["thumb"]))
+
+
+def _mined_details(run: Run, idx: dict, units: list[int], pos: dict[int, int]) -> tuple[dict, list[Path]]:
+    """The exemplar lists of the unit view, and the originals of the whole-image sheets' cells."""
     corpus = read_json(run.path / "corpus.json") or {}
     files = corpus.get("files") or []
     labels = corpus.get("labels")
@@ -349,16 +369,40 @@ def _mined_details(run: Run, idx: dict, units: list[int], pos: dict[int, int]) -
                 if i >= N:
                     continue  # an empty slot
                 b = [int(v) for v in box[p, r]] if box is not None else None
-                row.append([local[i], _f(score[p, r], 5), r, b if b and b[0] >= 0 else None])
+                view = idx.get(f"{kind}_view")
+                v = [int(x) for x in view[p, r]] if view is not None and view[p, r, 0] >= 0 else None
+                row.append([local[i], _f(score[p, r], 5), r, b if b and b[0] >= 0 else None, v,
+                            _ring(idx, kind, p, r)])
             lists.append(row)
-        out[kind] = lists  # per unit: [file, score, rank (= sheet column offset), box or None]
+        # per unit: [file, score, rank (= sheet column offset), field box, crop box (original pixels, or
+        # None), field within the crop (fractions of the cell, or None)]
+        out[kind] = lists
     classes = list((read_json(run.manifest_path) or {}).get("corpus", {}).get("classes") or [])
     cm = idx.get("class_mean")
     if classes and cm is not None and cm.shape[0] == len(classes):
         out["classes"] = classes
         out["class_count"] = [int(v) for v in idx["class_count"]]
         out["class_mean"] = [_fs(cm[:, pos[u]]) if u in pos else None for u in units]
-    return out
+    whole: list[Path] = []
+    if "top_box" in idx and N:
+        # whole images of the top exemplars with a box, rank by rank across units, at most WHOLE_MAX
+        img, box = idx["top_image"], idx["top_box"]
+        rows = [pos[u] for u in units if u in pos]
+        ranked = [int(img[p, r]) for r in range(img.shape[1]) for p in rows if img[p, r] < N and box[p, r, 0] >= 0]
+        chosen = list(dict.fromkeys(ranked))[:WHOLE_MAX]
+        cell = {i: n for n, i in enumerate(chosen)}
+        from ..corpus import Corpus
+        from ..errors import UnitlensError
+
+        try:
+            where = Corpus.from_json(corpus)
+        except UnitlensError:  # a damaged corpus record: no whole images, the rest of the page as usual
+            where = None
+        if where is not None:
+            whole = [where.path(i) for i in chosen]
+            out["whole"] = {"thumb": WHOLE, "cols": WHOLE_COLS, "rows": WHOLE_ROWS,  # "sizes": see render.py
+                            "cell": [cell.get(int(i), -1) for i in used], "sizes": []}
+    return out, whole
 
 
 def sheet_layout(run: Run, layer: str, idx: dict, n_mined: int, img_dir: str) -> tuple[list[Path], dict | None]:

@@ -11,6 +11,8 @@ from pathlib import Path
 
 from ..store import atomic_write
 
+STATE = ".render.json"  # what each page of an atlas folder was drawn from, and how (e.g. paths stripped)
+
 
 def _readable_mode() -> int:
     """Mode of a new file under the user's umask (temporary files are created private)."""

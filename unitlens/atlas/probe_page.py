@@ -7,6 +7,7 @@ from pathlib import Path
 
 from ..store import Run, atomic_write, safe_name
 from .html import facts_list, join, page, tag
+from ..summary import fires_label
 
 TITLES = {"integrated-gradients": "integrated gradients", "gradient-x-input": "gradient × input",
           "smoothgrad": "SmoothGrad |mean gradient|"}
@@ -38,7 +39,7 @@ def write_page(d: Path, run: Run, s: dict) -> Path:
     facts = [("model", tag("code", s["model"])), ("run", tag("code", str(run.path))),
              ("images", f"{st['images']:,}"),
              ("per-image max", f"mean {st['mean_max']:.4g}, std {st['std_max']:.4g}, highest {st['max']:.4g}"),
-             ("fires (max > 0)", f"{100 * (st['fire_rate'] or 0):.1f}% of images"),
+             (fires_label(st), f"{100 * (st['fire_rate'] or 0):.1f}% of images"),
              ("class selectivity", f"{st['class_selectivity']:.3f}" if st.get("class_selectivity") is not None else None)]
     head = tag("section", tag("h1", f"{layer} · unit {unit}"),
                tag("p", "Its top exemplars from the corpus, which pixels of each crop drive it, and an image "

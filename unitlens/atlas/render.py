@@ -23,13 +23,12 @@ from pathlib import Path
 from ..errors import UnitlensError, closest
 from ..store import Run, atomic_write, now, read_json, safe_name, write_json
 from .data import layer_data
-from .files import READABLE, place_all, write_if_changed
+from .files import READABLE, STATE, place_all, write_if_changed
 from .html import Html, index_page, join, js_data, layer_page, tag
 from .paths import model_name
 from .paths import strip_paths as _strip
 
 STATIC = ("atlas.css", "atlas.js", "plots.js", "icon.png")  # the icon spares servers a favicon 404
-STATE = ".render.json"  # what each layer page was drawn from
 OVERVIEW = 6  # pictures per layer on the index
 
 
@@ -38,7 +37,8 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     """Draw (or bring up to date) the atlas of a run folder; returns the path of its index.html.
 
     `layers`: redraw only these (the index and navigation always list every layer). Given a
-    comparison folder (compare.json, no manifest), it draws that folder's pages instead.
+    comparison folder (compare.json, no manifest), it draws that folder's pages instead (with
+    `strip_paths` as here).
     `strip_paths`: cut every absolute path on the pages and in their data to its last part, so the
     folder can be handed on; None keeps the choice the atlas was last drawn with.
 
@@ -48,7 +48,7 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     if not isinstance(run, Run) and (Path(run) / "compare.json").is_file() and not (Path(run) / "manifest.json").is_file():
         if layers is not None:
             raise UnitlensError(f"{run} is a comparison folder; its pages are drawn all at once. Leave out --layers.")
-        return draw_comparison(run)
+        return draw_comparison(run, strip_paths)
     run = run if isinstance(run, Run) else Run(run)
     m = run.manifest()
     known = _known_layers(m)
@@ -102,7 +102,7 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     drawn = state.get("drawn", "")
     from .comparison_page import comparisons_section
 
-    cmp = comparisons_section(run.path, out)  # the comparisons under RUN/compare/
+    cmp = comparisons_section(run.path, out, share)  # the comparisons under RUN/compare/
     if drew or not index.is_file() or index.read_text() != index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp):
         state["drawn"] = drawn = now()  # the date on the index is that of the atlas's last change
     write_if_changed(index, index_page(m, rows, drawn, f"unitlens {version}", run_name, cmp).encode())
@@ -110,12 +110,12 @@ def render_atlas(run: Run | str | os.PathLike, *, layers: list[str] | None = Non
     return out / "index.html"
 
 
-def draw_comparison(folder: str | os.PathLike) -> Path:
+def draw_comparison(folder: str | os.PathLike, strip_paths: bool | None = None) -> Path:
     """Draw the pages of a comparison folder (comparison_page.py), then redraw the atlas of the run it
     lies under (RUN/compare/NAME), whose index lists it; returns the path of the comparison's index.html."""
     from .comparison_page import render_comparison
 
-    index = render_comparison(folder)
+    index = render_comparison(folder, strip_paths)
     folder = Path(folder).resolve()
     owner = folder.parent.parent
     if folder.parent.name == "compare" and (owner / "atlas" / "index.html").is_file() and \
@@ -169,9 +169,18 @@ def _draw_layer(run: Run, out: Path, name: str, share: bool = False) -> dict:
     if share:
         data.cards, data.details = _strip(data.cards), _strip(data.details)
     wanted = {p.name: p for p in data.sheets + data.images}
-    place_all(wanted, out / img_rel, keep=("facets.jpg",) if data.facet_thumbs else ())
+    w = data.details.get("whole")
+    per = w["cols"] * w["rows"] if w else 1
+    whole = [f"whole-{s:03d}.jpg" for s in range(-(-len(data.whole) // per))]
+    place_all(wanted, out / img_rel, keep=(("facets.jpg",) if data.facet_thumbs else ()) + tuple(whole))
     if data.facet_thumbs:
-        _facet_sheet(data.facet_thumbs, out / img_rel / "facets.jpg", data.details["facet_sheet"])
+        spec = data.details["facet_sheet"]
+        _thumb_sheet(data.facet_thumbs, out / img_rel / "facets.jpg", spec["thumb"], spec["cols"])
+    if w:
+        w["names"] = whole
+        for s, name in enumerate(whole):  # per cell: where the letterboxed original lies, and its size
+            w["sizes"] += _thumb_sheet(data.whole[s * per:(s + 1) * per], out / img_rel / name, w["thumb"], w["cols"],
+                                       whole=True)
     cards_js, units_js = f"data/{safe}.cards.js", f"data/{safe}.units.js"
     # the details go first: a page whose cards are new must never find old details
     write_if_changed(out / units_js, js_data("UNITLENS_UNITS", data.details).encode())
@@ -182,6 +191,9 @@ def _draw_layer(run: Run, out: Path, name: str, share: bool = False) -> dict:
         facts.append("feature map " + " × ".join(map(str, c["shape"])))
     if c.get("mined"):
         facts.append(f"{c['k']} exemplars per unit from {c['images']:,} images")
+        if c.get("context"):
+            facts.append(f"each crop shows at least {c['context']} × {c['context']} original pixels around its receptive "
+                         "field (outlined)")
         if c.get("fire_at") is not None:
             facts.append(f"“fires” = per-image maximum ≥ {c['fire_at']:.3g}, the layer's "
                          f"{round(100 * c['fire_q'])}th percentile over all its units")
@@ -259,18 +271,38 @@ def _remove_layer(out: Path, name: str, page: dict) -> None:
     shutil.rmtree(out / "img" / safe, ignore_errors=True)
 
 
-def _facet_sheet(files: list[Path], path: Path, spec: dict) -> None:
-    """Whole-image thumbnails (the centred square, as the network sees it) of `files`, row by row."""
+def _thumb_sheet(files: list[Path], path: Path, t: int, cols: int, whole: bool = False) -> list:
+    """Thumbnails of `files`, row by row, t px cells: the centred square (as the network sees it), or
+    with `whole` the whole original (upright, as mining saw it) scaled into the cell and centred.
+    Returns, for `whole`, [x, y, w, h, width, height] per cell: where the picture lies in its cell
+    and the original's size (None: the file cannot be read now; its cell stays grey)."""
     from PIL import Image, ImageOps
 
-    t, cols = spec["thumb"], spec["cols"]
+    from ..corpus import ImageProblem, decode_original
+
     rows = -(-len(files) // cols)
     sheet = Image.new("RGB", (cols * t, rows * t), (128, 128, 128))  # grey: a file that cannot be read now
+    placed: list = []
     for n, f in enumerate(files):
+        at = (n % cols * t, n // cols * t)
+        if not whole:
+            try:
+                with Image.open(f) as im:
+                    sheet.paste(ImageOps.fit(im.convert("RGB"), (t, t)), at)
+            except OSError:
+                pass
+            continue
         try:
-            with Image.open(f) as im:
-                sheet.paste(ImageOps.fit(im.convert("RGB"), (t, t)), (n % cols * t, n // cols * t))
-        except OSError:
-            pass
+            img, (W, H), _ = decode_original(Path(f), size=t)
+        except ImageProblem:
+            placed.append(None)
+            continue
+        s = t / max(W, H)
+        w, h = max(1, round(W * s)), max(1, round(H * s))
+        x, y = (t - w) // 2, (t - h) // 2
+        sheet.paste(img.convert("RGB").resize((w, h), Image.BILINEAR, reducing_gap=2.0), (at[0] + x, at[1] + y))
+        placed.append([x, y, w, h, W, H])
     atomic_write(path, lambda fh: sheet.save(fh, format="JPEG", quality=85))
     os.chmod(path, READABLE)
+    return placed
+

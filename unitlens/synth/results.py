@@ -80,6 +80,13 @@ def same_model(a: dict, b: dict) -> bool:
     return key(a) == key(b)
 
 
+def parity_share(images: list[dict]) -> float | None:
+    """Share of a unit's synthesised images whose parity record says "reached" (None: no image has
+    one). `images`: entries with a "parity" dict or None, as units.json, show and the atlas hold them."""
+    reached = [bool(im["parity"].get("reached")) for im in images if im.get("parity")]
+    return sum(reached) / len(reached) if reached else None
+
+
 def stalled(trace, window: int, gain: float | None) -> bool:
     """True once the mean of the last `window` values beats the window before by less than `gain`
     (relative); noisy traces (random transforms) need the averaging. The loop's early stop, and the

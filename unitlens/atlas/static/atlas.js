@@ -14,7 +14,7 @@
   const filterIn = document.getElementById("filter"), countOut = document.getElementById("count");
   const byUnit = new Map(C.units.map((u, i) => [u, i]));
   const fmt = P.fmt;
-  const HERO = 104, SMALL = 50, STRIP = 8, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
+  const HERO = 88, SMALL = 40, STRIP = 12, WHOLE_SHOW = 320, CARD_MIN_W = 248, CARD_H = 214, GAP = 12, BUFFER = 2;  // BUFFER: rows drawn beyond the viewport
   const SPARK = "0123456789ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz-_";
 
   const el = P.el, add = P.add;
@@ -34,6 +34,14 @@
     e.style.backgroundImage = 'url("' + S.dir + "/" + name + '")';
     e.style.backgroundSize = (S.cols * S.thumb * k) + "px " + (rowsHere * S.thumb * k) + "px";
     e.style.backgroundPosition = (-col * size) + "px " + (-row * size) + "px";
+    return e;
+  }
+  /* the receptive field outlined on a crop: `ring` is its box as fractions of the cell (data.py) */
+  function ringed(e, ring) {
+    if (!ring || e.classList.contains("nocrop")) return e;
+    const r = add(e, "span", "ring");
+    r.style.left = (100 * ring[0]) + "%"; r.style.top = (100 * ring[1]) + "%";
+    r.style.width = (100 * (ring[2] - ring[0])) + "%"; r.style.height = (100 * (ring[3] - ring[1])) + "%";
     return e;
   }
   function synthImg(name, size, alt) {
@@ -81,7 +89,7 @@
         a.classList.add("doubtful");
       }
     } else if (filled > 0) {
-      add(imgs, "span", "hero").appendChild(crop(i, 0, HERO));
+      add(imgs, "span", "hero").appendChild(ringed(crop(i, 0, HERO), C.ring ? C.ring[i] : null));
       first = 1;
     } else add(imgs, "span", "hero empty", "no images yet");
     if (C.mined && filled > first) {  // only exemplars that exist get a box
@@ -101,7 +109,8 @@
     if (C.ratio[i] !== null) num(nums, "n-ratio", "synth/nat", "×" + fmt(C.ratio[i], 2),
       "the synthesised image's spatial maximum over the best natural exemplar's");
     if (C.trust && C.trust[i] !== null) num(nums, "n-trust", "trust", pct(C.trust[i]),
-      "share of the synthesis checks its image passes: converged, reaches the best natural exemplar, rank 1 on its own image, robust to small warps");
+      "share of the synthesis checks its image passes: converged (not judged for an image stopped at parity on purpose, " +
+      "or shorter than two early-stop windows), reaches the best natural exemplar, rank 1 on its own image, robust to small warps");
     const par = C.parity ? C.parity[i] : null;
     if (par !== null && par !== undefined) num(nums, "n-parity" + (par < 1 ? " warn" : ""), "parity",
       par >= 1 ? "reached" : pct(par),
@@ -248,6 +257,7 @@
     if (view.hidden) savedScroll = window.scrollY;
     grid.hidden = true; toolbar.hidden = true; head.classList.add("compact");
     view.hidden = false;
+    closeWhole();
     view.replaceChildren();
     view.dataset.unit = String(u);
     delete view.dataset.complete;
@@ -285,7 +295,7 @@
     }
     if (C.mined && C.filled[i] > 0) {
       const f = add(heroes, "figure", "natural");
-      f.appendChild(crop(i, 0, hs));
+      f.appendChild(ringed(crop(i, 0, hs), C.ring ? C.ring[i] : null));
       add(f, "figcaption", "", "strongest natural crop");
     }
     if (!C.mined) add(prof, "p", "note", "This layer has not been mined yet: no exemplars or statistics.");
@@ -351,20 +361,67 @@
   function exemplars(sec, i, D, lists, col0) {
     const list = lists ? lists[i] : null;
     if (!list || !list.length) { add(sec, "p", "note", "none"); return; }
+    if (C.context) add(sec, "p", "note ctx-note", "Each crop shows at least " + C.context + " × " + C.context +
+      " original pixels (the whole side of a smaller image) around the receptive field, which is outlined. " +
+      (D.whole && col0 === 0 ? "Click a crop for the whole image with its box." : ""));
     const g = add(sec, "div", "ex-grid");
     const size = 96;  // crops of any thumbnail size show at one readable size
-    list.forEach(([f, score, rank, box]) => {
+    list.forEach(([f, score, rank, box, viewBox, ring]) => {
       const fig = add(g, "figure", "ex");
       fig.dataset.rank = String(rank + 1);
-      fig.appendChild(crop(i, col0 + rank, size));
+      if (box) fig.dataset.field = box.join(" ");
+      if (viewBox) fig.dataset.view = viewBox.join(" ");
+      const c = fig.appendChild(ringed(crop(i, col0 + rank, size), ring));
+      const cell = D.whole && col0 === 0 && box ? D.whole.cell[f] : -1;
+      if (cell >= 0 && D.whole.sizes[cell]) {  // the whole original, with the box, on click
+        c.classList.add("opens"); c.tabIndex = 0; c.setAttribute("role", "button");
+        c.title = "show the whole image";
+        const open = () => wholeImage(D, f, cell, rank, box, viewBox);
+        c.addEventListener("click", open);
+        c.addEventListener("keydown", e => { if (e.key === "Enter" || e.key === " ") { e.preventDefault(); open(); } });
+      }
       const cap = add(fig, "figcaption");
       const line = add(cap, "span", "ex-line");
       add(line, "span", "ex-rank", "#" + (rank + 1));
       add(line, "span", "ex-score", fmt(score, 4));
       const file = add(cap, "span", "ex-file", D.files[f]);
-      file.title = D.files[f] + (box ? "\ncrop box x " + box[0] + "–" + box[2] + ", y " + box[1] + "–" + box[3] + " (original pixels)" : "\nno crop could be cut");
+      file.title = D.files[f] + (box ? "\nreceptive field x " + box[0] + "–" + box[2] + ", y " + box[1] + "–" + box[3] + " (original pixels)" : "\nno crop could be cut");
       if (D.labels && D.labels[f] !== null) add(cap, "span", "ex-label", D.labels[f]);
     });
+  }
+
+  /* one exemplar's whole original (the letterboxed cell of a whole-image sheet), its field outlined and
+     the part the crop shows dashed; closed by its button, Esc or a click beside it */
+  let whole = null;
+  function closeWhole() { if (whole) { whole.remove(); whole = null; } }
+  function wholeImage(D, f, cell, rank, box, viewBox) {
+    closeWhole();
+    const W = D.whole, [cx, cy, cw, ch, ow, oh] = W.sizes[cell], k = WHOLE_SHOW / W.thumb;
+    const per = W.cols * W.rows, n = cell % per;
+    whole = add(view, "div", "whole-view");
+    whole.addEventListener("click", e => { if (e.target === whole) closeWhole(); });
+    const panel = add(whole, "figure", "whole-panel");
+    panel.setAttribute("role", "dialog"); panel.setAttribute("aria-label", "whole image of exemplar " + (rank + 1));
+    const pic = add(panel, "span", "whole-pic");
+    pic.style.width = pic.style.height = WHOLE_SHOW + "px";
+    pic.style.backgroundImage = 'url("' + imgSrc(W.names[Math.floor(cell / per)]) + '")';
+    pic.style.backgroundSize = (W.cols * W.thumb * k) + "px auto";
+    pic.style.backgroundPosition = (-(n % W.cols) * WHOLE_SHOW) + "px " + (-Math.floor(n / W.cols) * WHOLE_SHOW) + "px";
+    const mark = (b, cls) => {  // a box in original pixels, placed on the letterboxed picture
+      const m = add(pic, "span", cls);
+      m.style.left = (k * (cx + b[0] * cw / ow)) + "px"; m.style.top = (k * (cy + b[1] * ch / oh)) + "px";
+      m.style.width = (k * (b[2] - b[0]) * cw / ow) + "px"; m.style.height = (k * (b[3] - b[1]) * ch / oh) + "px";
+    };
+    if (viewBox) mark(viewBox, "whole-crop");
+    mark(box, "whole-field");
+    const cap = add(panel, "figcaption");
+    add(cap, "span", "ex-file", "#" + (rank + 1) + " " + D.files[f]);
+    add(cap, "span", "note", "receptive field x " + box[0] + "–" + box[2] + ", y " + box[1] + "–" + box[3] + " of " + ow + " × " + oh +
+      " original pixels" + (viewBox ? "; dashed: what the crop shows" : ""));
+    const b = add(cap, "button", "whole-close", "close");
+    b.type = "button";
+    b.addEventListener("click", closeWhole);
+    b.focus({ preventScroll: true });
   }
 
   function labels(sec, i, D) {
@@ -473,13 +530,15 @@
       rows.push(["steps", String(im.steps)]);
       if (im.converged !== null && im.converged !== undefined)
         rows.push(["converged", im.converged ? "yes" : "no: still rising at the end", im.converged ? "" : "warn"]);
+      else if (im.stopped_at_parity) rows.push(["converged", "not judged: stopped on purpose once past the natural best"]);
       if (im.parity_step !== null && im.parity_step !== undefined) rows.push(["reached the natural best at step", String(im.parity_step)]);
       const cap = add(fig, "figcaption");
       facts(cap, rows, "small");
       if (rec.near && im.nearest && im.nearest.length) nearest(cap, rec.near, m, im.nearest);
     });
     const notes = [];
-    if (rec.images.some(im => im.rank > 1)) notes.push("a rank above 1 means other channels of the layer respond more strongly to that image");
+    if (rec.images.some(im => im.rank > 1)) notes.push("a rank above 1 means other channels of the layer respond more strongly to that image " +
+      "(in raw values, which differ in scale between channels: even a unit's best natural exemplar often drives other channels more)");
     if (rec.images.some(im => im.robustness && im.robustness.relative !== null && im.robustness.relative < 0.5)) notes.push("an image that loses most of its effect under small warps works only as it stands");
     if (rec.images.some(im => im.ratio !== null && im.ratio < 1)) notes.push("below ×1 the image excites the unit less than the best natural exemplar");
     if (rec.images.some(im => im.parity && !im.parity.reached)) notes.push("below parity the image, under random warps, drives the unit's objective less than its best natural exemplar does");
@@ -493,6 +552,7 @@
   }
 
   function closeUnit() {
+    closeWhole();
     if (view.hidden) return;
     view.hidden = true; view.replaceChildren(); current = null;
     grid.hidden = false; toolbar.hidden = false; head.classList.remove("compact");
@@ -513,6 +573,7 @@
     const t = e.target, typing = t && (t.tagName === "INPUT" || t.tagName === "SELECT" || t.tagName === "TEXTAREA");
     if (e.altKey || e.ctrlKey || e.metaKey) return;
     if (typing) { if (e.key === "Escape") t.blur(); return; }
+    if (whole && e.key === "Escape") { e.preventDefault(); closeWhole(); return; }
     if (!view.hidden) {
       if (current !== null && (e.key === "ArrowRight" || e.key === "j")) { e.preventDefault(); go(neighbour(current, 1)); }
       else if (current !== null && (e.key === "ArrowLeft" || e.key === "k")) { e.preventDefault(); go(neighbour(current, -1)); }
