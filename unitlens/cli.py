@@ -47,6 +47,8 @@ Drive = _choice("Drive", ("up", "down"))
 Labels = _choice("Labels", ("folders",))
 IgRule = _choice("IgRule", ("trapezoid", "midpoint", "left", "right"))
 Baseline = _choice("Baseline", ("black", "blur"))
+LinkMethod = _choice("LinkMethod", ("ig", "gxa"))
+LinkBaseline = _choice("LinkBaseline", ("zero", "blur"))
 
 
 def _value(choice: Optional[Enum]) -> Optional[str]:
@@ -355,6 +357,29 @@ def compare_cmd(
         print(json.dumps(s, indent=1))
         return
     print(comparison_text(s))
+
+
+@app.command("link")
+def link_cmd(
+    run: Path = typer.Argument(..., metavar="RUN", help="A mined run folder."),
+    layer: str = typer.Option(..., "--layer", help="The later layer, whose mined units are fed (e.g. layer3)."),
+    source: Optional[str] = typer.Option(None, "--from", help="The earlier layer whose channels feed it (default: the mined layer just before)."),
+    units: Optional[str] = typer.Option(None, "--units", help="Only these units of --layer, e.g. 0-63,100 (default: all mined)."),
+    method: LinkMethod = typer.Option("ig", "--method", help="ig: integrated gradients; gxa: gradient x activation (one backward)."),
+    steps: int = typer.Option(16, "--steps", min=1, help="Integrated-gradients steps (trapezoid rule)."),
+    baseline: LinkBaseline = typer.Option("zero", "--baseline", help="Start of the path: zero activations, or the blurred exemplar's."),
+    exemplars: Optional[int] = typer.Option(None, "--exemplars", min=1, help="Top exemplars per unit to use (default: all mining kept)."),
+    batch: int = typer.Option(64, "--batch", min=1, help="Rows (exemplars x path points) per forward and backward."),
+    force: bool = typer.Option(False, "--force", help="Measure again, replacing links stored with other settings."),
+    allow_pickle: bool = AllowPickle, threads: Optional[int] = Threads,
+):
+    """Measure how the channels of an earlier layer feed each unit of LAYER; `show` and the atlas list them."""
+    from .links import LinkConfig, link, link_text
+
+    config = LinkConfig(method=method.value, steps=steps, baseline=baseline.value, exemplars=exemplars, batch=batch)
+    path = link(run, layer, source, units=units, config=config, progress=sys.stderr.isatty(), force=force,
+                allow_pickle=allow_pickle)
+    print(link_text(path))
 
 
 @app.command("atlas")

@@ -401,6 +401,9 @@ def probe_text(s: dict) -> str:
     for im in s["synth"]:
         ratio = f", {im['vs_best_exemplar']:.2f}x the best exemplar" if im.get("vs_best_exemplar") else ""
         lines.append(f" synthesised: {im['image']} (activation {im['max_activation']:.4g}{ratio})")
+    from .links import links_text
+
+    lines += links_text(s.get("links"))
     lines.append(s["page"])
     return "\n".join(lines)
 

@@ -77,6 +77,11 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
         result["negative_exemplars"] = listing("bottom")
     result["synth"] = unit_images(run, layer, channel)  # [] until `unitlens synth` has run
     result["facets"] = unit_facets(run, layer, channel, corpus)
+    from .links import unit_links
+
+    links = unit_links(run, layer, channel)
+    if links is not None:  # only where `unitlens link` has run
+        result["links"] = links
     return result
 
 
@@ -108,6 +113,9 @@ def summary_text(s: dict, layer: str, channel: int) -> str:
         if r.get("nearest"):
             lines.append("    nearest natural images: " + ", ".join(f"{shown(n['id'])} ({n['similarity']:.2f})"
                                                                   for n in r["nearest"][:3]))
+    from .links import links_text
+
+    lines += links_text(s.get("links"))
     return "\n".join(lines)
 
 
