@@ -371,12 +371,14 @@ def link_cmd(
     exemplars: Optional[int] = typer.Option(None, "--exemplars", min=1, help="Top exemplars per unit to use (default: all mining kept)."),
     batch: int = typer.Option(64, "--batch", min=1, help="Rows (exemplars x path points) per forward and backward."),
     force: bool = typer.Option(False, "--force", help="Measure again, replacing links stored with other settings."),
+    checkpoint_every: float = typer.Option(10.0, "--checkpoint-every", min=0.0, help="Seconds between saved checkpoints."),
     allow_pickle: bool = AllowPickle, threads: Optional[int] = Threads,
 ):
     """Measure how the channels of an earlier layer feed each unit of LAYER; `show` and the atlas list them."""
     from .links import LinkConfig, link, link_text
 
-    config = LinkConfig(method=method.value, steps=steps, baseline=baseline.value, exemplars=exemplars, batch=batch)
+    config = LinkConfig(method=method.value, steps=steps, baseline=baseline.value, exemplars=exemplars, batch=batch,
+                        checkpoint_seconds=checkpoint_every)
     path = link(run, layer, source, units=units, config=config, progress=sys.stderr.isatty(), force=force,
                 allow_pickle=allow_pickle)
     print(link_text(path))
