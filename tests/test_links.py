@@ -255,3 +255,32 @@ def test_library_refuses_bad_settings():
                        (LinkConfig(steps=0), "steps must be")):
         with pytest.raises(UnitlensError, match=words):
             bad.validate()
+
+
+def test_atlas_feeder_links_walk_the_network(runs, browser):
+    """The unit view of layer 3's unit 3 shows unit 1 driving it up and unit 5 holding it down, each with
+    its crop; clicking unit 1 lands on layer 1's page at unit 1's view, whose fed strip leads back."""
+    from unitlens import render_atlas
+    from unitlens.links import link
+
+    run, model = runs["planted"]
+    link(run, "3", model=model)
+    atlas = render_atlas(run).parent
+    page = browser.page(1280, 1400)
+    page.goto((atlas / "layer-3.html").as_uri() + "#unit-3")
+    page.wait_for("document.getElementById('unit').dataset.complete")
+    first = page.js("[...document.querySelectorAll('.uv-fedby .link-row')].map(r => "
+                    "[r.querySelector('h4').textContent, r.querySelector('.link-unit').dataset.unit])")
+    assert first == [["drive it up", "1"], ["hold it down", "5"]]
+    bg = page.js("document.querySelector('.uv-fedby .link-unit .crop').style.backgroundImage")
+    assert "img/1/sheet-000.jpg" in bg and (atlas / "img" / "1" / "sheet-000.jpg").is_file()
+    assert not page.js("document.querySelector('#sort option[value=feeders]').disabled")
+    page.js("document.querySelector('.uv-fedby a.link-unit').click()")
+    page.wait_for("location.pathname.endsWith('/layer-1.html') && location.hash === '#unit-1' && "
+                  "(document.getElementById('unit') || {dataset: {}}).dataset.complete === '1'")  # null while it loads
+    assert page.js("document.getElementById('unit').dataset.unit") == "1"
+    back = page.js("[...document.querySelectorAll('.uv-feeds a.link-unit')].map(a => a.getAttribute('href'))")
+    assert "layer-3.html#unit-3" in back
+    assert page.errors == [], page.errors
+    assert all(u.startswith("file://") for u in page.requests), page.requests
+    page.close()

@@ -240,6 +240,11 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     for key in ("trust", "doubts", "own_rank", "robust"):
         cards[key] = [c[key] if c else None for c in scard]
     details["synth"] = sdet
+    from .link_data import link_payload
+
+    lcards, ldetails = link_payload(run, layer, units)  # empty unless `unitlens link` has run
+    cards.update(lcards)
+    details.update(ldetails)
     data = LayerData(layer, cards, details, sheets, images)
     if idx is not None:
         data.facet_thumbs = facet_thumbs
