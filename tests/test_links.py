@@ -284,3 +284,21 @@ def test_atlas_feeder_links_walk_the_network(runs, browser):
     assert page.errors == [], page.errors
     assert all(u.startswith("file://") for u in page.requests), page.requests
     page.close()
+
+
+def test_run_object_walks_the_links(runs):
+    """load_run(...).unit(...).feeders / .feeds: the same numbers as `show --json`, and a row leads to its unit."""
+    from unitlens import load_run
+    from unitlens.links import link, unit_links
+
+    run, model = runs["planted"]
+    link(run, "3", model=model)
+    view = load_run(run)
+    u = view.unit("3:3")
+    rows = u.feeders
+    assert [(r["layer"], r["unit"], r["direction"]) for r in rows][:1] == [("1", 1, "up")]
+    down = [r for r in rows if r["direction"] == "down"]
+    assert down[0]["unit"] == 5 and down[0]["contribution"] == unit_links(run, "3", 3)["feeders"][0]["down"][0]["contribution"]
+    source = view.layer(rows[0]["layer"]).unit(rows[0]["unit"])
+    assert any(r["layer"] == "3" and r["unit"] == 3 for r in source.feeds)
+    assert list(rows.frame().columns[:3]) == ["layer", "unit", "direction"]
