@@ -302,3 +302,19 @@ def test_run_object_walks_the_links(runs):
     source = view.layer(rows[0]["layer"]).unit(rows[0]["unit"])
     assert any(r["layer"] == "3" and r["unit"] == 3 for r in source.feeds)
     assert list(rows.frame().columns[:3]) == ["layer", "unit", "direction"]
+
+
+def test_probe_measures_the_feeders_of_its_unit(runs, tmp_path):
+    """probe on a run with an earlier mined layer links that one unit (only it) and prints its feeders;
+    --no-links leaves them out."""
+    run = tmp_path / "run"
+    shutil.copytree(runs["planted"][0], run, ignore=shutil.ignore_patterns("links", "probe", "atlas"))
+    r = subprocess.run([sys.executable, "-m", "unitlens", "probe", str(run), "3:3", "--attribution", "none",
+                        "--no-synth"], cwd=ROOT, capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    assert "drive it up: 1 (+" in r.stdout and "hold it down: 5 (-" in r.stdout
+    z = np.load(run / "links" / "3" / "from-1.npz")
+    assert z["units"][z["done"]].tolist() == [3]
+    r = subprocess.run([sys.executable, "-m", "unitlens", "probe", str(run), "3:2", "--attribution", "none",
+                        "--no-synth", "--no-links"], cwd=ROOT, capture_output=True, text=True)
+    assert r.returncode == 0 and "drive it up" not in r.stdout, r.stderr

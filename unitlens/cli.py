@@ -417,6 +417,7 @@ def probe_cmd(
     noise: float = typer.Option(0.15, "--noise", min=0.0, help="SmoothGrad noise, a fraction of the image's range."),
     samples: int = typer.Option(32, "--samples", min=1, help="SmoothGrad noisy copies."),
     synth: Optional[bool] = typer.Option(None, "--synth/--no-synth", help="Synthesise an image if the unit has none (default: only when mining afresh)."),
+    links: bool = typer.Option(True, "--links/--no-links", help="List the units of the mined layer before that feed it (measured once, then read from the run)."),
     steps: int = typer.Option(48, "--steps", min=1, help="Synthesis steps."),
     synth_size: int = typer.Option(96, "--synth-size", min=16, help="Synthesised image size (at most the input size)."),
     labels: Optional[Labels] = LabelsOpt,
@@ -450,7 +451,7 @@ def probe_cmd(
     config = ProbeConfig(top_k=top, attribute=attribute, methods=parse_methods(attribution), ig_steps=ig_steps,
                          ig_max_steps=ig_max_steps, ig_rule=ig_rule.value, baseline=baseline.value, smoothgrad_noise=noise,
                          smoothgrad_samples=samples, synth=synth, synth_steps=steps, synth_size=synth_size,
-                         workers=workers)
+                         workers=workers, links=links)
     c = None
     if not is_run:
         from . import open_corpus

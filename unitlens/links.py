@@ -281,6 +281,20 @@ def link(run: Run | str | Path, target: str, source: str | None = None, *, units
     return path
 
 
+def link_unit(run: Run, model, layer: str, channel: int, progress: bool = False) -> bool:
+    """Links into one unit from the mined layer just before, with the default settings, for `probe`;
+    False (nothing done) where no earlier layer is mined or links stored with other settings exist."""
+    try:
+        source = previous_mined(run, model, layer)
+    except UnitlensError:
+        return False
+    path = links_path(run, layer, source)
+    if path.is_file() and _settings_of(read_npz(path)) != {"target": layer, "source": source, **LinkConfig().record()}:
+        return False
+    link(run, layer, source, units=[channel], model=model, progress=progress)
+    return True
+
+
 def _fresh(mined, channels, images, net, config, target, source) -> dict:
     U = len(mined)
     state = {"units": np.asarray(mined, np.int64), "contribution": np.zeros((U, channels), np.float32),

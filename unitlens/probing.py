@@ -69,6 +69,7 @@ class ProbeConfig:
     thumb: int = 160  # side of the crops and heat maps on the page
     batch_size: int = 32  # images per forward pass when mining
     workers: int | None = None  # decoding processes when mining; None: from the core count
+    links: bool = True  # measure which units of the mined layer before feed it (links.py), unless stored
 
     def validate(self) -> None:
         for name, v, lo in (("top_k", self.top_k, 1), ("attribute", self.attribute, 0), ("ig_steps", self.ig_steps, 1),
@@ -228,6 +229,11 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
         goal, synth_config = _synth_goal_config(run, model, lu, config)
         synthesize(model, goal, run.path, synth_config, progress=progress)
         summary = unit_summary(run, layer, channel)
+    if config.links and not summary.get("links", {}).get("feeders"):
+        from .links import link_unit
+
+        if link_unit(run, model, layer, channel, progress=progress):
+            summary = unit_summary(run, layer, channel)
     summary["exemplars"] = summary["exemplars"][:config.top_k]
     summary["model"] = model.spec
     d = run.path / "probe" / f"{safe_name(layer)}-{channel:04d}"
