@@ -318,3 +318,23 @@ def test_probe_measures_the_feeders_of_its_unit(runs, tmp_path):
     r = subprocess.run([sys.executable, "-m", "unitlens", "probe", str(run), "3:2", "--attribution", "none",
                         "--no-synth", "--no-links"], cwd=ROOT, capture_output=True, text=True)
     assert r.returncode == 0 and "drive it up" not in r.stdout, r.stderr
+
+
+def test_readme_link_examples_run(tmp_path):
+    import shlex
+
+    text = (ROOT / "README.md").read_text()
+    section = text.split("### How units connect", 1)[1].split("\n### ", 1)[0]
+    block = section.split("```bash\n", 1)[1].split("```", 1)[0]
+    commands = [line.split("  #")[0].strip() for line in block.splitlines() if line.strip()]
+    assert len(commands) == 7
+    outs = []
+    for cmd in commands:
+        argv = shlex.split(cmd)
+        argv = [sys.executable, *(["-m", "unitlens"] if argv[0] == "unitlens" else []), *argv[1:]]
+        r = subprocess.run(argv, cwd=tmp_path, capture_output=True, text=True)
+        assert r.returncode == 0, (cmd, r.stderr)
+        outs.append(r.stdout)
+    assert "drive it up:" in outs[4] and "feeds in layer3" in outs[5]
+    assert (tmp_path / "runs" / "links" / "links" / "layer3" / "from-layer2.npz").is_file()
+    assert "Fed by" in (tmp_path / "runs" / "links" / "atlas" / "atlas.js").read_text()
