@@ -7,6 +7,7 @@ import signal
 import subprocess
 import sys
 import time
+import warnings
 
 import numpy as np
 import pytest
@@ -338,3 +339,46 @@ def test_readme_link_examples_run(tmp_path):
     assert "drive it up:" in outs[4] and "feeds in layer3" in outs[5]
     assert (tmp_path / "runs" / "links" / "links" / "layer3" / "from-layer2.npz").is_file()
     assert "Fed by" in (tmp_path / "runs" / "links" / "atlas" / "atlas.js").read_text()
+
+
+@pytest.mark.parametrize("source, target, reads_image", [("layer2", "layer3", False), ("layer3.0.conv1", "layer3.0", True)])
+def test_cut_network_gives_the_models_own_maps(source, target, reads_image):
+    """The network between two layers, fed the source's map, gives the target's map as forward hooks on
+    torchvision's ResNet-18 record it; inside a residual block the target also reads the block's input."""
+    import torchvision
+
+    from unitlens import load_model
+    from unitlens.links import between
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # random weights: warned about once per process, not the point here
+        model = load_model("torchvision:resnet18", size=64)
+    net = model.module
+    seen = {}
+    hooks = [net.get_submodule(n).register_forward_hook(lambda _m, _i, o, n=n: seen.__setitem__(n, o.clone()))
+             for n in (source, target)]
+    x = torch.randn(2, 3, 64, 64, generator=torch.Generator().manual_seed(0))
+    with torch.no_grad():
+        net(x)
+        for h in hooks:
+            h.remove()
+        cut = between(model, source, target)
+        out = cut.forward(seen[source], x if cut.needs_input else None)
+    assert cut.needs_input is reads_image
+    torch.testing.assert_close(out, seen[target], rtol=1e-5, atol=1e-5)
+    assert isinstance(net, torchvision.models.ResNet)
+
+
+def test_links_of_a_layer_mined_again_are_marked_stale(runs, tmp_path, capsys):
+    from unitlens import MineConfig, mine, open_corpus, parse_layers
+    from unitlens.links import link
+
+    run = tmp_path / "run"
+    shutil.copytree(runs["planted"][0], run, ignore=shutil.ignore_patterns("atlas", "probe"))
+    model = runs["planted"][1]
+    link(run, "3", model=model)
+    assert "stale" not in cli(capsys, "show", run, "3:3")[1]
+    mine(model, open_corpus(runs["images"]), parse_layers(model, ["3"]), run, MineConfig(top_k=3, workers=0),
+         force=True)  # fewer exemplars kept: other ones
+    out = cli(capsys, "show", run, "3:3")[1]
+    assert "stale: the layer was mined again" in out

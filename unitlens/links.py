@@ -415,6 +415,17 @@ def concentration(contribution: np.ndarray) -> np.ndarray:
         return np.where(s2 > 0, c.sum(-1) ** 2 / np.where(s2 > 0, s2, 1), np.nan)
 
 
+def stale(run: Run, z: dict) -> bool:
+    """Whether the target layer was mined again since its links were measured (other exemplars)."""
+    path = run.layer_dir(str(z["target"])) / "index.npz"
+    if not path.is_file():
+        return True
+    idx = read_npz(path)
+    R = z["image"].shape[1]
+    return not (np.array_equal(idx["units"], z["units"]) and idx["top_image"].shape[1] >= R
+                and np.array_equal(idx["top_image"][:, :R], z["image"]))
+
+
 def _entry(z: dict, p: int, k: int) -> dict:
     c = z["contribution"][p]
     total = float(np.abs(c).sum()) or 1.0
@@ -452,7 +463,7 @@ def unit_links(run: Run | str | Path, layer: str, channel: int, top: int = 5) ->
                 "layer": source, "method": METHOD_NAMES[str(z["method"])], "baseline": str(z["baseline"]),
                 "steps": int(z["steps"]) or None, "exemplars": int(z["exemplars"][p]),
                 "change": float(z["change"][p]), "gap": None if np.isnan(z["gap"][p]) else float(z["gap"][p]),
-                "effective": float(concentration(c)),
+                "effective": float(concentration(c)), "stale": stale(run, z),
                 "up": [_entry(z, p, k) for k in ordered[:top] if c[k] > 0],
                 "down": [_entry(z, p, k) for k in ordered[::-1][:top] if c[k] < 0],
             })
@@ -480,6 +491,8 @@ def links_text(links: dict | None) -> list[str]:
         gap = f"; completeness within {100 * f['gap']:.1f}%" if f["gap"] is not None else ""
         lines.append(f"  fed from {shown(f['layer'])} ({how}; {f['exemplars']} exemplars, mean change "
                      f"{f['change']:.4g}{gap}; {f['effective']:.1f} effective feeders):")
+        if f["stale"]:
+            lines.append("    (stale: the layer was mined again since; measure again with `unitlens link ... --force`)")
         for title, key in (("drive it up", "up"), ("hold it down", "down")):
             if f[key]:
                 lines.append(f"    {title}: " + ", ".join(_feeder_text(e) for e in f[key]))

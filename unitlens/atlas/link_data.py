@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..links import METHOD_NAMES, concentration, stored_pairs
+from ..links import METHOD_NAMES, concentration, stale, stored_pairs
 from ..store import Run, read_json, read_npz, safe_name
 from .data import _f
 
@@ -83,7 +83,7 @@ def link_payload(run: Run, layer: str, units: list[int]) -> tuple[dict, dict]:
         totals = np.abs(c).sum(1)
         share = np.divide(c, totals[:, None], out=np.zeros_like(c), where=totals[:, None] > 0)
         how = {"layer": source, "method": METHOD_NAMES[str(z["method"])], "baseline": str(z["baseline"]),
-               "steps": int(z["steps"]) or None}
+               "steps": int(z["steps"]) or None, "stale": stale(run, z)}
         if target == layer:
             eff = concentration(c)
             for p, u in enumerate(z["units"]):

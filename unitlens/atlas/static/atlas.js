@@ -531,7 +531,8 @@
       add(sec, "p", "note", "From " + g.layer + ": " + g.method + " at the activations of " + g.layer + " (" + g.baseline +
         " baseline" + (g.steps ? ", " + g.steps + " steps" : "") + "), mean over " + g.exemplars + " exemplars; " +
         "effective feeders " + fmt(g.effective, 3) + "; the unit's mean change " + fmt(g.change) +
-        (g.gap !== null ? ", contributions add up to it within " + (100 * g.gap).toFixed(1) + "%" : "") + ".");
+        (g.gap !== null ? ", contributions add up to it within " + (100 * g.gap).toFixed(1) + "%" : "") + "." +
+        (g.stale ? " Stale: this layer was mined again since; measure again with `unitlens link ... --force`." : ""));
       linkStrip(sec, "drive it up", g.up, g.weight);
       linkStrip(sec, "hold it down", g.down, g.weight);
     });
