@@ -89,6 +89,23 @@ def test_planted_feeders(runs):
     assert f["gap"] < 1e-4  # complete: the path never meets the ReLU's kink
 
 
+def test_blurred_baseline_is_complete_and_differs(runs, tmp_path):
+    """From the blurred exemplar's activations the planted unit's path stays where its ReLU passes (an
+    affine function positive at both ends), so the contributions add up to u(a) - u(blurred) exactly; the
+    change is smaller than from zero (blurring keeps part of the activation)."""
+    from unitlens.links import LinkConfig, link
+
+    run = tmp_path / "run"
+    shutil.copytree(runs["planted"][0], run, ignore=shutil.ignore_patterns("links", "atlas", "probe"))
+    model = runs["planted"][1]
+    zero = np.load(link(run, "3", "1", units=[3], model=model))
+    blur = np.load(link(run, "3", "1", units=[3], model=model, config=LinkConfig(baseline="blur"), force=True))
+    p = int(np.flatnonzero(blur["units"] == 3)[0])
+    assert float(blur["gap"][p]) < 1e-4
+    assert 0 < float(blur["change"][p]) < float(zero["change"][p])
+    assert float(blur["contribution"][p].sum()) == pytest.approx(float(blur["change"][p]), rel=1e-4)
+
+
 def test_ig_against_riemann_sum_and_completeness(runs):
     """Stored contributions (mean over exemplars) equal a plain-torch trapezoid sum with the same steps;
     their total matches u(a) - u(0) as closely as that sum does, and a 512-step sum comes within 0.5%."""
@@ -284,6 +301,18 @@ def test_atlas_feeder_links_walk_the_network(runs, browser):
     assert "layer-3.html#unit-3" in back
     assert page.errors == [], page.errors
     assert all(u.startswith("file://") for u in page.requests), page.requests
+    page.close()
+    # the layer page orders by effective feeders: oracle (sum |c|)^2 / sum c^2 in numpy, high first, ties by id
+    page = browser.page(1280, 900)
+    page.goto((atlas / "layer-3.html").as_uri())
+    page.wait_for("document.documentElement.dataset.ready")
+    page.js("(() => { const e = document.getElementById('sort'); e.value = 'feeders'; e.dispatchEvent(new Event('change')); })()")
+    shown = page.js("(() => { const c = [...document.querySelectorAll('#grid .card')]; "
+                    "c.sort((a, b) => parseFloat(a.style.top) - parseFloat(b.style.top) || parseFloat(a.style.left) - parseFloat(b.style.left)); "
+                    "return c.map(e => +e.dataset.unit); })()")
+    c = np.abs(np.load(run / "links" / "3" / "from-1.npz")["contribution"].astype(np.float64))
+    eff = np.array([float(f"{v:.3g}") for v in c.sum(1) ** 2 / (c * c).sum(1)])
+    assert shown == np.lexsort((np.arange(len(eff)), -eff)).tolist()
     page.close()
 
 
