@@ -84,7 +84,7 @@ class LinkConfig:
 
 @dataclass
 class Between:
-    """u-side of a layer pair: `forward(z, x)` maps source activations z (N, C_K, H, W) (and the images
+    """The network between two layers: `forward(z, x)` maps source activations z (N, C_K, H, W) (and the images
     x, only when `needs_input`) to the target map (N, C_L, H', W'); `conv` is the one convolution
     between them, or None."""
 
@@ -165,7 +165,7 @@ def previous_mined(run: Run, model, target: str) -> str:
 
 def link(run: Run | str | Path, target: str, source: str | None = None, *, units=None,
          config: LinkConfig = LinkConfig(), model=None, progress: bool = False, force: bool = False,
-         allow_pickle: bool = False, _stop_after: int | None = None) -> Path:
+         allow_pickle: bool = False) -> Path:
     """Measure how every channel of `source` feeds the mined units of `target` (all, or `units`: a
     sequence of channels or text like '0-9,37'); store and return links/<target>/from-<source>.npz.
     Resumes a pass that was stopped; a pass with other settings needs `force`.
@@ -233,7 +233,7 @@ def link(run: Run | str | Path, target: str, source: str | None = None, *, units
     for p in todo:
         if not left[p]:
             state["done"][p] = True  # no usable exemplar: nothing to measure
-    mismatch, last, stopped, passes = [], time.monotonic(), False, 0
+    mismatch, last, stopped = [], time.monotonic(), False
     bar = None
     if progress:
         from ._progress import Progress
@@ -256,14 +256,11 @@ def link(run: Run | str | Path, target: str, source: str | None = None, *, units
                     mismatch.append((mined[p], r, f_a[j], score))
                 if not left[p]:
                     _finish_unit(state, p, sums, change, gap, count)
-            passes += 1
             if bar:
                 bar.advance(start + len(part))
             if time.monotonic() - last > config.checkpoint_seconds:
                 _save(run, path, state, settings)
                 last = time.monotonic()
-            if _stop_after is not None and passes >= _stop_after:
-                break
     except KeyboardInterrupt:
         stopped = True
     finally:
