@@ -115,6 +115,7 @@ USAGE = [
     (["layers", MODEL, "--mean", "a,b,c"], "--mean takes one number per input channel"),
     (["layers", MODEL, "--arch-option", "novalue"], "--arch-option takes key=value"),
     (["mine", MODEL, "--corpus", "RUN", "--layers", "layer1"], "Missing option '--out'"),  # typer's own
+    (["link", "RUN", "--layer", "layer1", "--method", "fast"], "'fast' is not one of 'ig', 'gxa'"),
 ]
 
 
@@ -144,6 +145,7 @@ CTRL_C = [  # (arguments, the call that the interrupt hits)
     (["show", "RUN", "layer1:0"], "unitlens.unit_summary"),
     (["atlas", "RUN"], "unitlens.render_atlas"),
     (["demo", "--out", "NEW"], "unitlens.build_demo"),
+    (["link", "RUN", "--layer", "layer1"], "unitlens.links.link"),
 ]
 
 
@@ -164,7 +166,7 @@ def test_every_command_is_in_the_ctrl_c_check():
     assert sorted(a[0] for a, _ in CTRL_C) == sorted(COMMANDS)
 
 
-COMMANDS = ["layers", "mine", "show", "run", "synth", "compare", "atlas", "probe", "demo"]
+COMMANDS = ["layers", "mine", "show", "run", "synth", "compare", "atlas", "probe", "demo", "link"]
 
 
 def _help(command: str) -> str:

@@ -116,12 +116,9 @@ def _traced(module: nn.Module):
     return graph, list(tracer.node_to_qualname.items()), layer_of
 
 
-def _fx_graph(module: nn.Module, layers: dict[str, tuple[str, int]], reused: set[str]):
-    """torchvision's graph feature extractor for `layers` ({layer: (module, call)}), and
-    {layer: graph node name}; several layers may share a node (a block and its last op)."""
-    from torchvision.models import feature_extraction as fe
-
-    _, order, layer_of = _traced(module)
+def _layer_qualnames(order, layer_of, layers: dict[str, tuple[str, int]], reused: set[str]) -> dict[str, str]:
+    """{layer: graph node name} for `layers` ({layer: (module, call)}); several layers may share a
+    node (a block and its last op)."""
     qualname = dict(order)
     node_of = {layer: qualname[node] for node, layer in layer_of.items()}
     leaves = {node.target for node in layer_of}
@@ -134,6 +131,24 @@ def _fx_graph(module: nn.Module, layers: dict[str, tuple[str, int]], reused: set
             nodes[layer] = [q for _, q in order if q.startswith(mod + ".")][-1]  # IndexError: none inside
         else:
             raise LookupError(f"{layer}: no graph node is this call")
+    return nodes
+
+
+def layer_nodes(module: nn.Module, layers: dict[str, tuple[str, int]], reused: set[str]):
+    """The traced graph of `module` and {layer: its node} for `layers` (links.py cuts the graph there)."""
+    graph, order, layer_of = _traced(module)
+    names = _layer_qualnames(order, layer_of, layers, reused)
+    by_name = {q: node for node, q in order}
+    return graph, {layer: by_name[q] for layer, q in names.items()}
+
+
+def _fx_graph(module: nn.Module, layers: dict[str, tuple[str, int]], reused: set[str]):
+    """torchvision's graph feature extractor for `layers` ({layer: (module, call)}), and
+    {layer: graph node name}; several layers may share a node (a block and its last op)."""
+    from torchvision.models import feature_extraction as fe
+
+    _, order, layer_of = _traced(module)
+    nodes = _layer_qualnames(order, layer_of, layers, reused)
     graph = fe.create_feature_extractor(module, return_nodes={q: q for q in set(nodes.values())})
     _clone_outputs(graph)
     return graph.eval(), nodes

@@ -153,3 +153,16 @@ def smoothgrad(f: Fn, x: torch.Tensor, noise: float = 0.15, samples: int = 32, *
     s, g = gradients(f, x.unsqueeze(0) + noise * span * eps, batch)
     f_x = float(s.mean()) if noise == 0 else float(f(x.unsqueeze(0)).detach()[0])
     return Attribution("smoothgrad", g.double().mean(0).to(x.dtype), f_x, None, samples)
+
+
+def baseline_of(pixels: torch.Tensor, kind: str) -> torch.Tensor:
+    """The integrated-gradients baseline of an image (3, S, S) in [0, 1]: black, or blurred."""
+    if kind == "black":
+        return torch.zeros_like(pixels)
+    import math
+
+    from torchvision.transforms.functional import gaussian_blur
+
+    sigma = max(0.05 * pixels.shape[-1], 0.5)
+    k = min(2 * math.ceil(3 * sigma) + 1, 2 * (min(pixels.shape[-2:]) // 2) - 1)
+    return gaussian_blur(pixels.unsqueeze(0), [k, k], [sigma, sigma])[0]

@@ -47,6 +47,8 @@ Drive = _choice("Drive", ("up", "down"))
 Labels = _choice("Labels", ("folders",))
 IgRule = _choice("IgRule", ("trapezoid", "midpoint", "left", "right"))
 Baseline = _choice("Baseline", ("black", "blur"))
+LinkMethod = _choice("LinkMethod", ("ig", "gxa"))
+LinkBaseline = _choice("LinkBaseline", ("zero", "blur"))
 
 
 def _value(choice: Optional[Enum]) -> Optional[str]:
@@ -358,6 +360,31 @@ def compare_cmd(
     print(comparison_text(s))
 
 
+@app.command("link")
+def link_cmd(
+    run: Path = typer.Argument(..., metavar="RUN", help="A mined run folder."),
+    layer: str = typer.Option(..., "--layer", help="The later layer, whose mined units are fed (e.g. layer3)."),
+    source: Optional[str] = typer.Option(None, "--from", help="The earlier layer whose channels feed it (default: the mined layer just before)."),
+    units: Optional[str] = typer.Option(None, "--units", help="Only these units of --layer, e.g. 0-63,100 (default: all mined)."),
+    method: LinkMethod = typer.Option("ig", "--method", help="ig: integrated gradients; gxa: gradient x activation (one backward)."),
+    steps: int = typer.Option(16, "--steps", min=1, help="Integrated-gradients steps (trapezoid rule)."),
+    baseline: LinkBaseline = typer.Option("zero", "--baseline", help="Start of the path: zero activations, or the blurred exemplar's."),
+    exemplars: Optional[int] = typer.Option(None, "--exemplars", min=1, help="Top exemplars per unit to use (default: all mining kept)."),
+    batch: int = typer.Option(64, "--batch", min=1, help="Rows (exemplars x path points) per forward and backward."),
+    force: bool = typer.Option(False, "--force", help="Measure again, replacing links stored with other settings."),
+    checkpoint_every: float = typer.Option(10.0, "--checkpoint-every", min=0.0, help="Seconds between saved checkpoints."),
+    allow_pickle: bool = AllowPickle, threads: Optional[int] = Threads,
+):
+    """Measure how the channels of an earlier layer feed each unit of LAYER; `show` and the atlas list them."""
+    from .links import LinkConfig, link, link_text
+
+    config = LinkConfig(method=method.value, steps=steps, baseline=baseline.value, exemplars=exemplars, batch=batch,
+                        checkpoint_seconds=checkpoint_every)
+    path = link(run, layer, source, units=units, config=config, progress=sys.stderr.isatty(), force=force,
+                allow_pickle=allow_pickle)
+    print(link_text(path))
+
+
 @app.command("atlas")
 def atlas_cmd(
     run: Path = typer.Argument(..., metavar="RUN", help="A run folder (mined, synthesised, or both), or a folder written by `compare`."),
@@ -391,6 +418,7 @@ def probe_cmd(
     noise: float = typer.Option(0.15, "--noise", min=0.0, help="SmoothGrad noise, a fraction of the image's range."),
     samples: int = typer.Option(32, "--samples", min=1, help="SmoothGrad noisy copies."),
     synth: Optional[bool] = typer.Option(None, "--synth/--no-synth", help="Synthesise an image if the unit has none (default: only when mining afresh)."),
+    links: bool = typer.Option(True, "--links/--no-links", help="List the units of the mined layer before that feed it (measured once, then read from the run)."),
     steps: int = typer.Option(48, "--steps", min=1, help="Synthesis steps."),
     synth_size: int = typer.Option(96, "--synth-size", min=16, help="Synthesised image size (at most the input size)."),
     labels: Optional[Labels] = LabelsOpt,
@@ -424,7 +452,7 @@ def probe_cmd(
     config = ProbeConfig(top_k=top, attribute=attribute, methods=parse_methods(attribution), ig_steps=ig_steps,
                          ig_max_steps=ig_max_steps, ig_rule=ig_rule.value, baseline=baseline.value, smoothgrad_noise=noise,
                          smoothgrad_samples=samples, synth=synth, synth_steps=steps, synth_size=synth_size,
-                         workers=workers)
+                         workers=workers, links=links)
     c = None
     if not is_run:
         from . import open_corpus

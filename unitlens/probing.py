@@ -70,6 +70,7 @@ class ProbeConfig:
     thumb: int = 160  # side of the crops and heat maps on the page
     batch_size: int = 32  # images per forward pass when mining
     workers: int | None = None  # decoding processes when mining; None: from the core count
+    links: bool = True  # measure which units of the mined layer before feed it (links.py), unless stored
 
     def validate(self) -> None:
         for name, v, lo in (("top_k", self.top_k, 1), ("attribute", self.attribute, 0), ("ig_steps", self.ig_steps, 1),
@@ -118,20 +119,10 @@ def unit_function(model, layer: str, channel: int, y: int, x: int, extractor=Non
     return f
 
 
-def baseline_of(pixels: torch.Tensor, kind: str) -> torch.Tensor:
-    """The integrated-gradients baseline of an image (3, S, S) in [0, 1]: black, or blurred."""
-    if kind == "black":
-        return torch.zeros_like(pixels)
-    from torchvision.transforms.functional import gaussian_blur
-
-    sigma = max(0.05 * pixels.shape[-1], 0.5)
-    k = min(2 * math.ceil(3 * sigma) + 1, 2 * (min(pixels.shape[-2:]) // 2) - 1)
-    return gaussian_blur(pixels.unsqueeze(0), [k, k], [sigma, sigma])[0]
-
-
 def attribute(f, pixels: torch.Tensor, config: ProbeConfig) -> list:
     """Every chosen method on one input: a list of attribution.Attribution."""
     from . import attribution as A
+    from .attribution import baseline_of
 
     out = []
     for m in config.methods:
@@ -229,6 +220,11 @@ def probe(source, unit: str | tuple[str, int], *, corpus=None, out=None, config:
         goal, synth_config = _synth_goal_config(run, model, lu, config)
         synthesize(model, goal, run.path, synth_config, progress=progress)
         summary = unit_summary(run, layer, channel)
+    if config.links and not summary.get("links", {}).get("feeders"):
+        from .links import link_unit
+
+        if link_unit(run, model, layer, channel, progress=progress):
+            summary = unit_summary(run, layer, channel)
     summary["exemplars"] = summary["exemplars"][:config.top_k]
     summary["model"] = model.spec
     d = run.path / "probe" / f"{safe_name(layer)}-{channel:04d}"
@@ -403,6 +399,9 @@ def probe_text(s: dict) -> str:
     for im in s["synth"]:
         ratio = f", {im['vs_best_exemplar']:.2f}x the best exemplar" if im.get("vs_best_exemplar") else ""
         lines.append(f" synthesised: {im['image']} (activation {im['max_activation']:.4g}{ratio})")
+    from .links import links_text
+
+    lines += links_text(s.get("links"))
     lines.append(s["page"])
     return "\n".join(lines)
 

@@ -179,6 +179,23 @@ class UnitView:
         f = self.summary.get("facets")
         return [[Picture(m["id"], Path(m["image"])) for m in g] for g in f["groups"]] if f else []
 
+    @property
+    def feeders(self) -> Table:
+        """The earlier units that feed this one, as `unitlens link` measured them: per linked layer, the
+        strongest up (positive contribution) then down; [] before any link. Follow one with
+        `run.layer(row["layer"]).unit(row["unit"])`."""
+        rows = [{"layer": f["layer"], "unit": e["unit"], "direction": key, **{k: v for k, v in e.items() if k != "unit"},
+                 "method": f["method"]}
+                for f in (self.summary.get("links") or {}).get("feeders", []) for key in ("up", "down") for e in f[key]]
+        return Table(rows, f"units feeding {self.name}")
+
+    @property
+    def feeds(self) -> Table:
+        """The later units this one feeds most (by its signed share of their inputs); [] before any link."""
+        rows = [{"layer": f["layer"], **e, "method": f["method"]}
+                for f in (self.summary.get("links") or {}).get("feeds", []) for e in f["units"]]
+        return Table(rows, f"units {self.name} feeds")
+
     def __repr__(self) -> str:
         st = self.stats
         parts = [f"peak {st['max']:.4g}" if st["max"] is not None else None,

@@ -10,6 +10,14 @@ from .errors import UnitlensError
 from .store import Run, read_npz
 
 
+def rounded(x, digits: int = 4):
+    """A float rounded to `digits` significant digits; None for NaN/inf (JSON has neither)."""
+    x = float(x)
+    if not math.isfinite(x):
+        return None
+    return float(f"{x:.{digits}g}")
+
+
 def finite_or_none(x) -> float | None:
     x = float(x)
     return None if math.isnan(x) or math.isinf(x) else x
@@ -77,6 +85,11 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
         result["negative_exemplars"] = listing("bottom")
     result["synth"] = unit_images(run, layer, channel)  # [] until `unitlens synth` has run
     result["facets"] = unit_facets(run, layer, channel, corpus)
+    from .links import unit_links
+
+    links = unit_links(run, layer, channel)
+    if links is not None:  # only where `unitlens link` has run
+        result["links"] = links
     return result
 
 
@@ -108,6 +121,9 @@ def summary_text(s: dict, layer: str, channel: int) -> str:
         if r.get("nearest"):
             lines.append("    nearest natural images: " + ", ".join(f"{shown(n['id'])} ({n['similarity']:.2f})"
                                                                   for n in r["nearest"][:3]))
+    from .links import links_text
+
+    lines += links_text(s.get("links"))
     return "\n".join(lines)
 
 

@@ -21,6 +21,7 @@ import numpy as np
 
 from ..store import Run, read_json, read_npz
 from ..summary import layer_firing
+from ..summary import rounded as _f
 
 HIST_BINS = 24  # linear bins of the re-binned histogram (cards and unit view)
 TRACE_POINTS = 96  # at most this many points of an optimisation trace reach the page
@@ -30,14 +31,6 @@ FACET_SHOWN = 4  # such thumbnails per facet
 WHOLE = 160  # px, longest side of a whole-image thumbnail in the unit view
 WHOLE_COLS, WHOLE_ROWS = 16, 16  # cells per whole-image sheet: 2560 px square at most
 WHOLE_MAX = 4096  # whole images per layer, rank 1 of every unit first: bounds the atlas's decoding
-
-
-def _f(x, digits: int = 4):
-    """A float rounded to `digits` significant digits; None for NaN/inf (JSON has neither)."""
-    x = float(x)
-    if not math.isfinite(x):
-        return None
-    return float(f"{x:.{digits}g}")
 
 
 def _fs(a, digits: int = 4) -> list:
@@ -259,6 +252,11 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     for key in ("trust", "doubts", "own_rank", "robust"):
         cards[key] = [c[key] if c else None for c in scard]
     details["synth"] = sdet
+    from .link_data import link_payload
+
+    lcards, ldetails = link_payload(run, layer, units)  # empty unless `unitlens link` has run
+    cards.update(lcards)
+    details.update(ldetails)
     data = LayerData(layer, cards, details, sheets, images)
     if idx is not None:
         data.facet_thumbs, data.whole = facet_thumbs, whole

@@ -21,6 +21,7 @@ from importlib import resources
 from pathlib import Path
 
 from ..errors import UnitlensError, closest
+from ..links import stored_pairs
 from ..store import Run, atomic_write, now, read_json, safe_name, write_json
 from .data import layer_data
 from .files import READABLE, STATE, place_all, write_if_changed
@@ -137,7 +138,7 @@ def _renderer_version() -> str:
 
     h = hashlib.sha256()
     root = resources.files(__package__)
-    for rel in ("render.py", "data.py", "html.py", "templates/page.html", *(f"static/{s}" for s in STATIC)):
+    for rel in ("render.py", "data.py", "link_data.py", "html.py", "templates/page.html", *(f"static/{s}" for s in STATIC)):
         h.update(root.joinpath(rel).read_bytes())
     return f"{__version__}+{h.hexdigest()[:10]}"
 
@@ -154,7 +155,8 @@ def _layer_key(run: Run, name: str, m: dict) -> str:
     mdir, sdir = run.layer_dir(name), run.layer_dir(name, "synth")
     parts = [_stat(mdir / "index.npz"), _stat(run.path / "corpus.json"), _stat(sdir / "units.json"),
              [_stat(p) for p in sorted(mdir.glob("sheet-*.jpg"))],
-             (m.get("corpus") or {}).get("classes")]
+             (m.get("corpus") or {}).get("classes"),
+             [_stat(p) + [p.parent.name] for p in stored_pairs(run)]]  # links to and from any layer
     return hashlib.sha256(json.dumps(parts).encode()).hexdigest()
 
 

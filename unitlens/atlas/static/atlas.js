@@ -120,7 +120,7 @@
   }
 
   /* ---- order, filter, and the virtual grid */
-  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio, trust: C.trust, own_rank: C.own_rank, robust: C.robust };
+  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio, trust: C.trust, own_rank: C.own_rank, robust: C.robust, feeders: C.feeders };
   const state = { sort: "id", desc: false, filter: null, trust: "all" };
   const TRUST = {  // the synthesis filter: what a unit's first synthesised image must show
     all: () => true,
@@ -211,7 +211,7 @@
     sel.addEventListener("change", () => { state.trust = sel.value; layout(); });
     dirBtn.after(lab);
   }
-  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio], ["trust", C.trust], ["own_rank", C.own_rank], ["robust", C.robust]].forEach(([k, v]) => {
+  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio], ["trust", C.trust], ["own_rank", C.own_rank], ["robust", C.robust], ["feeders", C.feeders]].forEach(([k, v]) => {
     const opt = sortSel.querySelector('option[value="' + k + '"]');
     if (!v || !v.some(x => x !== null && x !== undefined)) { opt.disabled = true; opt.textContent += " (none)"; }
   });
@@ -307,6 +307,8 @@
     const negSec = want(C.mined && C.negative, right, "Images that push it lowest (spatial minimum)", "uv-neg");
     const labSec = want(C.mined, right, "By label", "uv-labels");
     const synSec = want(!!C.synth_src[i], right, "Synthesised images: how they were made, how far to trust them", "uv-synth");
+    const inSec = want(!!C.feeders && C.feeders[i] !== null && C.feeders[i] !== undefined, left, "Fed by: the earlier units that drive it", "uv-fedby");
+    const outSec = want(!!C.feeds_later, left, "Feeds: the later units it drives", "uv-feeds");
     add(view, "p", "uv-caution", "Exemplars and synthesised images are evidence about this unit, not proof of what it means. " +
       "Keys: ← → (or k j) previous / next unit, Esc back to all units.");
     view.focus({ preventScroll: true });
@@ -325,6 +327,8 @@
       if (negSec) exemplars(negSec, i, D, D.bottom, C.k);
       if (labSec) labels(labSec, i, D);
       if (synSec) synthesis(synSec, i, sd);
+      if (inSec) fedBy(inSec, i, D);
+      if (outSec) feedsInto(outSec, i, D);
       view.dataset.complete = "1";
     });
   }
@@ -549,6 +553,53 @@
       box.appendChild(P.lines({ series: rec.trace.map((t, m) => ({ x: t.step, y: t.value, name: "image " + (m + 1) })),
         width: 400, height: 170, xlabel: "optimisation step", ylabel: "goal score (under that step's warp)", title: "goal score per step" }));
     }
+  }
+
+  /* links (links.py): strips of units, each a link to its own unit view on its layer's page */
+  function linkStrip(parent, title, items, weight) {
+    if (!items.length) return;
+    const row = add(parent, "div", "link-row");
+    add(row, "h4", "link-head", title);
+    const strip = add(row, "div", "link-strip");
+    items.forEach(([u, c, share, href, pic, w]) => {
+      const a = add(strip, href ? "a" : "span", "link-unit " + (c >= 0 ? "up" : "down"));
+      if (href) a.href = href;
+      a.dataset.unit = String(u);
+      if (pic && pic[0] === "img") {
+        const im = el("img", "synthimg");
+        im.loading = "lazy"; im.width = im.height = 64; im.alt = "unit " + u; im.src = pic[1];
+        a.appendChild(im);
+      } else if (pic && pic[0] === "crop") {
+        const e = add(a, "span", "crop");
+        e.style.width = e.style.height = "64px";
+        e.style.backgroundImage = 'url("' + pic[1] + '")';
+        e.style.backgroundSize = (pic[3] * 64) + "px " + (pic[2] * 64) + "px";
+        e.style.backgroundPosition = "0px " + (-pic[4] * 64) + "px";
+      } else add(a, "span", "crop nocrop");
+      add(a, "span", "link-id", "unit " + u);
+      add(a, "span", "link-val", (c >= 0 ? "+" : "") + fmt(c) + " · " + (share >= 0 ? "+" : "") + Math.round(100 * share) + "%");
+      if (w !== null && w !== undefined && weight) add(a, "span", "link-w", weight + " " + fmt(w, 3));
+      a.title = "unit " + u + ": contribution " + fmt(c, 4) + ", " + Math.round(100 * share) + "% of its inputs' absolute sum" +
+        (href ? "; open its unit view" : "; its layer has no page in this atlas");
+    });
+  }
+  function fedBy(sec, i, D) {
+    const groups = D.feeders ? D.feeders[i] : null;
+    if (!groups) { add(sec, "p", "note", "No links measured into this unit (`unitlens link`)."); return; }
+    groups.forEach(g => {
+      add(sec, "p", "note", "From " + g.layer + ": " + g.method + " at the activations of " + g.layer + " (" + g.baseline +
+        " baseline" + (g.steps ? ", " + g.steps + " steps" : "") + "), mean over " + g.exemplars + " exemplars; " +
+        "effective feeders " + fmt(g.effective, 3) + "; the unit's mean change " + fmt(g.change) +
+        (g.gap !== null ? ", contributions add up to it within " + (100 * g.gap).toFixed(1) + "%" : "") + "." +
+        (g.stale ? " Stale: this layer was mined again since; measure again with `unitlens link ... --force`." : ""));
+      linkStrip(sec, "drive it up", g.up, g.weight);
+      linkStrip(sec, "hold it down", g.down, g.weight);
+    });
+  }
+  function feedsInto(sec, i, D) {
+    const groups = D.feeds ? D.feeds[i] : null;
+    if (!groups) { add(sec, "p", "note", "No links measured out of this unit's layer into a later one."); return; }
+    groups.forEach(g => linkStrip(sec, "in " + g.layer + " (share of each unit's inputs, " + g.method + ")", g.units, null));
   }
 
   function closeUnit() {
