@@ -250,3 +250,56 @@ def test_label_command_show_and_json(shapes, capsys):
     assert c["label"] == "red square" and c["concepts"][0]["images"] == 24
     code, out, err = cli(capsys, "label", run.path, "--masks", root / "nowhere")
     assert code == 1 and err.strip().splitlines()[-1].startswith("Error: Label-map folder")
+
+
+def test_notebook_objects_carry_the_concepts(shapes):
+    from unitlens import load_run
+
+    run, ann = _labelled(shapes, "view")
+    label(run, ann, ["act"], model=shapes[1], workers=0)
+    view = load_run(run.path)
+    assert view.unit("act:0").concepts == unit_concepts(run, "act", 0)
+    rows = {r["unit"]: r for r in view.units("act")}
+    assert rows[0]["concept"] == "red square" and rows[1]["concept"] == "green disc"
+    assert rows[0]["iou"] == pytest.approx(unit_concepts(run, "act", 0)["iou"])
+    assert view.layer("act").concepts["labelled"] == sum(r["concept"] is not None for r in rows.values())
+    assert view.layer("pool").concepts is None  # not labelled
+
+
+def test_atlas_shows_chips_filter_order_summary_and_mask_outlines(shapes, browser):
+    from test_atlas import _clean, _open, _units_data
+
+    from unitlens import render_atlas
+
+    run, ann = _labelled(shapes, "atlas")
+    label(run, ann, ["act"], model=shapes[1], workers=0)
+    atlas = render_atlas(run).parent
+    cards = _units_data(atlas, "act")
+    assert cards["concept"][:2] == ["red square", "green disc"]
+    assert cards["concept_summary"]["labelled"] == sum(c is not None for c in cards["concept"])
+    details = _units_data(atlas, "act", "units")
+    # the outline of the red unit's best exemplar traces the red square drawn in that image's label map
+    o = details["outlines"][0]
+    assert o["concept"] == "red square" and o["paths"][0]
+    page = _open(browser, (atlas / "layer-act.html").as_uri(), height=1400)
+    chips = page.js("Object.fromEntries([...document.querySelectorAll('#grid .card')].map(c => [c.dataset.unit, "
+                    "c.querySelector('.concept-chip') ? c.querySelector('.concept-chip span').textContent : null]))")
+    assert chips["0"] == "red square" and chips["1"] == "green disc"
+    assert page.js("document.querySelectorAll('.concept-summary [data-plot=concepts] rect.bar').length") == \
+        len(cards["concept_summary"]["share"])
+    shown = "[...document.querySelectorAll('#grid .card')].map(c => +c.dataset.unit).sort()"
+    page.js("(s => { s.value = 'red square'; s.dispatchEvent(new Event('change')); })(document.getElementById('concept'))")
+    assert page.js(shown) == [u for u, c in enumerate(cards["concept"]) if c == "red square"]
+    page.js("(s => { s.value = ''; s.dispatchEvent(new Event('change')); })(document.getElementById('concept'))")
+    page.js("(s => { s.value = 'iou'; s.dispatchEvent(new Event('change')); })(document.getElementById('sort'))")
+    order = page.js("[...document.querySelectorAll('#grid .card')].sort((a, b) => parseFloat(a.style.top) - "
+                    "parseFloat(b.style.top) || parseFloat(a.style.left) - parseFloat(b.style.left)).map(c => +c.dataset.unit)")
+    assert order == sorted(range(3), key=lambda u: -cards["iou"][u])
+    page.close()
+    page = _open(browser, (atlas / "layer-act.html").as_uri() + "#unit-0", height=1400)
+    page.wait_for("document.getElementById('unit').dataset.complete")
+    assert page.js("document.querySelectorAll('.uv-concepts [data-plot=concepts] rect.bar').length") == 2
+    drawn = page.js("document.querySelectorAll('.uv-ex .ex svg.outline path').length")
+    assert drawn == sum(p is not None and p != "" for p in o["paths"][:len(details["top"][0])]) and drawn > 0
+    _clean(page)
+    page.close()

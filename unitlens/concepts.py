@@ -237,6 +237,8 @@ def label(run: Run | str, annotations: Annotations, layers=None, *, batch_size: 
                              checkpoint_seconds, progress, _stop_after)
         if not done:
             return {}
+        for name in layers:
+            _outlines(run, name, annotations, corpus)
     if annotations.tags is not None:
         entry["tags"] = _tag_aucs(run, corpus, layers, annotations, skipped)
     for name in layers:
@@ -413,6 +415,108 @@ def _overlap_pass(run, model, corpus, layers, ann: Annotations, thresholds, batc
                   iou=iou, images=s["images"][src_of], pixels=s["pixels"], threshold=thresholds[n][0],
                   threshold_error=thresholds[n][1])
     return True
+
+
+# ----------------------------------------------------------------------------- outlines for the atlas
+
+OUTLINE_GRID = 24  # a labelled unit's concept mask, per top exemplar, sampled on this grid over the crop box
+
+
+def _outlines(run: Run, layer: str, ann: Annotations, corpus) -> None:
+    """concepts/<layer>/outlines.npz: for every unit with a concept, its mask inside each top
+    exemplar's crop box (idx top_box, original pixels), sampled at OUTLINE_GRID x OUTLINE_GRID cell
+    centres; `known` is False where the source does not annotate that image."""
+    z = read_npz(run.layer_dir(layer, "concepts") / "overlap.npz")
+    idx = run.index(layer)
+    named = layer_concepts(run, layer)
+    U, K = idx["top_image"].shape
+    G = OUTLINE_GRID
+    grid = np.zeros((U, K, G, G), dtype=bool)
+    known = np.zeros((U, K), dtype=bool)
+    boxes = idx.get("top_box")
+    if boxes is None:
+        return
+    where = {c: (int(z["source"][k]), k - int(np.flatnonzero(z["source"] == z["source"][k])[0]))
+             for k, c in enumerate(z["concepts"].tolist())}
+    cache: dict = {}
+    for u, c in enumerate(named["label"]):
+        if c is None or c not in where:
+            continue
+        s, k = where[c]
+        src = ann.sources[s]
+        for r in range(K):
+            i = int(idx["top_image"][u, r])
+            if i >= len(corpus) or corpus.files[i] not in src.entries:
+                continue
+            x0, y0, x1, y1 = (int(v) for v in boxes[u, r])
+            if x1 <= x0 or y1 <= y0:
+                continue
+            if (s, i) not in cache:
+                from PIL import Image
+
+                with Image.open(corpus.path(i)) as img:  # the size only; masks are in original pixels
+                    w, h = img.size
+                    if img.getexif().get(0x0112, 1) in (5, 6, 7, 8):
+                        w, h = h, w
+                cache = {(s, i): src.masks(corpus.files[i], (w, h))}  # one image's masks at a time
+            m = cache[(s, i)][k]
+            ys = np.minimum(y0 + ((np.arange(G) + 0.5) * (y1 - y0) / G).astype(int), m.shape[0] - 1)
+            xs = np.minimum(x0 + ((np.arange(G) + 0.5) * (x1 - x0) / G).astype(int), m.shape[1] - 1)
+            grid[u, r] = m[np.ix_(ys, xs)]
+            known[u, r] = True
+    write_npz(run.layer_dir(layer, "concepts") / "outlines.npz", units=idx["units"], known=known,
+              grid=np.packbits(grid, axis=-1), size=np.array(G))
+
+
+def outline_path(mask: np.ndarray) -> str:
+    """SVG path (grid units) of the edges between cells inside `mask` (G, G) and cells outside it."""
+    m = np.pad(mask, 1)
+    parts = []
+    ys, xs = np.nonzero(m[1:, 1:-1] != m[:-1, 1:-1])  # horizontal edges at y between rows y-1 and y
+    parts += [f"M{x} {y}h1" for y, x in zip(ys, xs)]
+    ys, xs = np.nonzero(m[1:-1, 1:] != m[1:-1, :-1])  # vertical edges at x
+    parts += [f"M{x} {y}v1" for y, x in zip(ys, xs)]
+    return "".join(parts)
+
+
+def atlas_columns(run: Run, layer: str, units: list[int]) -> tuple[dict, dict]:
+    """What the atlas adds for a labelled layer: card columns (concept, IoU, the layer summary) and
+    details (a unit's concepts, its top exemplars' mask outlines); ({}, {}) when not labelled."""
+    named = layer_concepts(run, layer)
+    d = run.layer_dir(layer, "concepts")
+    if named is None or not (d / "overlap.npz").is_file():
+        return {}, {}
+    z = read_npz(d / "overlap.npz")
+    at = {u: j for j, u in enumerate(named["units"])}
+    rows = [at.get(u) for u in units]
+    label = [named["label"][j] if j is not None else None for j in rows]
+    names = sorted({c for c in label if c is not None})
+    cards = {"concept": label, "iou": [None if j is None else round(named["iou"][j], 4) for j in rows],
+             "concept_rank": [names.index(c) if c is not None else None for c in label],
+             "concept_summary": named["summary"]}
+    top = []
+    for j in rows:
+        if j is None:
+            top.append(None)
+            continue
+        order = np.argsort(-z["iou"][j], kind="stable")[:5]
+        top.append([[str(z["concepts"][k]), round(float(z["iou"][j, k]), 4), int(z["images"][k])] for k in order])
+    details = {"concepts": top, "concept_cutoff": CUTOFF}
+    if (d / "outlines.npz").is_file():
+        o = read_npz(d / "outlines.npz")
+        G = int(o["size"])
+        grid = np.unpackbits(o["grid"], axis=-1, count=G).astype(bool)  # (U, K, G, G)
+        boxes = run.index(layer).get("top_box")
+        outlines = []
+        for j, c in zip(rows, label):
+            if j is None or c is None or boxes is None:
+                outlines.append(None)
+                continue
+            paths = [outline_path(grid[j, r]) if o["known"][j, r] else None for r in range(grid.shape[1])]
+            sizes = [[int(b[2] - b[0]), int(b[3] - b[1])] for b in boxes[j]]
+            outlines.append({"concept": c, "grid": G, "paths": paths, "boxes": sizes})
+        details["outlines"] = outlines
+    return cards, details
 
 
 # ----------------------------------------------------------------------------- tags

@@ -240,6 +240,12 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     for key in ("trust", "doubts", "own_rank", "robust"):
         cards[key] = [c[key] if c else None for c in scard]
     details["synth"] = sdet
+    if idx is not None:  # what `unitlens label` found, if it ran
+        from ..concepts import atlas_columns
+
+        named_cards, named_details = atlas_columns(run, layer, units)
+        cards.update(named_cards)
+        details.update(named_details)
     data = LayerData(layer, cards, details, sheets, images)
     if idx is not None:
         data.facet_thumbs = facet_thumbs
