@@ -242,7 +242,7 @@ def test_label_command_show_and_json(shapes, capsys):
     code, out, err = cli(capsys, "label", run.path, "--masks", root / "masks", "--legend", root / "legend.csv",
                          "--layers", "act", "--workers", "0")
     assert code == 0, err
-    assert "act: 3 of 3 units detect a concept" in out and "24 images annotated, 0 not" in out
+    assert "act: 3 of 3 units detect a concept" in out and "24 images annotated, 0 without annotations" in out
     code, out, _ = cli(capsys, "show", run.path, "act:0")
     assert "detects red square" in out
     code, out, _ = cli(capsys, "show", run.path, "act:0", "--json")
@@ -303,3 +303,32 @@ def test_atlas_shows_chips_filter_order_summary_and_mask_outlines(shapes, browse
     assert drawn == sum(p is not None and p != "" for p in o["paths"][:len(details["top"][0])]) and drawn > 0
     _clean(page)
     page.close()
+
+
+def test_demo_label_maps_agree_with_the_factors_and_stain_units_find_stains(tmp_path):
+    """The swatch generator's label maps against its own factors file: stains exactly on the swatches
+    it lists as stained, stripes by their orientation; the shipped network's units labelled "stain"
+    have mostly stained swatches among their top exemplars (by factors.csv)."""
+    from unitlens.demo import net, swatches
+    from unitlens.demo.build import demo_model
+
+    corpus_dir, maps = tmp_path / "corpus", tmp_path / "maps"
+    swatches.write_corpus(corpus_dir, count=72, size=net.INPUT_SIZE, label_maps=maps)
+    factors = swatches.read_factors(corpus_dir)
+    for path, s in factors:
+        lab = np.asarray(Image.open(maps / path.relative_to(corpus_dir)))
+        assert (lab == 1).any() == s.stain, path
+        assert (lab == 2).any() == (s.kind == "dots"), path
+        assert (lab == 3).any() == (s.kind == "stripe" and s.orientation == 0), path
+        assert (lab == 4).any() == (s.kind == "stripe" and s.orientation == 90), path
+    model = demo_model()
+    corpus = open_corpus(corpus_dir, labels="folders")
+    run = mine(model, corpus, parse_layers(model, ["block3"]), tmp_path / "run", MineConfig(top_k=8, workers=0))
+    label(run, read_annotations(corpus, masks=[maps]), model=model, workers=0)
+    stained = {path.relative_to(corpus_dir).as_posix(): s.stain for path, s in factors}
+    idx = run.index("block3")
+    named = [u for u in idx["units"].tolist() if (unit_concepts(run, "block3", u) or {}).get("label") == "stain"]
+    for u in named:
+        top = [corpus.files[i] for i in idx["top_image"][list(idx["units"]).index(u)]]
+        assert np.mean([stained[f] for f in top]) >= 0.75, (u, top)
+    print(f"block3 units labelled stain: {named}")

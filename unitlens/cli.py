@@ -224,7 +224,7 @@ def label_cmd(
     batch_size: int = typer.Option(16, "--batch-size", min=1, help="Images per forward pass."),
     workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
     threads: Optional[int] = Threads,
-    force: bool = typer.Option(False, "--force", help="Recompute the activation thresholds too."),
+    force: bool = typer.Option(False, "--force", help="Label again even with the same files, thresholds included."),
     as_json: bool = Json,
 ):
     """Name what each unit detects from your annotations: IoU with masks, ROC AUC with image tags."""

@@ -50,6 +50,7 @@ class Annotations:
     tags: dict | None = field(default=None, repr=False)
     tags_path: str | None = None
     tags_unmatched: int = 0
+    stamp: str = ""  # the annotation files' paths, sizes and dates: a finished labelling with the same is not redone
 
     @property
     def concepts(self) -> tuple[str, ...]:
@@ -83,7 +84,23 @@ def read_annotations(corpus, masks=(), legends=(), coco_files=(), tags=None) -> 
                                 f"within the corpus folder, e.g. {corpus.files[0]}.")
     _check_sizes(sources, corpus)
     tag_map, unmatched = read_tags(tags, corpus) if tags is not None else (None, 0)
-    return Annotations(tuple(sources), tag_map, None if tags is None else str(tags), unmatched)
+    files = [p for s in sources for p in ([s.path] if s.kind == "coco" else s.entries.values())]
+    files += [f"{d}/legend.csv" for d in masks] + list(map(str, legends)) + ([str(tags)] if tags is not None else [])
+    return Annotations(tuple(sources), tag_map, None if tags is None else str(tags), unmatched, _stamp(files))
+
+
+def _stamp(files) -> str:
+    import hashlib
+    import os
+
+    h = hashlib.sha256()
+    for f in files:
+        try:
+            st = os.stat(f)
+            h.update(f"{f}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
+        except OSError:
+            h.update(f"{f}\0missing\n".encode())
+    return h.hexdigest()
 
 
 def _check_sizes(sources, corpus) -> None:
@@ -191,13 +208,18 @@ def overlaps(fmap, thr, masks: np.ndarray, place, frame, fld) -> tuple[np.ndarra
     thr = torch.as_tensor(thr, dtype=torch.float32)
     inter = torch.zeros((U, K), dtype=torch.float64)
     act = torch.zeros(U, dtype=torch.float64)
+    # Bilinear values are convex combinations of map values: a unit whose map stays at or below its
+    # threshold has no pixel above it, so only the others are brought to the image (exactly the same sums).
+    fmap = fmap.float()
+    live = torch.nonzero(fmap.flatten(1).max(1).values > thr).flatten()
     step = max(1, _CHUNK // max(H * W, 1))
-    for a in range(0, U, step):
-        up = Ay @ fmap[a:a + step].float() @ Ax.T  # (u, H, W)
-        above = (up > thr[a:a + step, None, None]) & seen  # (u, H, W)
+    for a in range(0, len(live), step):
+        at = live[a:a + step]
+        up = Ay @ fmap[at] @ Ax.T  # (u, H, W)
+        above = (up > thr[at, None, None]) & seen  # (u, H, W)
         af = above.reshape(above.shape[0], -1).float()  # (u, H*W)
-        inter[a:a + step] = (af @ mf.T).double()  # float32 sums of 0/1 are exact below 2**24 pixels
-        act[a:a + step] = af.sum(1).double()
+        inter[at] = (af @ mf.T).double()  # float32 sums of 0/1 are exact below 2**24 pixels
+        act[at] = af.sum(1).double()
     return inter.round().long().numpy(), act.round().long().numpy(), m.sum((1, 2)).numpy()
 
 
@@ -222,7 +244,12 @@ def label(run: Run | str, annotations: Annotations, layers=None, *, batch_size: 
                                 f"{', '.join(mined) or 'none'}). Label mined layers only.")
     corpus = run.corpus()
     skipped = {s["file"] for s in (m.get("corpus") or {}).get("skipped", [])}
-    entry = {"top": TOP, "cutoff": CUTOFF, "bins": BINS, "layers": {}, "mapping": _MAPPING,
+    key = {"layers": {n: _units(run, n).tolist() for n in layers}, "corpus": corpus.fingerprint,
+           "annotations": annotations.stamp, "top": TOP, "bins": BINS}
+    old = m.get("concepts") or {}
+    if old.get("done") and old.get("key") == key and not force:
+        return old  # labelled already with these very files
+    entry = {"top": TOP, "cutoff": CUTOFF, "bins": BINS, "layers": {}, "mapping": _MAPPING, "key": key,
              "sources": [_source_entry(s, corpus) for s in annotations.sources]}
     if annotations.sources:
         if model is None:
@@ -242,7 +269,7 @@ def label(run: Run | str, annotations: Annotations, layers=None, *, batch_size: 
     if annotations.tags is not None:
         entry["tags"] = _tag_aucs(run, corpus, layers, annotations, skipped)
     for name in layers:
-        entry["layers"][name] = layer_concepts(run, name, _entry=entry)["summary"]
+        entry["layers"][name] = layer_concepts(run, name)["summary"]
     entry["done"] = True
     m = run.manifest()
     m["concepts"] = entry
@@ -564,7 +591,7 @@ def _num(x) -> float | None:
     return None if np.isnan(x) else x
 
 
-def layer_concepts(run: Run | str, layer: str, _entry: dict | None = None) -> dict | None:
+def layer_concepts(run: Run | str, layer: str) -> dict | None:
     """The labels of a layer's units: {"units", "label" (name or None), "iou", "summary"}, or None when
     the layer was not labelled. The summary: units with a concept, distinct concepts, share per concept."""
     run = run if isinstance(run, Run) else Run(run)
@@ -642,12 +669,12 @@ def labels_text(run: Run | str) -> str:
     lines = []
     for s in entry.get("sources", []):
         lines.append(f"{s['kind']} {shown(s['path'])}: {len(s['concepts'])} concepts, {s['annotated']} images "
-                     f"annotated, {s['unannotated']} not (left out, not counted as negatives)"
+                     f"annotated, {s['unannotated']} without annotations (those count for none of its concepts)"
                      + (f"; {s['unmatched']} annotated images not in the corpus" if s["unmatched"] else ""))
     if entry.get("tags"):
         t = entry["tags"]
         lines.append(f"tags {shown(t['path'])}: {len(t['tags'])} tags over {t['images']} images; {t['untagged']} "
-                     "images not listed (left out)")
+                     "images not listed (they count for no tag)")
     for name, s in (entry.get("layers") or {}).items():
         share = ", ".join(f"{shown(c)} {100 * v:.0f}%" for c, v in list(s["share"].items())[:5])
         lines.append(f"{shown(name)}: {s['labelled']} of {s['units']} units detect a concept (IoU >= {s['cutoff']}), "
