@@ -10,6 +10,7 @@ Layout (every file readable without unitlens):
   mine/<layer>/sheet-NNN.jpg    exemplar crops, one row per unit (see crops.py)
   mine/<layer>/pooled.npy, embed.npy, embed-basis.npz, facets.npz   embedding and facets (facets.py)
   mine/thumbs.npy               near-duplicate thumbnails (N, 768) uint8, with --dedupe
+  concepts/<layer>/*.npz        thresholds, overlaps with annotated concepts, tag AUCs (concepts.py)
 """
 from __future__ import annotations
 
