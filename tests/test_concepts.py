@@ -332,3 +332,30 @@ def test_demo_label_maps_agree_with_the_factors_and_stain_units_find_stains(tmp_
         top = [corpus.files[i] for i in idx["top_image"][list(idx["units"]).index(u)]]
         assert np.mean([stained[f] for f in top]) >= 0.75, (u, top)
     print(f"block3 units labelled stain: {named}")
+
+
+def test_tags_alone_need_no_pass_and_show_prints_them(shapes, capsys):
+    root, model, corpus, _ = shapes
+    run, _ = _labelled(shapes, "tags-only")
+    (root / "few-tags.csv").write_text("".join(f"{f},{'even' if i % 2 == 0 else ''}\n" for i, f in enumerate(corpus.files)))
+    code, out, err = cli(capsys, "label", run.path, "--tags", root / "few-tags.csv")
+    assert code == 0, err
+    assert "1 tags over 24 images; 0 images not listed" in out
+    assert not (run.path / "concepts/act/threshold.npz").exists()  # no forward pass for tags
+    code, out, _ = cli(capsys, "show", run.path, "pool:2")
+    assert "tags (ROC AUC of the per-image maximum):" in out and "even  (12 of 24 images)" in out
+    code, out, err = cli(capsys, "label", run.path, "--tags", root / "nowhere.csv")
+    assert code == 1 and "Error: The tags file" in err
+
+
+def test_outline_paths_trace_the_mask_edges_but_not_the_crop_border():
+    from unitlens.concepts import outline_path
+
+    square = np.zeros((4, 4), bool)
+    square[1:3, 1:3] = True  # a 2x2 block inside: its perimeter is 8 unit edges
+    assert sorted(outline_path(square).split("M")[1:]) == sorted(
+        ["1 1h1", "2 1h1", "1 3h1", "2 3h1", "1 1v1", "1 2v1", "3 1v1", "3 2v1"])
+    half = np.zeros((4, 4), bool)
+    half[:, 2:] = True  # runs off the crop: only the line at x = 2
+    assert sorted(outline_path(half).split("M")[1:]) == ["2 0v1", "2 1v1", "2 2v1", "2 3v1"]
+    assert outline_path(np.ones((4, 4), bool)) == ""

@@ -496,8 +496,9 @@ def _outlines(run: Run, layer: str, ann: Annotations, corpus) -> None:
 
 
 def outline_path(mask: np.ndarray) -> str:
-    """SVG path (grid units) of the edges between cells inside `mask` (G, G) and cells outside it."""
-    m = np.pad(mask, 1)
+    """SVG path (grid units) of the edges between cells inside `mask` (G, G) and cells outside it; the
+    crop's own border is no edge (the mask goes on beyond it)."""
+    m = np.pad(mask, 1, mode="edge")
     parts = []
     ys, xs = np.nonzero(m[1:, 1:-1] != m[:-1, 1:-1])  # horizontal edges at y between rows y-1 and y
     parts += [f"M{x} {y}h1" for y, x in zip(ys, xs)]
