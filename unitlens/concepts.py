@@ -40,7 +40,6 @@ from .store import Run, read_npz, write_npz
 TOP = 0.005  # share of a unit's activations above its threshold (Bau et al. 2017)
 CUTOFF = 0.04  # least IoU for a label (Bau et al. 2017)
 BINS = 8192  # histogram bins per unit for the threshold; the error bound is (max - min) / BINS
-_CHUNK = 1 << 23  # upsampled values held at once (32 MB of float32)
 
 
 @dataclass(frozen=True)
@@ -191,36 +190,33 @@ def resampling(n: int, frame_len: int, scale: float, shift: float, map_len: int,
 
 def overlaps(fmap, thr, masks: np.ndarray, place, frame, fld) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """One image: (|above T AND mask| (U, K), |above T| (U,), |mask| (K,)) over the pixels of the
-    original the network saw. fmap (U, h, w) float; thr (U,); masks (K, H, W) bool; place:
+    original the network saw. fmap (U, h, w) float (array or tensor); thr (U,); masks (K, H, W) bool; place:
     corpus.Placement; frame: corpus.Frame; fld: geometry.Field or None."""
-    import torch
-
     U, h, w = fmap.shape
     K, H, W = masks.shape
     stride = fld.stride if fld is not None else (None, None)
     offset = fld.offset if fld is not None else (0.0, 0.0)
     Ay, sy = resampling(H, frame.height, place.scale, place.top, h, stride[0], offset[0])
     Ax, sx = resampling(W, frame.width, place.scale, place.left, w, stride[1], offset[1])
-    seen = torch.from_numpy(sy[:, None] & sx[None, :])  # (H, W)
-    m = torch.from_numpy(masks) & seen  # (K, H, W)
-    mf = m.reshape(K, -1).float()  # (K, H*W)
-    Ay, Ax = torch.from_numpy(Ay), torch.from_numpy(Ax)
-    thr = torch.as_tensor(thr, dtype=torch.float32)
-    inter = torch.zeros((U, K), dtype=torch.float64)
-    act = torch.zeros(U, dtype=torch.float64)
-    # Bilinear values are convex combinations of map values: a unit whose map stays at or below its
-    # threshold has no pixel above it, so only the others are brought to the image (exactly the same sums).
-    fmap = fmap.float()
-    live = torch.nonzero(fmap.flatten(1).max(1).values > thr).flatten()
-    step = max(1, _CHUNK // max(H * W, 1))
-    for a in range(0, len(live), step):
-        at = live[a:a + step]
-        up = Ay @ fmap[at] @ Ax.T  # (u, H, W)
-        above = (up > thr[at, None, None]) & seen  # (u, H, W)
-        af = above.reshape(above.shape[0], -1).float()  # (u, H*W)
-        inter[at] = (af @ mf.T).double()  # float32 sums of 0/1 are exact below 2**24 pixels
-        act[at] = af.sum(1).double()
-    return inter.round().long().numpy(), act.round().long().numpy(), m.sum((1, 2)).numpy()
+    m = masks & sy[None, :, None] & sx[None, None, :]  # (K, H, W): the pixels the network saw
+    f = np.asarray(fmap, dtype=np.float32)  # (U, h, w)
+    thr = np.asarray(thr, dtype=np.float32)
+    inter = np.zeros((U, K), dtype=np.int64)
+    act = np.zeros(U, dtype=np.int64)
+    # Bilinear values are convex combinations of map values: a pixel can be above T only where it
+    # draws on a map position above T. So per unit only the pixel rows and columns that draw on such
+    # positions are brought to the image (the sums are the same as over the whole image), and a
+    # unit whose map stays at or below T in this image is skipped. Small arrays: numpy, not torch.
+    uses_y, uses_x = Ay > 0, Ax > 0  # (H, h), (W, w): which map rows / columns a pixel draws on
+    hot = f > thr[:, None, None]  # (U, h, w)
+    for u in np.flatnonzero(hot.reshape(U, -1).any(1)):
+        rows = np.flatnonzero(uses_y[:, hot[u].any(1)].any(1) & sy)
+        cols = np.flatnonzero(uses_x[:, hot[u].any(0)].any(1) & sx)
+        up = Ay[rows] @ f[u] @ Ax[cols].T  # (r, c)
+        above = up > thr[u]  # (r, c)
+        inter[u] = (m[np.ix_(np.arange(K), rows, cols)] & above).sum((1, 2))
+        act[u] = above.sum()
+    return inter, act, m.sum((1, 2))
 
 
 # ----------------------------------------------------------------------------- the passes
@@ -420,7 +416,7 @@ def _overlap_pass(run, model, corpus, layers, ann: Annotations, thresholds, batc
             mine = [j for j, src in enumerate(ann.sources) if fid in src.entries]
             masks = np.concatenate([ann.sources[j].masks(fid, (place.width, place.height)) for j in mine])
             cols = np.concatenate([np.arange(first[j], first[j + 1]) for j in mine])
-            inter, act, px = overlaps(f[b], thresholds[name][0], masks, place, frame, fld)
+            inter, act, px = overlaps(f[b].numpy(), thresholds[name][0], masks, place, frame, fld)
             s["inter"][:, cols] += inter
             s["pixels"][cols] += px
             for j in mine:
