@@ -349,7 +349,7 @@ def test_tags_alone_need_no_pass_and_show_prints_them(shapes, capsys):
 
 
 def test_outline_paths_trace_the_mask_edges_but_not_the_crop_border():
-    from unitlens.concepts import outline_path
+    from unitlens.atlas.concept_data import outline_path
 
     square = np.zeros((4, 4), bool)
     square[1:3, 1:3] = True  # a 2x2 block inside: its perimeter is 8 unit edges

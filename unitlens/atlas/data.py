@@ -241,7 +241,7 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
         cards[key] = [c[key] if c else None for c in scard]
     details["synth"] = sdet
     if idx is not None:  # what `unitlens label` found, if it ran
-        from ..concepts import atlas_columns
+        from .concept_data import atlas_columns
 
         named_cards, named_details = atlas_columns(run, layer, units)
         cards.update(named_cards)
