@@ -359,3 +359,22 @@ def test_outline_paths_trace_the_mask_edges_but_not_the_crop_border():
     half[:, 2:] = True  # runs off the crop: only the line at x = 2
     assert sorted(outline_path(half).split("M")[1:]) == ["2 0v1", "2 1v1", "2 2v1", "2 3v1"]
     assert outline_path(np.ones((4, 4), bool)) == ""
+
+
+def test_annotations_that_cannot_match_are_refused_before_any_pass(tmp_path):
+    images, masks, legend = write_corpus(tmp_path, n=4)
+    corpus = open_corpus(images)
+    first = corpus.files[0]
+    Image.new("L", (7, 5)).save(masks / first)  # not the image's size
+    with pytest.raises(UnitlensError, match="annotations are in the image's own pixels"):
+        read_annotations(corpus, masks=[masks], legends=[legend])
+    with pytest.raises(UnitlensError, match="2 legends for 1 label-map folders"):
+        read_annotations(corpus, masks=[masks], legends=[legend, legend])
+    with pytest.raises(UnitlensError, match="No legend for the label maps"):
+        read_annotations(corpus, masks=[masks])  # no masks/legend.csv and no --legend
+    empty = tmp_path / "elsewhere"
+    empty.mkdir()
+    with pytest.raises(UnitlensError, match="No image of the corpus has an annotation"):
+        read_annotations(corpus, masks=[empty], legends=[legend])
+    with pytest.raises(UnitlensError, match="No annotations given"):
+        read_annotations(corpus)
