@@ -48,6 +48,7 @@ BAD_INPUT = [  # (arguments, what the one line says); FILE: a user's file, CUT: 
     (["MINE", "--layers", "layer1", "--out", "FILE"], "notes.txt is a file, not a folder"),
     (["show", "FILE", "layer1:0"], "notes.txt is a file, not a folder"),
     (["show", "CUT", "layer1:0"], "index.npz is damaged"),
+    (["label", "FILE", "--tags", "t.csv"], "notes.txt is a file, not a folder"),
     (["MINE", "--layers", "layer3:", "--out", "NEW"], "'layer3:' names no channels"),
     (["MINE", "--layers", "layer3", "--units", "", "--out", "NEW"], "No channels given"),
 ]
@@ -116,6 +117,7 @@ USAGE = [
     (["layers", MODEL, "--arch-option", "novalue"], "--arch-option takes key=value"),
     (["mine", MODEL, "--corpus", "RUN", "--layers", "layer1"], "Missing option '--out'"),  # typer's own
     (["link", "RUN", "--layer", "layer1", "--method", "fast"], "'fast' is not one of 'ig', 'gxa'"),
+    (["label", "RUN", "--batch-size", "0"], "'--batch-size'"),
 ]
 
 
@@ -146,6 +148,7 @@ CTRL_C = [  # (arguments, the call that the interrupt hits)
     (["atlas", "RUN"], "unitlens.render_atlas"),
     (["demo", "--out", "NEW"], "unitlens.build_demo"),
     (["link", "RUN", "--layer", "layer1"], "unitlens.links.link"),
+    (["label", "RUN", "--tags", "tags.csv"], "unitlens.store.Run.corpus"),
 ]
 
 
@@ -166,7 +169,7 @@ def test_every_command_is_in_the_ctrl_c_check():
     assert sorted(a[0] for a, _ in CTRL_C) == sorted(COMMANDS)
 
 
-COMMANDS = ["layers", "mine", "show", "run", "synth", "compare", "atlas", "probe", "demo", "link"]
+COMMANDS = ["layers", "mine", "show", "run", "synth", "compare", "atlas", "probe", "demo", "link", "label"]
 
 
 def _help(command: str) -> str:

@@ -215,6 +215,32 @@ def show(
     print(json.dumps(s, indent=1) if as_json else summary_text(s, layer, channel))
 
 
+@app.command("label")
+def label_cmd(
+    run: Path = typer.Argument(..., metavar="RUN", help="A run folder (mined)."),
+    masks: Optional[list[Path]] = typer.Option(None, "--masks", metavar="DIR", help="Folder of label maps: one PNG per image, named like it (repeatable)."),
+    legend: Optional[list[Path]] = typer.Option(None, "--legend", metavar="CSV", help="value,name per line: what each pixel value means (default: DIR/legend.csv; one for all folders or one per --masks)."),
+    coco: Optional[list[Path]] = typer.Option(None, "--coco", metavar="JSON", help="COCO-format annotations: polygons, boxes, run-length masks (repeatable)."),
+    tags: Optional[Path] = typer.Option(None, "--tags", metavar="CSV", help="image,tags per line, tags separated by ';' (scored from mining's per-image maxima)."),
+    layers: Optional[list[str]] = typer.Option(None, "--layers", metavar="LAYERS", help="Layers to label, comma-separated (default: every mined layer)."),
+    batch_size: int = typer.Option(16, "--batch-size", min=1, help="Images per forward pass."),
+    workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Decoding processes (default: from core count)."),
+    threads: Optional[int] = Threads,
+    force: bool = typer.Option(False, "--force", help="Label again even with the same files, thresholds included."),
+    as_json: bool = Json,
+):
+    """Name what each unit detects from your annotations: IoU with masks, ROC AUC with image tags."""
+    from .concepts import label, labels_text, read_annotations
+    from .store import Run
+
+    r = Run(run)
+    chosen = [n.strip() for item in layers or () for n in item.split(",") if n.strip()]
+    annotations = read_annotations(r.corpus(), masks or (), legend or (), coco or (), tags)
+    entry = label(r, annotations, chosen or None, batch_size=batch_size, workers=workers,
+                  progress=sys.stderr.isatty(), force=force)
+    print(json.dumps(entry, indent=1) if as_json else labels_text(r))
+
+
 @app.command("run")
 def run_cmd(
     model: str = typer.Argument(..., metavar="MODEL", help="torchvision:<arch>, path/file.py:function, or a TorchScript file."),

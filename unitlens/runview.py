@@ -129,6 +129,11 @@ class UnitView:
         """Counts of the per-image maxima between `edges` (the occupied span of the fixed bins)."""
         return self.summary["histogram"]
 
+    @property
+    def concepts(self) -> dict | None:
+        """What the unit detects (`unitlens label`): label, IoU per concept, AUC per tag; None before."""
+        return self.summary.get("concepts")
+
     def _exemplars(self, key: str, negative: bool) -> list[Exemplar]:
         sheets = self.run._sheets(self.layer)
         pos = sheets["pos"].get(self.channel) if sheets else None
@@ -260,6 +265,14 @@ class LayerView:
     def table(self) -> Table:
         return self.run.units(self.name) if self.name in self.run.folder.mined_layers() else Table([], self.name)
 
+    @cached_property
+    def concepts(self) -> dict | None:
+        """Units with a concept, distinct concepts, share per concept (`unitlens label`); None before."""
+        from .concepts import layer_concepts
+
+        c = layer_concepts(self.run.folder, self.name) if self.name in self.run.folder.mined_layers() else None
+        return c["summary"] if c else None
+
     def __repr__(self) -> str:
         t = self.table()
         synth = sum(1 for r in t if r.get("synthesised"))
@@ -334,10 +347,13 @@ class RunView:
         from .summary import layer_firing, unit_stats
         from .synth.results import layer_images, parity_share
 
+        from .concepts import layer_concepts
+
         idx = self.folder.index(layer)
         classes = self.corpus.get("classes") or []
         synth = layer_images(self.folder, layer)
         firing = layer_firing(idx)  # one threshold for the layer, computed once
+        named = layer_concepts(self.folder, layer)  # None until `unitlens label` has run
         rows = []
         for u, ch in enumerate(int(c) for c in idx["units"]):
             st = unit_stats(idx, u, classes, firing)
@@ -349,6 +365,8 @@ class RunView:
             share = parity_share(ims)  # the share of the unit's images that reach their best natural exemplar
             if share is not None:
                 row["parity"] = share
+            if named:
+                row.update(concept=named["label"][u], iou=named["iou"][u])
             rows.append(row)
         return Table(rows, title=f"{self.path.name} / {layer}")
 

@@ -11,6 +11,7 @@ Layout (every file readable without unitlens):
   mine/<layer>/pooled.npy, embed.npy, embed-basis.npz, facets.npz   embedding (embedding.py) and facets (facets.py)
   mine/thumbs.npy               near-duplicate thumbnails (N, 768) uint8, with --dedupe
   links/<layer>/from-<layer>.npz   how the channels of an earlier layer feed each unit (links.py)
+  concepts/<layer>/*.npz        thresholds, overlaps with annotated concepts, tag AUCs (concepts.py)
 """
 from __future__ import annotations
 

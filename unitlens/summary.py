@@ -6,6 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .concepts import concepts_text, unit_concepts
 from .errors import UnitlensError
 from .store import Run, read_npz
 
@@ -90,6 +91,7 @@ def unit_summary(run: Run | str, layer: str, channel: int) -> dict:
     links = unit_links(run, layer, channel)
     if links is not None:  # only where `unitlens link` has run
         result["links"] = links
+    result["concepts"] = unit_concepts(run, layer, channel)  # None until `unitlens label` has run
     return result
 
 
@@ -114,6 +116,7 @@ def summary_text(s: dict, layer: str, channel: int) -> str:
         for e in s[key]:
             label = f"  [{shown(e['label'])}]" if e.get("label") else ""
             lines.append(f"   {e['rank']:>3}  {e['score']:>10.4g}  box {e['box']}  {shown(e['id'])}{label}")
+    lines += concepts_text(s.get("concepts"))
     for r in s.get("synth") or []:
         vs = f", {r['vs_best_exemplar']:.2f} x the best exemplar" if r.get("vs_best_exemplar") is not None else ""
         lines.append(f"  synthesised: {shown(r['image'])}  (spatial max {r['max_activation']:.4g}{vs}; "

@@ -257,6 +257,12 @@ def layer_data(run: Run, layer: str, img_dir: str) -> LayerData | None:
     lcards, ldetails = link_payload(run, layer, units)  # empty unless `unitlens link` has run
     cards.update(lcards)
     details.update(ldetails)
+    if idx is not None:  # what `unitlens label` found, if it ran
+        from .concept_data import atlas_columns
+
+        named_cards, named_details = atlas_columns(run, layer, units)
+        cards.update(named_cards)
+        details.update(named_details)
     data = LayerData(layer, cards, details, sheets, images)
     if idx is not None:
         data.facet_thumbs, data.whole = facet_thumbs, whole

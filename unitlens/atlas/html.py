@@ -237,7 +237,8 @@ def index_page(m: dict, layers: list[dict], rendered: str, renderer: str, run_na
 SORTS = (("id", "unit id"), ("peak", "peak activation"), ("csi", "class selectivity"),
          ("ratio", "synthesised / natural"), ("fire", "firing rate"), ("trust", "synthesis trust (checks passed)"),
          ("own_rank", "rank on its own synthesised image"), ("robust", "synthesis robustness under warps"),
-         ("feeders", "effective feeders (low: concentrated inputs)"))
+         ("feeders", "effective feeders (low: concentrated inputs)"),
+         ("iou", "concept IoU"), ("concept", "concept name"))
 
 
 def layer_page(run_name: str, layer: str, facts: list[str], cards_js: str, units_js: str,

@@ -155,6 +155,7 @@ def _layer_key(run: Run, name: str, m: dict) -> str:
     mdir, sdir = run.layer_dir(name), run.layer_dir(name, "synth")
     parts = [_stat(mdir / "index.npz"), _stat(run.path / "corpus.json"), _stat(sdir / "units.json"),
              [_stat(p) for p in sorted(mdir.glob("sheet-*.jpg"))],
+             [_stat(p) for p in sorted(run.layer_dir(name, "concepts").glob("*.npz"))],
              (m.get("corpus") or {}).get("classes"),
              [_stat(p) + [p.parent.name] for p in stored_pairs(run)]]  # links to and from any layer
     return hashlib.sha256(json.dumps(parts).encode()).hexdigest()

@@ -30,8 +30,9 @@ def demo_model():
     return load_model(net.spec(), str(net.WEIGHTS))
 
 
-def demo_corpus(folder: Path, count: int = CORPUS_SIZE) -> Path:
-    """Write the demo corpus into `folder` unless the same corpus is already there."""
+def demo_corpus(folder: Path, count: int = CORPUS_SIZE, label_maps: Path | None = None) -> Path:
+    """Write the demo corpus into `folder` unless the same corpus is already there; with
+    `label_maps`, the swatches' label maps there too (swatches.label_map) unless present."""
     folder = Path(folder)
     factors = folder / "factors.csv"
     if folder.exists() and any(folder.iterdir()) and not factors.is_file():
@@ -41,9 +42,21 @@ def demo_corpus(folder: Path, count: int = CORPUS_SIZE) -> Path:
         with open(factors, newline="") as fh:
             rows = list(csv.DictReader(fh))
         if len(rows) == count and all((folder / r["file"]).is_file() for r in rows):
+            if label_maps is not None and not (Path(label_maps) / "legend.csv").is_file():
+                _write_label_maps(folder, Path(label_maps))
             return folder
-    swatches.write_corpus(folder, count=count, size=net.INPUT_SIZE, seed=0)
+    swatches.write_corpus(folder, count=count, size=net.INPUT_SIZE, seed=0, label_maps=label_maps)
     return folder
+
+
+def _write_label_maps(folder: Path, out: Path) -> None:
+    """Label maps for a corpus already on disk (its images untouched: their dates are in the run's
+    corpus fingerprint)."""
+    for path, s in swatches.read_factors(folder):
+        target = out / path.relative_to(folder)
+        target.parent.mkdir(parents=True, exist_ok=True)
+        swatches.label_map(s, net.INPUT_SIZE).save(target, format="PNG")
+    (out / "legend.csv").write_text(swatches.legend_text())
 
 
 def build_demo(out: Path, *, count: int = CORPUS_SIZE, steps: int = STEPS, units: int | None = None,
@@ -64,9 +77,17 @@ def build_demo(out: Path, *, count: int = CORPUS_SIZE, steps: int = STEPS, units
     say = log or (lambda msg: print(msg, file=sys.stderr))
     model = demo_model()
     say(f"corpus: {count} generated swatches -> {out / 'corpus'}")
-    corpus = open_corpus(demo_corpus(out / "corpus", count), labels="folders")
+    maps = out / "label-maps"
+    corpus = open_corpus(demo_corpus(out / "corpus", count, maps), labels="folders")
     chosen = [f"{name}:0-{min(units, model.layer(name).channels) - 1}" if units else name for name in LAYERS]
     layers = parse_layers(model, chosen)
     run_all(model, corpus, layers, out, MineConfig(top_k=16), SynthConfig(steps=steps, **OVERNIGHT),
             progress=progress, log=say, force=force)
-    return out / "atlas" / "index.html"
+    from ..atlas import render_atlas
+    from ..concepts import label, labels_text, read_annotations
+    from ..store import Run
+
+    say(f"concepts: naming units from the generator's label maps in {maps}")
+    label(Run(out), read_annotations(corpus, masks=[maps]), model=model, progress=progress)
+    say(labels_text(Run(out)))
+    return render_atlas(out)

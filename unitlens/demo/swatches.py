@@ -160,6 +160,38 @@ def _stains(u, v, rng, count: int) -> np.ndarray:
 
 def render(s: Swatch, size: int = 96) -> Image.Image:
     """The swatch as an RGB image of `size` x `size` pixels; the same `s` gives the same pixels."""
+    return _draw(s, size)[0]
+
+
+# A label map per swatch (pixel value -> concept), for `unitlens label`: what the generator knows.
+LEGEND = ((1, "stain"), (2, "dots"), (3, "horizontal stripes"), (4, "vertical stripes"))
+
+
+def legend_text() -> str:
+    """The legend CSV of the label maps."""
+    return "value,name\n" + "".join(f"{v},{n}\n" for v, n in LEGEND)
+
+
+def label_map(s: Swatch, size: int = 96) -> Image.Image:
+    """The swatch's concepts per pixel (values of LEGEND, 0: none of them): stains where a blot
+    covers at least a quarter, then dots and stripes (by orientation) where the dye covers half."""
+    return _labels(s, *_draw(s, size)[1:])
+
+
+def _labels(s: Swatch, mask: np.ndarray, alpha: np.ndarray | None) -> Image.Image:
+    lab = np.zeros(mask.shape[:2], np.uint8)
+    dyed = mask[..., 0] >= 0.5
+    if s.kind == "dots":
+        lab[dyed] = 2
+    elif s.kind == "stripe":
+        lab[dyed] = 3 if s.orientation == 0 else 4
+    if alpha is not None:
+        lab[alpha[..., 0] >= 0.25] = 1
+    return Image.fromarray(lab, "L")
+
+
+def _draw(s: Swatch, size: int) -> tuple[Image.Image, np.ndarray, np.ndarray | None]:
+    """(image, dye mask (H, W, 1), stain alpha (H, W, 1) or None)."""
     if s.kind not in CLASSES:
         hint = ", ".join(closest(s.kind, CLASSES)) or ", ".join(CLASSES)
         raise UnitlensError(f"Unknown swatch kind {s.kind!r}. Closest: {hint}. Valid: {', '.join(CLASSES)}.")
@@ -171,6 +203,7 @@ def render(s: Swatch, size: int = 96) -> Image.Image:
     mask = _pattern(s, u, v, rng, size)[..., None]            # (H, W, 1)
     dye, ground = np.array(s.dye, float), np.array(s.ground, float)
     rgb = ground * (1 - mask) + dye * mask                    # (H, W, 3)
+    alpha = None
     if s.stain:
         alpha = _stains(u, v, rng, rng.integers(2, 5) if s.kind == "stained" else 1)[..., None]
         rgb = rgb * (1 - alpha) + 0.45 * dye * alpha          # stains are darkened dye
@@ -181,13 +214,15 @@ def render(s: Swatch, size: int = 96) -> Image.Image:
     a = rng.uniform(0, 2 * math.pi)
     light = 1 + rng.uniform(0.04, 0.1) * 2 * (math.cos(a) * u + math.sin(a) * v)
     rgb = rgb * (weave * light)[..., None] + 3.0 * rng.standard_normal(rgb.shape, dtype=np.float32)
-    return Image.fromarray(np.clip(np.round(rgb), 0, 255).astype(np.uint8), "RGB")
+    return Image.fromarray(np.clip(np.round(rgb), 0, 255).astype(np.uint8), "RGB"), mask, alpha
 
 
 # ----------------------------------------------------------------------------- corpus
 
-def write_corpus(out: Path, count: int = 600, size: int = 96, seed: int = 0) -> list[tuple[Path, Swatch]]:
-    """Write `count` swatches as out/<kind>/<kind>-<index:05d>.png plus out/factors.csv.
+def write_corpus(out: Path, count: int = 600, size: int = 96, seed: int = 0,
+                 label_maps: Path | None = None) -> list[tuple[Path, Swatch]]:
+    """Write `count` swatches as out/<kind>/<kind>-<index:05d>.png plus out/factors.csv; with
+    `label_maps`, also each swatch's label map under the same name there, and its legend.csv.
 
     Class folders make the kinds usable as labels (`open_corpus(out, labels="folders")`); the
     same arguments give the same bytes.
@@ -200,8 +235,15 @@ def write_corpus(out: Path, count: int = 600, size: int = 96, seed: int = 0) -> 
         s = sample(index, seed)
         path = out / s.kind / f"{s.kind}-{index:05d}.png"
         path.parent.mkdir(parents=True, exist_ok=True)
-        render(s, size).save(path, format="PNG")
+        img, mask, alpha = _draw(s, size)
+        img.save(path, format="PNG")
+        if label_maps is not None:
+            lpath = Path(label_maps) / path.relative_to(out)
+            lpath.parent.mkdir(parents=True, exist_ok=True)
+            _labels(s, mask, alpha).save(lpath, format="PNG")
         written.append((path, s))
+    if label_maps is not None:
+        (Path(label_maps) / "legend.csv").write_text(legend_text())
     with open(out / "factors.csv", "w", newline="") as fh:
         rows = csv.writer(fh)
         rows.writerow(_FACTOR_COLUMNS)

@@ -75,6 +75,13 @@
     const top = add(a, "div", "card-head");
     num(top, "uid", "", u, "unit (channel) " + u + " of " + C.layer);
     if (C.mined && C.peak[i] !== null) num(top, "peak n-peak", "peak", fmt(C.peak[i]), "peak: the largest activation of this unit anywhere in the corpus");
+    if (C.concept && C.concept[i] !== null) {  // what `unitlens label` named it after
+      const chip = add(top, "span", "chip concept-chip");
+      add(chip, "span", "", C.concept[i]);
+      add(chip, "b", "", fmt(C.iou[i], 2));
+      chip.title = "detects \u201c" + C.concept[i] + "\u201d: IoU " + fmt(C.iou[i], 3) + " between where it fires (its top " +
+        "0.5% of activations) and the annotated masks, over the annotated images";
+    }
     const imgs = add(a, "div", "card-imgs" + (C.mined ? "" : " synth-only"));
     let first = 0;
     if (src) {
@@ -120,8 +127,10 @@
   }
 
   /* ---- order, filter, and the virtual grid */
-  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio, trust: C.trust, own_rank: C.own_rank, robust: C.robust, feeders: C.feeders };
-  const state = { sort: "id", desc: false, filter: null, trust: "all" };
+  const KEYS = { id: C.units, peak: C.peak, csi: C.csi, fire: C.fire, ratio: C.ratio, trust: C.trust, own_rank: C.own_rank, robust: C.robust,
+    feeders: C.feeders, iou: C.iou, concept: C.concept_rank };
+  const state = { sort: "id", desc: false, filter: null, trust: "all", concept: "" };
+  const byConcept = i => !state.concept || (state.concept === "\u0000none" ? !C.concept[i] : C.concept[i] === state.concept);
   const TRUST = {  // the synthesis filter: what a unit's first synthesised image must show
     all: () => true,
     trusted: i => !!C.synth_src[i] && !!C.doubts && C.doubts[i] !== null && C.doubts[i].length === 0,
@@ -134,7 +143,7 @@
 
   function computeOrder() {
     const key = KEYS[state.sort] || C.units, sign = state.desc ? -1 : 1, idx = [];
-    for (let i = 0; i < N; i++) if ((!state.filter || state.filter(C.units[i])) && TRUST[state.trust](i)) idx.push(i);
+    for (let i = 0; i < N; i++) if ((!state.filter || state.filter(C.units[i])) && TRUST[state.trust](i) && byConcept(i)) idx.push(i);
     idx.sort((a, b) => {
       const x = key[a], y = key[b];
       const xn = x === null || x === undefined, yn = y === null || y === undefined;
@@ -211,7 +220,31 @@
     sel.addEventListener("change", () => { state.trust = sel.value; layout(); });
     dirBtn.after(lab);
   }
-  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio], ["trust", C.trust], ["own_rank", C.own_rank], ["robust", C.robust], ["feeders", C.feeders]].forEach(([k, v]) => {
+  if (C.concept) {  // the concept filter and the layer's summary, on layers `unitlens label` has named
+    const lab = el("label", "ctl");
+    lab.append("concept ");
+    const sel = add(lab, "select");
+    sel.id = "concept";
+    const names = [...new Set(C.concept.filter(c => c !== null))].sort();
+    [["", "all units"], ...names.map(c => [c, c]), ["\u0000none", "no concept"]]
+      .forEach(([v, t]) => { const o = add(sel, "option", "", t); o.value = v; });
+    sel.addEventListener("change", () => { state.concept = sel.value; layout(); });
+    dirBtn.after(lab);
+    const S = C.concept_summary, box = el("details", "concept-summary");
+    box.open = true;
+    add(box, "summary", "", S.labelled + " of " + S.units + " units detect a concept (IoU \u2265 " + S.cutoff + "), " +
+      S.concepts + " distinct");
+    const shares = Object.entries(S.share);
+    if (shares.length) {
+      const p = add(box, "div", "plotbox");
+      p.dataset.plot = "concepts";
+      p.appendChild(P.hbars({ labels: shares.map(e => e[0]), values: shares.map(e => e[1]), highlight: 0, width: 420,
+        title: "share of the layer's units per concept" }));
+    }
+    toolbar.before(box);
+  }
+  [["csi", C.csi], ["peak", C.peak], ["fire", C.fire], ["ratio", C.ratio], ["trust", C.trust], ["own_rank", C.own_rank], ["robust", C.robust],
+    ["feeders", C.feeders], ["iou", C.iou], ["concept", C.concept_rank]].forEach(([k, v]) => {
     const opt = sortSel.querySelector('option[value="' + k + '"]');
     if (!v || !v.some(x => x !== null && x !== undefined)) { opt.disabled = true; opt.textContent += " (none)"; }
   });
@@ -302,6 +335,7 @@
     const secs = [];
     const want = (cond, parent, title, cls) => { const s = cond ? section(parent, title, cls) : null; if (s) { secs.push(s); add(s, "p", "loading", "loading…"); } return s; };
     const dist = want(C.mined, left, "Per-image maximum over the corpus", "uv-dist");
+    const conSec = want(!!(C.concept && C.iou[i] !== null), right, "What it detects, from your annotations", "uv-concepts");
     const exSec = want(C.mined, right, "Images that drive it most", "uv-ex");
     const facSec = want(C.mined, right, "Facets: groups among its top images", "uv-facets");
     const negSec = want(C.mined && C.negative, right, "Images that push it lowest (spatial minimum)", "uv-neg");
@@ -321,6 +355,7 @@
       const sd = D.synth ? D.synth[i] : null;
       if (C.mined) profile(prof, i, D);
       if (dist) histogram(dist, i, D, sd);
+      if (conSec) concepts(conSec, i, D);
       if (exSec) exemplars(exSec, i, D, D.top, 0);
       if (exSec && D.dedupe) add(exSec, "p", "note", "Near-duplicate images count once here (cosine ≥ " + D.dedupe + " between small thumbnails); the best-scoring one is shown.");
       if (facSec) facets(facSec, i, D);
@@ -376,6 +411,7 @@
       if (box) fig.dataset.field = box.join(" ");
       if (viewBox) fig.dataset.view = viewBox.join(" ");
       const c = fig.appendChild(ringed(crop(i, col0 + rank, size), ring));
+      if (col0 === 0) outline(c, i, D, rank, size);
       const cell = D.whole && col0 === 0 && box ? D.whole.cell[f] : -1;
       if (cell >= 0 && D.whole.sizes[cell]) {  // the whole original, with the box, on click
         c.classList.add("opens"); c.tabIndex = 0; c.setAttribute("role", "button");
@@ -426,6 +462,34 @@
     b.type = "button";
     b.addEventListener("click", closeWhole);
     b.focus({ preventScroll: true });
+  }
+
+  function concepts(sec, i, D) {
+    const list = D.concepts ? D.concepts[i] : null;
+    if (!list) { add(sec, "p", "note", "none"); return; }
+    add(sec, "p", "note", (C.concept[i] ? "Labelled \u201c" + C.concept[i] + "\u201d" : "No concept reaches the cut-off") +
+      ": intersection over union between where the unit fires (above its top-0.5% threshold, the map brought to the image's " +
+      "pixels) and each concept's masks, summed over the annotated images; a label needs IoU \u2265 " + D.concept_cutoff +
+      ". Its top exemplars below show the concept's mask outlined.");
+    const box = add(sec, "div", "plotbox");
+    box.dataset.plot = "concepts";
+    box.appendChild(P.hbars({ labels: list.map(c => c[0] + " (" + c[2] + " images)"), values: list.map(c => c[1]), highlight: 0,
+      width: 400, title: "IoU per concept of unit " + C.units[i] }));
+  }
+
+  /* the concept's mask over a top exemplar's crop: the crop box is fitted and centred in the cell */
+  function outline(cropEl, i, D, rank, size) {
+    const o = D.outlines ? D.outlines[i] : null;
+    const path = o ? o.paths[rank] : null;
+    if (!path) return;
+    const [w, h] = o.boxes[rank], k = size / Math.max(w, h, 1);
+    const svg = P.node("svg", { class: "outline", viewBox: "0 0 " + o.grid + " " + o.grid, preserveAspectRatio: "none",
+      width: (w * k).toFixed(1), height: (h * k).toFixed(1) });
+    svg.style.left = ((size - w * k) / 2).toFixed(1) + "px";
+    svg.style.top = ((size - h * k) / 2).toFixed(1) + "px";
+    P.node("path", { d: path }, svg);
+    cropEl.appendChild(svg);
+    cropEl.title = "outlined: the annotated \u201c" + o.concept + "\u201d";
   }
 
   function labels(sec, i, D) {
