@@ -133,7 +133,8 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     `calib["stop_steps"]` {layer: steps each sampled image ran under the cap `steps` at `size`} an
     image is expected to run expected_steps(cap, sample), not the cap (images stop at parity);
     `calib["sampled"]` {layer: channels} were synthesised already with these settings: they cost
-    nothing while the cap and size stay, and a cut of units keeps them."""
+    nothing while the cap and size stay, and a cut of units keeps them. `calib["factor"]` scales
+    the synthesis terms (how the sample's real time compared with the cost model)."""
     batch = calib["batch"] if isinstance(calib["batch"], dict) else {lu.layer: calib["batch"] for lu in layers}
     mine_s = 0.0 if already_mined else n_images * calib["mine_s_per_image"] * 1.15  # decoding and crops
     per_unit = calib.get("synth_s_per_unit", {})
@@ -146,7 +147,7 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
         # Convolution cost grows with the pixel count; the loop refills its batch as images stop, so
         # a layer costs (images x steps each) / (images per timed step) timed steps. (Fewer units
         # than the timed batch cost less per step: the estimate errs long.)
-        scale = (sz / calib["size"]) ** 2
+        scale = (sz / calib["size"]) ** 2 * calib.get("factor", 1.0)
         todo = len(set(lu.units) - set(done(st, sz, lu)))
         return (todo / batch[lu.layer] * expected_steps(st, stops.get(lu.layer)) * calib["synth_s_per_step"][lu.layer]
                 + todo * per_unit.get(lu.layer, 0.0)) * scale
@@ -166,6 +167,9 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     while synth_s(st, sz, lys) > left and st > MIN_STEPS:
         st = max(MIN_STEPS, st // 2)
     reasons.append(_steps_reason(st, [lu.layer for lu in layers], stops))
+    if "factor" in calib:
+        reasons.append(f"synthesis time x {calib['factor']:.2f}: the sampled units took that much of what the "
+                       "calibration gives for them (load since, evidence, nearest images, files)")
     if st != steps:
         reasons.append(f"step cap {steps} -> {st}: the requested cap does not fit")
     while synth_s(st, sz, lys) > left and sz > MIN_SIZE:
@@ -192,7 +196,7 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
         kept = sum(len(lu.units) for lu in lys)
         reasons.append(f"units cut to {kept} of {sum(len(lu.units) for lu in full)} (evenly spaced in each "
                        "layer): all units do not fit")
-    if len(reasons) == 2:
+    if len(reasons) == 2 + ("factor" in calib):
         reasons.append("everything requested fits")
     parts = {"mining": mine_s, **{lu.layer: layer_s(st, sz, lu) for lu in lys}}
     image_steps = {lu.layer: expected_steps(st, stops.get(lu.layer)) for lu in lys}
@@ -324,8 +328,9 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
 def _budget_plan(model, corpus, layers, run, synth_config, size: int, seconds: float, t0: float, g, say,
                  progress: bool) -> dict:
     """After mining: time a synthesis step per layer, synthesise a few units of each layer with the
-    requested settings (they are kept) to see at which step their images stop, and plan the rest
-    of the budget. One plan for every rank; the work splits g.world ways."""
+    requested settings (they are kept; on a tight budget at a lower step cap, which then bounds the
+    plan's) to see at which step their images stop, and plan the rest of the budget. One plan for
+    every rank; the work splits g.world ways."""
     from .synth import Goal, synthesize
 
     steps, calib, split, sample = synth_config.steps, None, None, None
@@ -334,26 +339,64 @@ def _budget_plan(model, corpus, layers, run, synth_config, size: int, seconds: f
         split = {**calib, "mine_s_per_image": calib["mine_s_per_image"] / g.world,
                  **{k: {n: v / g.world for n, v in calib[k].items()} for k in ("synth_s_per_step", "synth_s_per_unit")}}
         sample = tuple(replace(lu, units=_spread(lu.units, SAMPLE_UNITS)) for lu in layers)
-        # every sampled image at the cap: an upper bound (a part of the budget at most)
-        upper = plan(float("inf"), 0, sample, steps, size, split, already_mined=True).estimate_s
-        if upper > SAMPLE_SHARE * (seconds - (time.monotonic() - t0)):
-            say(f"budget: no sample (it could take {_minutes(upper)}); the plan assumes every image runs to its cap")
-            sample = None
-    sample = g.share(sample, "the units synthesised before planning")
+
+        def upper(cap):  # every sampled image at the cap: a bound on the sample's time
+            return plan(float("inf"), 0, sample, cap, size, split, already_mined=True).estimate_s
+
+        share = SAMPLE_SHARE * (seconds - (time.monotonic() - t0))
+        while upper(steps) > share and steps > MIN_STEPS:  # a tight budget: sample (and plan) a lower cap
+            steps = max(MIN_STEPS, steps // 2)
+        if upper(steps) > share:
+            say(f"budget: no sample (it could take {_minutes(upper(steps))}); the plan assumes every image runs "
+                "to its cap")
+            sample, steps = None, synth_config.steps
+        elif steps != synth_config.steps:
+            say(f"budget: the sample runs at a cap of {steps} steps (at {synth_config.steps} it could take "
+                f"{_minutes(upper(synth_config.steps))}); the plan keeps at most that cap")
+    sample, steps = g.share((sample, steps), "the units synthesised before planning")
     if sample:
         say(f"[2/3] synthesis of {sum(len(lu.units) for lu in sample)} units ({SAMPLE_UNITS} per layer at most) "
             "to see where their images stop")
+        before = stop_steps(run, sample)  # a resumed run: units sampled before take no time now
+        took = {}
         for lu in sample:
-            synthesize(model, Goal(lu), run.path, synth_config, progress=progress)
+            t = time.monotonic()
+            synthesize(model, Goal(lu), run.path, replace(synth_config, steps=steps), progress=progress)
+            if not before[lu.layer]:
+                took[lu.layer] = time.monotonic() - t
     chosen = None
     if g.main:
         if sample:
-            split = {**split, "stop_steps": stop_steps(run, sample), "sampled": {lu.layer: lu.units for lu in sample}}
+            ran = stop_steps(run, sample)
+            config = replace(synth_config, steps=steps, size=size)
+            factor = _sample_factor(model, [lu for lu in sample if lu.layer in took], took, ran, config, split, g.world)
+            split = {**split, "stop_steps": ran, "sampled": {lu.layer: lu.units for lu in sample},
+                     **({"factor": factor} if factor else {})}
         spent = time.monotonic() - t0  # calibration, mining and the sample come out of the budget first
         p = plan(seconds - spent, len(corpus), layers, steps, size, split, already_mined=True)
-        chosen = {**p.describe(), "calibration": calib, "spent_s": round(spent, 1),
+        chosen = {**p.describe(), "calibration": calib, "spent_s": round(spent, 1), "factor": split.get("factor"),
                   "redo_sample": bool(sample) and (p.steps, p.size) != (steps, size)}
+        if steps != synth_config.steps:
+            chosen["reasons"].insert(1, f"step cap {synth_config.steps} -> {steps} for the sample: it had to fit "
+                                        f"{SAMPLE_SHARE:.0%} of the budget left")
     return g.share(chosen, "the budget plan")
+
+
+def _sample_factor(model, sample, took: dict, ran: dict, config, costs: dict, world: int) -> float | None:
+    """The sample's real seconds over what the cost model gives for it (its steps timed again now at
+    the sample's batch): what the calibration misses (the load since, the evidence, nearest images
+    and files of each unit). None without a sample timed in this run."""
+    from .synth.loop import step_seconds
+
+    real = model_s = 0.0
+    for lu in sample:
+        if not ran.get(lu.layer):
+            continue
+        seconds, images = step_seconds(model, lu.layer, lu.units, config)
+        real += took[lu.layer]
+        model_s += (sum(ran[lu.layer]) / images * seconds / world
+                    + len(lu.units) * costs.get("synth_s_per_unit", {}).get(lu.layer, 0.0))
+    return real / model_s if model_s > 0 else None
 
 
 def _planned_units(lu: LayerUnits, chosen_plan: dict) -> tuple[int, ...]:
