@@ -78,6 +78,9 @@ def main() -> None:
     layers = list(plan["units"])
     for k, layer in enumerate(layers):
         start = at(f"[2/3] synthesis, layer {k + 1}/")
+        if not any(line.startswith(f"[3/3] atlas redrawn after {layer}") for _, line in lines):
+            rows.append((f"synthesis {layer}: done by the sample", est[layer] or None, 0.0))
+            continue
         end = at(f"[3/3] atlas redrawn after {layer}")
         after = next((t for t, line in lines if t > end and not line.startswith("[3/3]")), total)
         rows.append((f"synthesis {layer} ({plan['units'][layer]} units, "
@@ -94,7 +97,7 @@ def main() -> None:
         ratio = f"{r / e:.2f}" if e else "-"
         print(f"{name:<52} {'-' if e is None else f'{e:.1f}':>10} {r:>8.1f} {ratio:>8}")
     print(f"{'from the plan to the end':<52} {plan['estimate_s']:>10.1f} {total - planned:>8.1f} "
-          f"{(total - planned) / plan['estimate_s']:>8.2f}")
+          f"{(total - planned) / max(plan['estimate_s'], 1e-9):>8.2f}")
     whole = spent + plan["estimate_s"]
     print(f"{'whole command (spent before the plan + estimate)':<52} {whole:>10.1f} {total:>8.1f} {total / whole:>8.2f}"
           f"   (budget used: {total / budget_s:.2f})")
