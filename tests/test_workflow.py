@@ -80,22 +80,6 @@ def test_plan_counts_the_steps_images_run_not_the_cap():
     assert p.steps == 256 and p.estimate_s == pytest.approx(408)
     # once the cap is cut they are redone with the rest: the 400 s plan is unchanged
     assert plan(400, 1000, LAYERS, 256, 128, {**calib, "sampled": sampled}).estimate_s == pytest.approx(323.5)
-    # The sample took 1.5x what the calibration gives for it: synthesis terms x 1.5, mining not.
-    # a 184 * 1.5 = 276 s, b 256 * 1.5 = 384 s, + 11.5 = 671.5 s.
-    p = plan(2000, 1000, LAYERS, 256, 128, {**calib, "factor": 1.5})
-    assert p.estimate_s == pytest.approx(671.5) and any("x 1.50" in r for r in p.reasons), p.reasons
-
-
-def test_plan_prices_a_small_layer_at_its_own_batch():
-    # A step of 16 units costs 0.5 s, of which 0.25 s do not shrink with the batch. A layer of 8
-    # units runs at a batch of 8: 0.25 + 0.25 * 8/16 = 0.375 s a step, 256 steps: 96 s (in proportion
-    # to the batch it would be 8/16 * 256 * 0.5 = 64 s). A layer of 64 units keeps a full batch:
-    # 64/16 * 256 * 0.5 = 512 s either way.
-    small, big = (LayerUnits("c", tuple(range(8))),), (LayerUnits("c", tuple(range(64))),)
-    calib = {**CALIB, "synth_s_per_step": {"c": 0.5}, "step_fixed": {"c": 0.25}}
-    assert plan(1e9, 0, small, 256, 128, calib).estimate_s == pytest.approx(96)
-    assert plan(1e9, 0, small, 256, 128, {**calib, "step_fixed": {}}).estimate_s == pytest.approx(64)
-    assert plan(1e9, 0, big, 256, 128, calib).estimate_s == pytest.approx(512)
 
 
 @pytest.mark.parametrize("cap,sample,expect", [(100, [10, 200], 55.0), (256, [10, 200], 105.0), (64, None, 64.0),
@@ -229,7 +213,7 @@ def test_a_budget_cuts_synthesised_units_never_mined_ones(tmp_path, monkeypatch)
 
 
 def _budget_run(tmp_path, monkeypatch, config, budget, channels="2:0-15"):
-    from unitlens import MineConfig, load_model, open_corpus, parse_layers, run_all, workflow
+    from unitlens import MineConfig, load_model, open_corpus, parse_layers, run_all
     from unitlens.store import Run
 
     m = load_model(f"{ROOT / 'tests' / 'nets.py'}:digits_net", size=16)
@@ -249,7 +233,6 @@ def test_a_budget_plans_with_the_steps_sampled_units_ran(tmp_path, monkeypatch):
     fixed = {"mine_s_per_image": 0.0, "synth_s_per_step": {"2": 0.01}, "synth_s_per_unit": {"2": 0.0},
              "batch": 2, "size": 16}
     monkeypatch.setattr(workflow, "calibrate", lambda *a, **k: fixed)
-    monkeypatch.setattr(workflow, "_sample_factor", lambda *a, **k: (None, {}))  # no timing in tests
     man, table, lines = _budget_run(tmp_path, monkeypatch, SynthConfig(steps=64, checks=4, stop_at_parity=0.1), "1h")
     p = man["budget"]["plan"]
     sampled = range(0, 16, 2)  # 8 of 16, evenly spread
@@ -277,7 +260,6 @@ def test_a_sample_made_at_a_cap_the_plan_cuts_is_redone(tmp_path, monkeypatch):
              "batch": 2, "size": 16}
     monkeypatch.setattr(workflow, "calibrate", lambda *a, **k: fixed)
     monkeypatch.setattr(workflow, "SAMPLE_SHARE", 1.0)
-    monkeypatch.setattr(workflow, "_sample_factor", lambda *a, **k: (None, {}))  # no timing in tests
     man, table, lines = _budget_run(tmp_path, monkeypatch, SynthConfig(steps=128, checks=0, stop_gain=None),
                                     "1300s", "2:0-31")
     p = man["budget"]["plan"]

@@ -133,29 +133,23 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     `calib["stop_steps"]` {layer: steps each sampled image ran under the cap `steps` at `size`} an
     image is expected to run expected_steps(cap, sample), not the cap (images stop at parity);
     `calib["sampled"]` {layer: channels} were synthesised already with these settings: they cost
-    nothing while the cap and size stay, and a cut of units keeps them. `calib["factor"]` scales
-    the synthesis terms (how the sample's real time compared with the cost model);
-    `calib["step_fixed"]` {layer: s} is the part of a step's time that does not shrink with the batch
-    (a layer with fewer units than the timed batch runs at a smaller batch)."""
+    nothing while the cap and size stay, and a cut of units keeps them."""
     batch = calib["batch"] if isinstance(calib["batch"], dict) else {lu.layer: calib["batch"] for lu in layers}
     mine_s = 0.0 if already_mined else n_images * calib["mine_s_per_image"] * 1.15  # decoding and crops
     per_unit = calib.get("synth_s_per_unit", {})
     stops, sampled = calib.get("stop_steps") or {}, calib.get("sampled") or {}
-    fixed = calib.get("step_fixed") or {}  # {layer: the part of a step's seconds that is the same at any batch}
 
     def done(st, sz, lu) -> tuple[int, ...]:  # units that cost nothing more
         return tuple(sampled.get(lu.layer, ())) if (st, sz) == (steps, size) else ()
 
     def layer_s(st, sz, lu):
         # Convolution cost grows with the pixel count; the loop refills its batch as images stop, so
-        # a layer costs (images x steps each) / (images per step) steps. (The last batch drains:
-        # its steps cost less than a full one's, not in proportion; left out.)
-        scale = (sz / calib["size"]) ** 2 * calib.get("factor", 1.0)
+        # a layer costs (images x steps each) / (images per timed step) timed steps. (Fewer units
+        # than the timed batch cost less per step: the estimate errs long.)
+        scale = (sz / calib["size"]) ** 2
         todo = len(set(lu.units) - set(done(st, sz, lu)))
-        full, a = calib["synth_s_per_step"][lu.layer], fixed.get(lu.layer, 0.0)
-        n = max(1, min(batch[lu.layer], todo))  # fewer units than the timed batch: a smaller batch
-        step = a + (full - a) * n / batch[lu.layer]  # a step costs a fixed part + a part per image
-        return (todo / n * expected_steps(st, stops.get(lu.layer)) * step + todo * per_unit.get(lu.layer, 0.0)) * scale
+        return (todo / batch[lu.layer] * expected_steps(st, stops.get(lu.layer)) * calib["synth_s_per_step"][lu.layer]
+                + todo * per_unit.get(lu.layer, 0.0)) * scale
 
     def synth_s(st, sz, lys):
         return sum(layer_s(st, sz, lu) for lu in lys)
@@ -172,9 +166,6 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     while synth_s(st, sz, lys) > left and st > MIN_STEPS:
         st = max(MIN_STEPS, st // 2)
     reasons.append(_steps_reason(st, [lu.layer for lu in layers], stops))
-    if "factor" in calib:
-        reasons.append(f"synthesis time x {calib['factor']:.2f}: the sampled units took that much of what the "
-                       "calibration gives for them (load since, evidence, nearest images, files)")
     if st != steps:
         reasons.append(f"step cap {steps} -> {st}: the requested cap does not fit")
     while synth_s(st, sz, lys) > left and sz > MIN_SIZE:
@@ -201,7 +192,7 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
         kept = sum(len(lu.units) for lu in lys)
         reasons.append(f"units cut to {kept} of {sum(len(lu.units) for lu in full)} (evenly spaced in each "
                        "layer): all units do not fit")
-    if len(reasons) == 2 + ("factor" in calib):
+    if len(reasons) == 2:
         reasons.append("everything requested fits")
     parts = {"mining": mine_s, **{lu.layer: layer_s(st, sz, lu) for lu in lys}}
     image_steps = {lu.layer: expected_steps(st, stops.get(lu.layer)) for lu in lys}
@@ -362,56 +353,20 @@ def _budget_plan(model, corpus, layers, run, synth_config, size: int, seconds: f
     if sample:
         say(f"[2/3] synthesis of {sum(len(lu.units) for lu in sample)} units ({SAMPLE_UNITS} per layer at most) "
             "to see where their images stop")
-        before = stop_steps(run, sample)  # a resumed run: units sampled before take no time now
-        took = {}
         for lu in sample:
-            t = time.monotonic()
             synthesize(model, Goal(lu), run.path, replace(synth_config, steps=steps), progress=progress)
-            if not before[lu.layer]:
-                took[lu.layer] = time.monotonic() - t
     chosen = None
     if g.main:
         if sample:
-            ran = stop_steps(run, sample)
-            config = replace(synth_config, steps=steps, size=size)
-            factor, fixed = _sample_factor(model, [lu for lu in sample if lu.layer in took], took, ran, config, split,
-                                           g.world)
-            split = {**split, "stop_steps": ran, "sampled": {lu.layer: lu.units for lu in sample}, "step_fixed": fixed,
-                     **({"factor": factor} if factor else {})}
+            split = {**split, "stop_steps": stop_steps(run, sample), "sampled": {lu.layer: lu.units for lu in sample}}
         spent = time.monotonic() - t0  # calibration, mining and the sample come out of the budget first
         p = plan(seconds - spent, len(corpus), layers, steps, size, split, already_mined=True)
-        chosen = {**p.describe(), "calibration": calib, "spent_s": round(spent, 1), "factor": split.get("factor"),
+        chosen = {**p.describe(), "calibration": calib, "spent_s": round(spent, 1),
                   "redo_sample": bool(sample) and (p.steps, p.size) != (steps, size)}
         if steps != synth_config.steps:
             chosen["reasons"].insert(1, f"step cap {synth_config.steps} -> {steps} for the sample: it had to fit "
                                         f"{SAMPLE_SHARE:.0%} of the budget left")
     return g.share(chosen, "the budget plan")
-
-
-def _sample_factor(model, sample, took: dict, ran: dict, config, costs: dict, world: int) -> tuple[float | None, dict]:
-    """(the sample's real seconds over what the cost model gives for it, {layer: fixed seconds per
-    step}). A step costs about a + b x images: timed again now at the sample's batch beside the
-    calibrated full batch, that line gives a and b. The sample (one batch, no refill) costs
-    a x its longest image's steps + b x all its image-steps + the evidence of its units. The
-    ratio is what the calibration misses (the load since, nearest images, files). (None, {})
-    without a sample timed in this run."""
-    from .synth.loop import step_seconds
-
-    real = model_s = 0.0
-    fixed = {}
-    for lu in sample:
-        if not ran.get(lu.layer):
-            continue
-        seconds, images = step_seconds(model, lu.layer, lu.units, config)
-        seconds /= world
-        full, n_full = costs["synth_s_per_step"][lu.layer], costs["batch"][lu.layer] * config.per_unit
-        b = (full - seconds) / (n_full - images) if n_full != images else full / n_full
-        b = min(max(b, 0.0), seconds / images)  # a and b both at least 0
-        fixed[lu.layer] = seconds - b * images
-        real += took[lu.layer]
-        model_s += (fixed[lu.layer] * max(ran[lu.layer]) + b * sum(ran[lu.layer])
-                    + len(lu.units) * costs.get("synth_s_per_unit", {}).get(lu.layer, 0.0))
-    return (real / model_s if model_s > 0 else None), fixed
 
 
 def _planned_units(lu: LayerUnits, chosen_plan: dict) -> tuple[int, ...]:
