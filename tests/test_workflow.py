@@ -12,7 +12,7 @@ import pytest
 from conftest import ROOT
 from unitlens import UnitlensError
 from unitlens.units import LayerUnits
-from unitlens.workflow import MIN_STEPS, parse_budget, plan
+from unitlens.workflow import MIN_STEPS, _spread, expected_steps, parse_budget, plan
 
 
 @pytest.mark.parametrize("text,seconds", [("8h", 28800), ("90m", 5400), ("2h30m", 9000), ("45s", 45),
@@ -54,6 +54,50 @@ def test_plan_worked_examples():
         plan(14, 1000, LAYERS, 256, 128, CALIB)
     with pytest.raises(UnitlensError, match="Mining 1000 images alone"):
         plan(5, 1000, LAYERS, 256, 128, CALIB)
+
+
+def test_plan_counts_the_steps_images_run_not_the_cap():
+    # Sampled images of a stopped at 16, 32, 64 and 256 (the cap) steps; of b at 64, 64, 128, 256.
+    # Worked by hand, cap 256: a expects (16 + 32 + 64 + 256) / 4 = 92 steps per image, b
+    # (64 + 64 + 128 + 256) / 4 = 128; a 64/16 batches * 92 * 0.5 = 184 s, b 2 * 128 * 1.0 = 256 s,
+    # + 11.5 s mining = 451.5 s (at the cap the same run would be planned at 1035.5 s).
+    calib = {**CALIB, "stop_steps": {"a": [16, 32, 64, 256], "b": [64, 64, 128, 256]}}
+    p = plan(2000, 1000, LAYERS, 256, 128, calib)
+    assert p.steps == 256 and p.estimate_s == pytest.approx(451.5)
+    assert p.image_steps == {"a": 92, "b": 128}
+    assert any("a 92 (4 sampled images, 3 stopped before 256)" in r for r in p.reasons), p.reasons
+    # 400 s: 388.5 s left. Cap 128: a (16 + 32 + 64 + 128) / 4 = 60 -> 4 * 60 * 0.5 = 120 s, b (64 + 64
+    # + 128 + 128) / 4 = 96 -> 2 * 96 = 192 s: 323.5 s fits, every unit kept. Planned at the cap, the
+    # same budget needs a cap of 64 (a 256 + b 256 = 512 s at 128 do not fit).
+    p = plan(400, 1000, LAYERS, 256, 128, calib)
+    assert (p.steps, p.size) == (128, 128) and p.estimate_s == pytest.approx(323.5)
+    assert [len(lu.units) for lu in p.layers] == [64, 32]
+    assert plan(400, 1000, LAYERS, 256, 128, CALIB).steps == 64
+    # The sampled units are synthesised already: while the cap and size stay they cost nothing.
+    # a 60 left: 60/16 * 92 * 0.5 = 172.5 s; b 28 left: 28/16 * 128 = 224 s; + 11.5 = 408 s.
+    sampled = {"a": (0, 16, 32, 48), "b": (0, 8, 16, 24)}
+    p = plan(2000, 1000, LAYERS, 256, 128, {**calib, "sampled": sampled})
+    assert p.steps == 256 and p.estimate_s == pytest.approx(408)
+    # once the cap is cut they are redone with the rest: the 400 s plan is unchanged
+    assert plan(400, 1000, LAYERS, 256, 128, {**calib, "sampled": sampled}).estimate_s == pytest.approx(323.5)
+
+
+@pytest.mark.parametrize("cap,sample,expect", [(100, [10, 200], 55.0), (256, [10, 200], 105.0), (64, None, 64.0),
+                                               (64, [], 64.0), (8, [10, 200], 8.0)])
+def test_expected_steps(cap, sample, expect):
+    # by hand: each sampled image runs min(its steps, cap); (10 + 100) / 2 = 55, (10 + 200) / 2 = 105
+    assert expected_steps(cap, sample) == expect
+
+
+@pytest.mark.parametrize("units,n,keep,expect", [
+    (tuple(range(10)), 5, (), (0, 2, 4, 6, 8)),
+    (tuple(range(10)), 4, (1,), (0, 1, 4, 7)),  # 1 kept; 3 of the other 9, every 3rd: 0, 4, 7
+    (tuple(range(10)), 2, (3, 5, 9), (3, 5, 9)),  # more kept than asked: the kept ones
+    (tuple(range(10)), 12, (3,), tuple(range(10))),
+    ((7, 3, 5, 1), 2, (5,), (7, 5)),  # order kept as given
+])
+def test_spread_keeps_given_units(units, n, keep, expect):
+    assert _spread(units, n, keep) == expect
 
 
 def _corpus(d, n=24):
@@ -166,3 +210,60 @@ def test_a_budget_cuts_synthesised_units_never_mined_ones(tmp_path, monkeypatch)
     assert man["budget"]["plan"]["units"] == {"2": 4} and man["synth"]["layers"]["2"]["channels"] == "0,2,4,6"
     assert man["budget"]["plan"]["estimate_s"] == pytest.approx(128)
     assert any("mining all 8 units" in line for line in lines), lines
+
+
+def _budget_run(tmp_path, monkeypatch, config, budget, channels="2:0-15"):
+    from unitlens import MineConfig, load_model, open_corpus, parse_layers, run_all
+    from unitlens.store import Run
+
+    m = load_model(f"{ROOT / 'tests' / 'nets.py'}:digits_net", size=16)
+    layers = parse_layers(m, [channels])
+    corpus = open_corpus(_corpus(tmp_path / "c", 6))
+    out, lines = tmp_path / "run", []
+    run_all(m, corpus, layers, out, MineConfig(top_k=2, workers=0), config, budget=budget, log=lines.append)
+    table = json.loads((out / "synth" / "2" / "units.json").read_text())["units"]
+    return Run(out).manifest(), table, lines
+
+
+def test_a_budget_plans_with_the_steps_sampled_units_ran(tmp_path, monkeypatch):
+    from unitlens import workflow
+    from unitlens.synth import SynthConfig
+
+    # Calibration fixed (no timing in tests): a batch of 2 units costs 0.01 s per step.
+    fixed = {"mine_s_per_image": 0.0, "synth_s_per_step": {"2": 0.01}, "synth_s_per_unit": {"2": 0.0},
+             "batch": 2, "size": 16}
+    monkeypatch.setattr(workflow, "calibrate", lambda *a, **k: fixed)
+    man, table, lines = _budget_run(tmp_path, monkeypatch, SynthConfig(steps=64, checks=4, stop_at_parity=0.1), "1h")
+    p = man["budget"]["plan"]
+    sampled = range(0, 16, 2)  # 8 of 16, evenly spread
+    ran = [im["steps"] for u in sampled for im in table[str(u)]["images"]]
+    # the oracle: the steps the sampled units' images ran, as their records say (each at most the cap)
+    assert max(ran) <= 64 and p["image_steps"]["2"] == pytest.approx(sum(ran) / len(ran), abs=0.05)
+    # the 8 units left cost 8 / 2 batches x the mean steps x 0.01 s
+    assert p["estimate_parts"]["2"] == pytest.approx(4 * sum(ran) / len(ran) * 0.01, abs=0.051)  # rounded to 0.1 s
+    assert sorted(int(u) for u in table) == list(range(16)) and p["channels"] == {"2": "0-15"}
+    assert not p["redo_sample"] and man["synth"]["settings"]["config"]["steps"] == 64
+    assert any("synthesis of 8 units" in line for line in lines), lines
+    assert any("8 sampled images" in line for line in lines), lines
+    assert any("mining all 16 units first" in line for line in lines), lines
+
+
+def test_a_sample_made_at_a_cap_the_plan_cuts_is_redone(tmp_path, monkeypatch):
+    from unitlens import workflow
+    from unitlens.synth import SynthConfig
+
+    # Every image runs to its cap (no early stop). 1 s per step of 2 units. By hand: 8 of the 32
+    # units sampled at 128 steps (512 s at most: the sample's share is lifted for the test); the
+    # 24 left need 24/2 * 128 = 1536 s, more than the ~1300 s left; a cap of 64 redoes all 32 in
+    # 32/2 * 64 = 1024 s, which fits.
+    fixed = {"mine_s_per_image": 0.0, "synth_s_per_step": {"2": 1.0}, "synth_s_per_unit": {"2": 0.0},
+             "batch": 2, "size": 16}
+    monkeypatch.setattr(workflow, "calibrate", lambda *a, **k: fixed)
+    monkeypatch.setattr(workflow, "SAMPLE_SHARE", 1.0)
+    man, table, lines = _budget_run(tmp_path, monkeypatch, SynthConfig(steps=128, checks=0, stop_gain=None),
+                                    "1300s", "2:0-31")
+    p = man["budget"]["plan"]
+    assert p["steps"] == 64 and p["redo_sample"] and p["estimate_parts"]["2"] == pytest.approx(1024)
+    assert man["synth"]["settings"]["config"]["steps"] == 64
+    assert sorted(int(u) for u in table) == list(range(32))
+    assert {im["steps"] for rec in table.values() for im in rec["images"]} == {64}  # the sample redone at 64
