@@ -267,3 +267,20 @@ def test_a_sample_made_at_a_cap_the_plan_cuts_is_redone(tmp_path, monkeypatch):
     assert man["synth"]["settings"]["config"]["steps"] == 64
     assert sorted(int(u) for u in table) == list(range(32))
     assert {im["steps"] for rec in table.values() for im in rec["images"]} == {64}  # the sample redone at 64
+
+
+def test_loop_seconds_pays_the_fixed_part_of_a_thin_batch():
+    from unitlens.workflow import loop_seconds
+
+    # Worked by hand: 4 units, 2 at a time, sampled stops 10 and 30 steps, so the units run 10, 30,
+    # 10, 30. Slot A: unit 0 (0-10), unit 2 (10-20), unit 3 (20-50); slot B: unit 1 (0-30): 50 loop
+    # steps. A full step costs 1 s, of which 0.5 s is fixed: 50 * 0.5 + (80 image steps) * 0.5 / 2 = 45 s.
+    assert loop_seconds(4, 2, 256, [10, 30], 1.0, 0.5) == pytest.approx(45.0)
+    # without a fixed part: image steps / batch full steps, 80 / 2 * 1 s = 40 s (the thin tail costs
+    # in proportion to its images)
+    assert loop_seconds(4, 2, 256, [10, 30], 1.0) == pytest.approx(40.0)
+    # the cap holds each unit: 10, 20, 10, 20 -> slot A 0-10, 10-20, 20-40; B 0-20: 40 steps * 0.5
+    # + 60 * 0.25 = 35 s; no sample: every unit the cap, 2 rounds of 20 steps: 40 * 0.5 + 80 * 0.25 = 40 s
+    assert loop_seconds(4, 2, 20, [10, 30], 1.0, 0.5) == pytest.approx(35.0)
+    assert loop_seconds(4, 2, 20, None, 1.0, 0.5) == pytest.approx(40.0)
+    assert loop_seconds(0, 2, 20, None, 1.0, 0.5) == 0.0

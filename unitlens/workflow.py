@@ -93,15 +93,42 @@ def calibrate(model, layers, synth_config, size: int) -> dict:
     from .synth.loop import step_seconds
 
     config = replace(synth_config, size=size)
-    per_step, per_unit, batch = {}, {}, {}
+    per_step, fixed, per_unit, batch = {}, {}, {}, {}
     for lu in layers:
         # timed at the batch the loop will use for this layer (all its units when they are few)
         per_step[lu.layer], images = step_seconds(model, lu.layer, lu.units, config)
-        batch[lu.layer] = max(1, images // config.per_unit)
+        batch[lu.layer] = full = max(1, images // config.per_unit)
+        # and at a quarter of it: a step's cost is a fixed part plus a part that grows with the images
+        # in the batch, and the fixed part is paid while a layer's last images run on in a thin batch
+        fixed[lu.layer] = 0.0
+        if full >= 4:
+            low, low_images = step_seconds(model, lu.layer, lu.units[:full // 4], config)
+            f = low_images / images
+            slope = max(0.0, (per_step[lu.layer] - low) / (1 - f))
+            fixed[lu.layer] = max(0.0, per_step[lu.layer] - slope)
         checks = _forward_seconds(model, [lu.layer], max(config.checks, 1), size, repeats=1)  # one image's check
         per_unit[lu.layer] = checks * (config.checks > 0) * (config.per_unit + 1)  # + the exemplar's reference
     return {"mine_s_per_image": mine_seconds(model, layers), "synth_s_per_step": per_step,
-            "synth_s_per_unit": per_unit, "batch": batch, "size": size}
+            "synth_s_fixed": fixed, "synth_s_per_unit": per_unit, "batch": batch, "size": size}
+
+
+def loop_seconds(units: int, batch: int, cap: int, sample: list[int] | None, step_s: float,
+                 fixed_s: float = 0.0) -> float:
+    """Seconds the synthesis loop takes for `units` units, `batch` at a time, refilled in order as
+    they stop: unit j runs min(sample[j % len(sample)], cap) steps (every unit the cap without a
+    sample). A step of a batch holding a share f of its units costs fixed_s + (step_s - fixed_s) * f;
+    with fixed_s = 0 this is (units x steps each) / batch full steps."""
+    if units <= 0:
+        return 0.0
+    grows = units * expected_steps(cap, sample) * (step_s - fixed_s) / batch
+    if fixed_s <= 0:
+        return grows
+    import heapq
+
+    ends = [0] * min(batch, units)  # when each slot of the batch frees (steps from the start)
+    for j in range(units):  # the loop's refill order: the next unit takes the slot that frees first
+        heapq.heapreplace(ends, ends[0] + (min(sample[j % len(sample)], cap) if sample else cap))
+    return max(ends) * fixed_s + grows
 
 
 def expected_steps(cap: int, sample: list[int] | None) -> float:
@@ -136,7 +163,7 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     nothing while the cap and size stay, and a cut of units keeps them."""
     batch = calib["batch"] if isinstance(calib["batch"], dict) else {lu.layer: calib["batch"] for lu in layers}
     mine_s = 0.0 if already_mined else n_images * calib["mine_s_per_image"] * 1.15  # decoding and crops
-    per_unit = calib.get("synth_s_per_unit", {})
+    per_unit, fixed = calib.get("synth_s_per_unit", {}), calib.get("synth_s_fixed", {})
     stops, sampled = calib.get("stop_steps") or {}, calib.get("sampled") or {}
 
     def done(st, sz, lu) -> tuple[int, ...]:  # units that cost nothing more
@@ -146,16 +173,20 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
         # Convolution cost grows with the pixel count; the loop refills its batch as images stop, so
         # a layer costs (images x steps each) / (images per timed step) timed steps. (Fewer units
         # than the timed batch cost less per step: the estimate errs long.)
+        # (With a fixed part per step, the thin batch of a layer's last images costs more: see
+        # loop_seconds.)
         scale = (sz / calib["size"]) ** 2
         todo = len(set(lu.units) - set(done(st, sz, lu)))
-        return (todo / batch[lu.layer] * expected_steps(st, stops.get(lu.layer)) * calib["synth_s_per_step"][lu.layer]
-                + todo * per_unit.get(lu.layer, 0.0)) * scale
+        loop = loop_seconds(todo, batch[lu.layer], st, stops.get(lu.layer), calib["synth_s_per_step"][lu.layer],
+                            fixed.get(lu.layer, 0.0))
+        return (loop + todo * per_unit.get(lu.layer, 0.0)) * scale
 
     def synth_s(st, sz, lys):
         return sum(layer_s(st, sz, lu) for lu in lys)
 
     reasons = [f"calibration: {calib['mine_s_per_image'] * 1000:.1f} ms per mined image; "
                + ", ".join(f"{k} {v:.2f} s per synthesis step of {batch[k]} units at {calib['size']} px"
+                           + (f" ({fixed[k]:.2f} s of it whatever the batch holds)" if fixed.get(k) else "")
                            for k, v in calib["synth_s_per_step"].items())]
     if mine_s > budget_s:
         raise UnitlensError(
@@ -333,7 +364,8 @@ def _budget_plan(model, corpus, layers, run, synth_config, size: int, seconds: f
     if g.main:
         calib = calibrate(model, layers, synth_config, size)
         split = {**calib, "mine_s_per_image": calib["mine_s_per_image"] / g.world,
-                 **{k: {n: v / g.world for n, v in calib[k].items()} for k in ("synth_s_per_step", "synth_s_per_unit")}}
+                 **{k: {n: v / g.world for n, v in calib.get(k, {}).items()}
+                    for k in ("synth_s_per_step", "synth_s_fixed", "synth_s_per_unit")}}
         sample = tuple(replace(lu, units=_spread(lu.units, SAMPLE_UNITS)) for lu in layers)
 
         def upper(cap):  # every sampled image at the cap: a bound on the sample's time

@@ -389,14 +389,20 @@ def step_seconds(model, layer: str, targets, config: SynthConfig = SynthConfig()
     import time
     from dataclasses import replace
 
-    e = _Engine(model, layer, targets, replace(config, steps=repeats + 2, stop_gain=None), goal, colour)
+    most = max(repeats, 20)
+    e = _Engine(model, layer, targets, replace(config, steps=most + 2, stop_gain=None), goal, colour)
     n = max(1, e.capacity() // config.per_unit)
     b = _Batch([_Unit(i, t, e) for i, t in enumerate(e.targets[:n])], config.per_unit)
     e.step(b)  # warm-up (allocations, lazy initialisation)
-    t = time.perf_counter()
-    for _ in range(repeats):
+    # Steps of a few tens of milliseconds are timed over at least half a second (up to `most` steps),
+    # and the median taken: one step's time swings with the timer and the machine's other work.
+    times: list[float] = []
+    start = time.perf_counter()
+    while len(times) < repeats or (len(times) < most and time.perf_counter() - start < 0.5):
+        t = time.perf_counter()
         e.step(b)
-    return (time.perf_counter() - t) / repeats, n * config.per_unit
+        times.append(time.perf_counter() - t)
+    return sorted(times)[len(times) // 2], n * config.per_unit
 
 
 def optimise_units(model, goal: Goal, config: SynthConfig = SynthConfig(),
