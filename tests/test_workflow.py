@@ -284,3 +284,16 @@ def test_loop_seconds_pays_the_fixed_part_of_a_thin_batch():
     assert loop_seconds(4, 2, 20, [10, 30], 1.0, 0.5) == pytest.approx(35.0)
     assert loop_seconds(4, 2, 20, None, 1.0, 0.5) == pytest.approx(40.0)
     assert loop_seconds(0, 2, 20, None, 1.0, 0.5) == 0.0
+
+
+def test_eta_scales_by_the_layers_done_once_they_are_a_fifth_of_the_plan(monkeypatch):
+    from unitlens import workflow
+
+    monkeypatch.setattr(workflow.time, "monotonic", lambda: 1000.0)
+    plan_s = {"a": 10.0, "b": 40.0, "c": 50.0}
+    # Worked by hand: a (10 s of a 100 s plan) took 30 s; a tenth of the plan is not scaled: b + c = 90 s
+    assert workflow._eta(970.0, 1, 3, plan_s, ("a",), ("b", "c")) == "about 1.5 min left"
+    # a and b (half the plan, 50 s planned) took 100 s: twice the plan, so c's 50 s become 100 s
+    assert workflow._eta(900.0, 2, 3, plan_s, ("a", "b"), ("c",)) == "about 1.7 min left"
+    # no plan: the mean time per unit so far, 100 s for 2 of 3 units -> 50 s
+    assert workflow._eta(900.0, 2, 3) == "about 50 s left"

@@ -436,7 +436,11 @@ def _eta(t0: float, done: int, total: int, estimate: dict | None = None, done_la
     spent = time.monotonic() - t0
     if estimate and all(x in estimate for x in (*done_layers, *rest)):
         planned = sum(estimate[x] for x in done_layers)
-        factor = spent / planned if done_layers and planned > 0 else 1.0
+        whole = planned + sum(estimate[x] for x in rest)
+        # Scaled only once the layers done were a fifth of the plan: a small first layer is mostly
+        # fixed costs (the atlas drawing, loading its exemplars) and its ratio would be extrapolated
+        # over the whole network.
+        factor = spent / planned if done_layers and planned > 0 and planned >= 0.2 * whole else 1.0
         return f"about {_minutes(factor * sum(estimate[x] for x in rest))} left"
     if done == 0:
         return "ETA after the first layer"
