@@ -9,6 +9,7 @@ layer that fit, in that order, and says why.
 """
 from __future__ import annotations
 
+import heapq
 import re
 import sys
 import time
@@ -123,8 +124,6 @@ def loop_seconds(units: int, batch: int, cap: int, sample: list[int] | None, ste
     grows = units * expected_steps(cap, sample) * (step_s - fixed_s) / batch
     if fixed_s <= 0:
         return grows
-    import heapq
-
     ends = [0] * min(batch, units)  # when each slot of the batch frees (steps from the start)
     for j in range(units):  # the loop's refill order: the next unit takes the slot that frees first
         heapq.heapreplace(ends, ends[0] + (min(sample[j % len(sample)], cap) if sample else cap))
