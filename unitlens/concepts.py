@@ -106,13 +106,12 @@ def _check_sizes(sources, corpus) -> None:
     """Refuse masks of another size than their image before the passes start (headers only)."""
     from PIL import Image
 
+    from .corpus import upright_size
+
     for s in sources:
         for fid in list(s.entries)[:: max(len(s.entries) // 200, 1)]:  # a sample: the pass checks every one
             try:
-                with Image.open(corpus.path(corpus.files.index(fid))) as img:
-                    w, h = img.size
-                    if img.getexif().get(0x0112, 1) in (5, 6, 7, 8):
-                        w, h = h, w
+                w, h = upright_size(corpus.root / fid)  # an absolute id replaces the root, as in Corpus.path
                 declared = s.sizes.get(fid)
                 if declared is None:
                     with Image.open(s.entries[fid]) as m:
@@ -450,6 +449,8 @@ def _outlines(run: Run, layer: str, ann: Annotations, corpus) -> None:
     exemplar's crop box (idx top_view, what the crop shows; top_box, the field, in older runs; original
     pixels), sampled at OUTLINE_GRID x OUTLINE_GRID cell
     centres; `known` is False where the source does not annotate that image."""
+    from .corpus import upright_size
+
     z = read_npz(run.layer_dir(layer, "concepts") / "overlap.npz")
     idx = run.index(layer)
     named = layer_concepts(run, layer)
@@ -475,14 +476,8 @@ def _outlines(run: Run, layer: str, ann: Annotations, corpus) -> None:
             x0, y0, x1, y1 = (int(v) for v in boxes[u, r])
             if x1 <= x0 or y1 <= y0:
                 continue
-            if (s, i) not in cache:
-                from PIL import Image
-
-                with Image.open(corpus.path(i)) as img:  # the size only; masks are in original pixels
-                    w, h = img.size
-                    if img.getexif().get(0x0112, 1) in (5, 6, 7, 8):
-                        w, h = h, w
-                cache = {(s, i): src.masks(corpus.files[i], (w, h))}  # one image's masks at a time
+            if (s, i) not in cache:  # masks are in original pixels: the size only, from the header
+                cache = {(s, i): src.masks(corpus.files[i], upright_size(corpus.path(i)))}  # one image's at a time
             m = cache[(s, i)][k]
             ys = np.minimum(y0 + ((np.arange(G) + 0.5) * (y1 - y0) / G).astype(int), m.shape[0] - 1)
             xs = np.minimum(x0 + ((np.arange(G) + 0.5) * (x1 - x0) / G).astype(int), m.shape[1] - 1)

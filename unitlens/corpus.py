@@ -233,6 +233,18 @@ def decode_original(path: Path, size: int | None = None, max_pixels: int = DEFAU
     return img, original, _reduction(img.size, original)
 
 
+def upright_size(path: Path) -> tuple[int, int]:
+    """(width, height) of an image as mining sees it (after EXIF orientation), from its header alone.
+    Raises OSError when the file cannot be opened."""
+    with Image.open(path) as stored:
+        w, h = stored.size
+        try:
+            turned = stored.getexif().get(_ORIENTATION, 1) in (5, 6, 7, 8)
+        except Exception:  # noqa: BLE001  (a broken EXIF block: the picture is used as stored, see _decode)
+            turned = False
+    return (h, w) if turned else (w, h)
+
+
 def _decode(path: Path, size: int | None, max_pixels: int) -> tuple[Image.Image, tuple[int, int]]:
     """decode(), also returning the original (width, height) after orientation."""
     try:
