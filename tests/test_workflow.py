@@ -188,7 +188,45 @@ def test_plan_counts_each_units_evidence_and_reports_mining_whole():
     assert plan(2000, 10**9, LAYERS, 256, 128, calib, already_mined=True).estimate_s == pytest.approx(1048)
 
 
-def test_a_budget_cuts_synthesised_units_never_mined_ones(tmp_path, monkeypatch):
+def test_sample_costs_worked_example():
+    from unitlens.workflow import sample_costs
+
+    calib = {"synth_s_per_step": {"a": 1.0, "b": 2.0}, "synth_s_fixed": {"a": 0.0}, "batch": {"a": 4, "b": 4},
+             "synth_s_per_unit": {"a": 0.1, "b": 0.2}}
+    # Worked by hand: 4 sampled units of a ran 10, 20, 30, 40 steps in one batch of 4: the step
+    # model gives 100 image steps / 4 x 1 s = 25 s; the loop really took 30 s, so 1.2x. Each unit
+    # cost (2 + 6) / 4 = 2 s beside the loop, split over 2 ranks: 1 s. b was not timed: its
+    # calibration figure, split (0.2 / 2).
+    timings = {"a": {"units": 4, "loop": 30.0, "references": 2.0, "units_s": 6.0}}
+    got = sample_costs(calib, timings, {"a": [10, 20, 30, 40]}, 256, world=2, atlas_s=1.5)
+    assert got["loop_factor"] == pytest.approx({"a": 1.2})
+    assert got["synth_s_per_unit"] == pytest.approx({"a": 1.0, "b": 0.1}) and got["atlas_s"] == 1.5
+    # the factor is held within [0.75, 2] (a sample hit by a burst of load must not skew the plan)
+    for loop, factor in ((100.0, 2.0), (5.0, 0.75)):
+        got = sample_costs(calib, {"a": {**timings["a"], "loop": loop}}, {"a": [10, 20, 30, 40]}, 256)
+        assert got["loop_factor"]["a"] == factor
+
+
+def test_plan_applies_the_loop_factor_and_a_redraw_per_layer():
+    # Worked by hand from the first example: a's loop 512 s x 1.5 = 768 s, b's 512 s; each layer
+    # adds a 2 s redraw of the atlas: 11.5 + 770 + 514 = 1295.5 s
+    p = plan(2000, 1000, LAYERS, 256, 128, {**CALIB, "loop_factor": {"a": 1.5}, "atlas_s": 2.0})
+    assert p.estimate_s == pytest.approx(1295.5) and p.parts == pytest.approx({"mining": 11.5, "a": 770, "b": 514})
+
+
+@pytest.fixture
+def neutral_sample(monkeypatch):
+    """Plan from the fixed calibration only: the sample's measured costs (real time) left out,
+    at most 8 units sampled per layer; the arguments sample_costs was given are recorded."""
+    from unitlens import workflow
+
+    seen = []
+    monkeypatch.setattr(workflow, "SAMPLE_UNITS", (8,))
+    monkeypatch.setattr(workflow, "sample_costs", lambda *a, **k: seen.append((a, k)) or {})
+    return seen
+
+
+def test_a_budget_cuts_synthesised_units_never_mined_ones(tmp_path, monkeypatch, neutral_sample):
     from unitlens import MineConfig, load_model, open_corpus, parse_layers, run_all, workflow
     from unitlens.store import Run
     from unitlens.synth import SynthConfig
@@ -225,7 +263,7 @@ def _budget_run(tmp_path, monkeypatch, config, budget, channels="2:0-15"):
     return Run(out).manifest(), table, lines
 
 
-def test_a_budget_plans_with_the_steps_sampled_units_ran(tmp_path, monkeypatch):
+def test_a_budget_plans_with_the_steps_sampled_units_ran(tmp_path, monkeypatch, neutral_sample):
     from unitlens import workflow
     from unitlens.synth import SynthConfig
 
@@ -246,9 +284,13 @@ def test_a_budget_plans_with_the_steps_sampled_units_ran(tmp_path, monkeypatch):
     assert any("synthesis of 8 units" in line for line in lines), lines
     assert any("8 sampled images" in line for line in lines), lines
     assert any("mining all 16 units first" in line for line in lines), lines
+    # the sample's own times reached the planner: 8 units of layer 2, timed stage by stage
+    (calib, timings, stops, cap, world, atlas_s), _ = neutral_sample[0]
+    assert timings["2"]["units"] == 8 and timings["2"]["loop"] > 0 and stops["2"] == ran and cap == 64
+    assert p["sample_s"]["2"]["units"] == 8
 
 
-def test_a_sample_made_at_a_cap_the_plan_cuts_is_redone(tmp_path, monkeypatch):
+def test_a_sample_made_at_a_cap_the_plan_cuts_is_redone(tmp_path, monkeypatch, neutral_sample):
     from unitlens import workflow
     from unitlens.synth import SynthConfig
 

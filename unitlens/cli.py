@@ -5,6 +5,7 @@ import contextlib
 import json
 import logging
 import sys
+import time
 from enum import Enum
 import warnings
 from pathlib import Path
@@ -13,6 +14,8 @@ from typing import NoReturn, Optional
 import typer
 
 from .synth import OVERNIGHT
+
+_STARTED = time.monotonic()  # a --budget counts from here (loading the model and the corpus included)
 
 app = typer.Typer(
     add_completion=False,
@@ -274,7 +277,8 @@ def run_cmd(
                                         layers, units, corpus, labels, device)
     run = run_all(m, c, chosen, out, MineConfig(top_k=top, batch_size=batch_size, workers=workers, dedupe=dedupe),
                   SynthConfig(steps=steps, size=synth_size, seed=seed, lr=lr, stop_at_parity=stop_at_parity),
-                  budget=budget, progress=sys.stderr.isatty(), force=force, strip_paths=strip_paths)
+                  budget=budget, progress=sys.stderr.isatty(), force=force, strip_paths=strip_paths,
+                  started=_STARTED)
     print(run.path / "atlas" / "index.html")
 
 

@@ -23,7 +23,10 @@ from .units import LayerUnits
 _UNITS = {"s": 1, "m": 60, "h": 3600, "d": 86400}
 MIN_STEPS = 64  # below this, spectral images are still mostly noise
 MIN_SIZE = 96
-SAMPLE_UNITS = 8  # units per layer synthesised before planning, to see the steps at which images stop
+# units per layer synthesised before planning, to see the steps at which images stop: the most of
+# these whose time fits the sample's share (the steps images run have a long tail; on the demo
+# network a sample of 8 misjudged a layer's mean by about 40% (standard error), of 32 by about 15%)
+SAMPLE_UNITS = (32, 16, 8)
 SAMPLE_SHARE = 0.5  # the sample may take at most this share of the time left after mining (its units are kept)
 
 
@@ -137,6 +140,32 @@ def expected_steps(cap: int, sample: list[int] | None) -> float:
     return sum(min(s, cap) for s in sample) / len(sample) if sample else float(cap)
 
 
+def sample_costs(calib: dict, timings: dict, stops: dict, cap: int, world: int = 1, atlas_s: float = 0.0) -> dict:
+    """What the run measured beside the calibration, in the planner's terms: {"synth_s_per_unit":
+    {layer: seconds each unit costs beside the loop (its exemplar's reference, checks, nearest
+    images and files), split `world` ways}, "loop_factor": {layer: the sample's real loop time /
+    what the step model gives it, held within [0.75, 2]}, "atlas_s": a redraw of the atlas}.
+    Layers the sample did not time (`timings` {layer: _layer's record}) keep the calibration's figures.
+
+    Timing the real pipeline is the point: the checks' forwards alone (the calibration's figure)
+    were a third of a unit's cost beside the loop on the demo network, and the loop's own work per
+    step (traces, stop and parity checks, refills) a fifth of the loop on its deepest layer."""
+    per_unit = dict(calib.get("synth_s_per_unit", {}))
+    per_unit = {k: v / world for k, v in per_unit.items()}
+    factor = {}
+    for layer, t in timings.items():
+        n = t.get("units", 0)
+        if not n or layer not in calib["synth_s_per_step"]:
+            continue
+        per_unit[layer] = (t["references"] + t["units_s"]) / n / world
+        batch = calib["batch"][layer] if isinstance(calib["batch"], dict) else calib["batch"]
+        model = loop_seconds(n, batch, cap, stops.get(layer), calib["synth_s_per_step"][layer],
+                             calib.get("synth_s_fixed", {}).get(layer, 0.0))
+        if model > 0 and t["loop"] > 0:
+            factor[layer] = min(2.0, max(0.75, t["loop"] / model))
+    return {"synth_s_per_unit": per_unit, "loop_factor": factor, "atlas_s": atlas_s}
+
+
 def stop_steps(run, layers) -> dict[str, list[int]]:
     """{layer: steps each image of the given units ran} from the run folder's synthesis records
     (units not synthesised yet are left out)."""
@@ -159,10 +188,13 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     `calib["stop_steps"]` {layer: steps each sampled image ran under the cap `steps` at `size`} an
     image is expected to run expected_steps(cap, sample), not the cap (images stop at parity);
     `calib["sampled"]` {layer: channels} were synthesised already with these settings: they cost
-    nothing while the cap and size stay, and a cut of units keeps them."""
+    nothing while the cap and size stay, and a cut of units keeps them. `calib["loop_factor"]`
+    {layer: the sample's real loop time / the time the step model gives it} corrects the loop (the
+    loop's own work per step: traces, stop and parity checks, refills)."""
     batch = calib["batch"] if isinstance(calib["batch"], dict) else {lu.layer: calib["batch"] for lu in layers}
     mine_s = 0.0 if already_mined else n_images * calib["mine_s_per_image"] * 1.15  # decoding and crops
     per_unit, fixed = calib.get("synth_s_per_unit", {}), calib.get("synth_s_fixed", {})
+    factor = calib.get("loop_factor", {})
     stops, sampled = calib.get("stop_steps") or {}, calib.get("sampled") or {}
 
     def done(st, sz, lu) -> tuple[int, ...]:  # units that cost nothing more
@@ -177,8 +209,9 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
         scale = (sz / calib["size"]) ** 2
         todo = len(set(lu.units) - set(done(st, sz, lu)))
         loop = loop_seconds(todo, batch[lu.layer], st, stops.get(lu.layer), calib["synth_s_per_step"][lu.layer],
-                            fixed.get(lu.layer, 0.0))
-        return (loop + todo * per_unit.get(lu.layer, 0.0)) * scale
+                            fixed.get(lu.layer, 0.0)) * factor.get(lu.layer, 1.0)
+        # and the atlas is redrawn once the layer is done (its time as measured after mining)
+        return (loop + todo * per_unit.get(lu.layer, 0.0)) * scale + calib.get("atlas_s", 0.0) * bool(todo)
 
     def synth_s(st, sz, lys):
         return sum(layer_s(st, sz, lu) for lu in lys)
@@ -186,7 +219,9 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
     reasons = [f"calibration: {calib['mine_s_per_image'] * 1000:.1f} ms per mined image; "
                + ", ".join(f"{k} {v:.2f} s per synthesis step of {batch[k]} units at {calib['size']} px"
                            + (f" ({fixed[k]:.2f} s of it whatever the batch holds)" if fixed.get(k) else "")
-                           for k, v in calib["synth_s_per_step"].items())]
+                           for k, v in calib["synth_s_per_step"].items())
+               + ("".join(f"; {k}: the sample's loop ran {factor[k]:.2f}x that, and each unit cost "
+                          f"{per_unit.get(k, 0.0):.2f} s beside it" for k in calib["synth_s_per_step"] if k in factor))]
     if mine_s > budget_s:
         raise UnitlensError(
             f"Mining {n_images} images alone needs about {mine_s / 3600:.1f} h on this machine, more than the "
@@ -256,18 +291,21 @@ def _spread(units: tuple[int, ...], n: int, keep: tuple[int, ...] = ()) -> tuple
 
 
 def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: str | None = None,
-            progress: bool = False, log=None, force: bool = False, strip_paths: bool | None = None):
+            progress: bool = False, log=None, force: bool = False, strip_paths: bool | None = None,
+            started: float | None = None):
     """Mine `corpus`, synthesise `layers` one by one, and keep `out`/atlas up to date.
 
     A budget may cut the units that are synthesised, never those mined. `force` starts the run
-    folder's mining and synthesis over. `strip_paths`: draw the atlas for sharing (see render_atlas)."""
+    folder's mining and synthesis over. `strip_paths`: draw the atlas for sharing (see render_atlas).
+    `started`: the time.monotonic() at which the command began (loading the model and the corpus
+    came out of its budget already); default now."""
     from . import dist
     from .atlas import render_atlas
     from .mining import mine, mined
     from .store import Run
     from .synth import Goal, synthesize
 
-    t0 = time.monotonic()
+    t0 = time.monotonic() if started is None else started
     g = dist.group()  # under torchrun: every rank mines and synthesises its shard, rank 0 draws
     say = (log or (lambda msg: print(msg, file=sys.stderr))) if g.main else (lambda msg: None)
     draw = (lambda run: render_atlas(run, strip_paths=strip_paths)) if g.main else (lambda run: None)
@@ -294,18 +332,22 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
                      {"mine_s_per_image": mine_s / 1.15 / len(corpus), "synth_s_per_step": {}, "batch": 1,
                       "size": size})  # raises: mining alone does not fit
             say(f"budget {budget}: mining all {n_mined} units first (estimate {_minutes(mine_s)}); synthesis is "
-                f"planned after it, from up to {SAMPLE_UNITS} units per layer synthesised to see where images stop")
+                f"planned after it, from up to {SAMPLE_UNITS[0]} units per layer synthesised to see where images stop")
 
     if mined_before:
         say(f"[1/3] mining: done before ({len(corpus)} images, {n_mined} units)")
     else:
         say(f"[1/3] mining {len(corpus)} images for {n_mined} units")
     mine(model, corpus, layers, out, mine_config, progress=progress, force=force)
+    atlas_s = 0.0  # a redraw's time, for the plan
     if not mined_before:
+        t = time.monotonic()
         draw(run)
+        atlas_s = time.monotonic() - t
     if budget is not None:
         if chosen_plan is None:
-            chosen_plan = _budget_plan(model, corpus, layers, run, synth_config, size, seconds, t0, g, say, progress)
+            chosen_plan = _budget_plan(model, corpus, layers, run, synth_config, size, seconds, t0, g, say, progress,
+                                       atlas_s)
             if g.main:
                 run.update_manifest(budget={"budget_s": seconds, "text": budget, "plan": chosen_plan})
                 say(f"budget {budget}: synthesis with a cap of {chosen_plan['steps']} steps, {chosen_plan['size']} "
@@ -325,7 +367,7 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
         # no budget: the same sample and calibration give each layer's share of the time, for the ETA
         left = tuple(lu for lu in synth_layers if lu.layer not in finished)
         estimate = _budget_plan(model, corpus, left, run, synth_config, size, float("inf"), t0, g, say,
-                                progress)["estimate_parts"]
+                                progress, atlas_s)["estimate_parts"]
         say(f"synthesis estimate {_minutes(sum(v for k, v in estimate.items() if k != 'mining'))}")
     t1, done, done_layers = time.monotonic(), 0, []
     for k, lu in enumerate(synth_layers, 1):
@@ -352,7 +394,7 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
 
 
 def _budget_plan(model, corpus, layers, run, synth_config, size: int, seconds: float, t0: float, g, say,
-                 progress: bool) -> dict:
+                 progress: bool, atlas_s: float = 0.0) -> dict:
     """After mining: time a synthesis step per layer, synthesise a few units of each layer with the
     requested settings (they are kept; on a tight budget at a lower step cap, which then bounds the
     plan's) to see at which step their images stop, and plan the rest of the budget. One plan for
@@ -365,12 +407,15 @@ def _budget_plan(model, corpus, layers, run, synth_config, size: int, seconds: f
         split = {**calib, "mine_s_per_image": calib["mine_s_per_image"] / g.world,
                  **{k: {n: v / g.world for n, v in calib.get(k, {}).items()}
                     for k in ("synth_s_per_step", "synth_s_fixed", "synth_s_per_unit")}}
-        sample = tuple(replace(lu, units=_spread(lu.units, SAMPLE_UNITS)) for lu in layers)
 
         def upper(cap):  # every sampled image at the cap: a bound on the sample's time
             return plan(float("inf"), 0, sample, cap, size, split, already_mined=True).estimate_s
 
         share = SAMPLE_SHARE * (seconds - (time.monotonic() - t0))
+        for n in SAMPLE_UNITS:  # the largest sample that fits its share, then a lower cap
+            sample = tuple(replace(lu, units=_spread(lu.units, n)) for lu in layers)
+            if upper(steps) <= share:
+                break
         while upper(steps) > share and steps > MIN_STEPS:  # a tight budget: sample (and plan) a lower cap
             steps = max(MIN_STEPS, steps // 2)
         if upper(steps) > share:
@@ -381,18 +426,24 @@ def _budget_plan(model, corpus, layers, run, synth_config, size: int, seconds: f
             say(f"budget: the sample runs at a cap of {steps} steps (at {synth_config.steps} it could take "
                 f"{_minutes(upper(synth_config.steps))}); the plan keeps at most that cap")
     sample, steps = g.share((sample, steps), "the units synthesised before planning")
+    timings: dict = {}
     if sample:
-        say(f"[2/3] synthesis of {sum(len(lu.units) for lu in sample)} units ({SAMPLE_UNITS} per layer at most) "
+        say(f"[2/3] synthesis of {sum(len(lu.units) for lu in sample)} units "
+            f"({max(len(lu.units) for lu in sample)} per layer at most) "
             "to see where their images stop")
         for lu in sample:
-            synthesize(model, Goal(lu), run.path, replace(synth_config, steps=steps), progress=progress)
+            synthesize(model, Goal(lu), run.path, replace(synth_config, steps=steps), progress=progress,
+                       timings=timings)
     chosen = None
     if g.main:
+        stops = stop_steps(run, sample) if sample else {}
+        split = {**split, **sample_costs(calib, timings, stops, steps, g.world, atlas_s)}
         if sample:
-            split = {**split, "stop_steps": stop_steps(run, sample), "sampled": {lu.layer: lu.units for lu in sample}}
+            split = {**split, "stop_steps": stops, "sampled": {lu.layer: lu.units for lu in sample}}
         spent = time.monotonic() - t0  # calibration, mining and the sample come out of the budget first
         p = plan(seconds - spent, len(corpus), layers, steps, size, split, already_mined=True)
         chosen = {**p.describe(), "calibration": calib, "spent_s": round(spent, 1),
+                  "sample_s": {k: {n: round(v, 3) for n, v in t.items()} for k, t in timings.items()},
                   "redo_sample": bool(sample) and (p.steps, p.size) != (steps, size)}
         if steps != synth_config.steps:
             chosen["reasons"].insert(1, f"step cap {synth_config.steps} -> {steps} for the sample: it had to fit "

@@ -19,11 +19,12 @@ from .results import best_exemplars, same_model
 
 
 def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, progress: bool = False,
-               force: bool = False) -> Run:
+               force: bool = False, timings: dict | None = None) -> Run:
     """Synthesise images for the units of `goal` into the run folder `out`. In a run folder, a
     layer named without channels means the channels mined there, and a goal without units all of them.
 
-    Resumes: units already in the folder with the same settings are not redone.
+    Resumes: units already in the folder with the same settings are not redone. `timings`, if
+    given, receives {layer: where this call's time went} (see _layer), for the time-budget planner.
 
     >>> m = load_model("torchvision:resnet18", size=128)                                 # doctest: +SKIP
     >>> synthesize(m, Goal("layer3:0-15", diversity=0.5), "runs/r18", SynthConfig(steps=128))  # doctest: +SKIP
@@ -74,7 +75,9 @@ def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, p
     with space_for(run.path, max(0, need - sum(disk_bytes(run.layer_dir(lu.layer, "synth")) for lu in layers)),
                    "this synthesis"):
         for lu in layers:
-            _layer(run, model, lu, config, goal, colour, size, progress)
+            spent = _layer(run, model, lu, config, goal, colour, size, progress)
+            if timings is not None:
+                timings[lu.layer] = spent
     if g.main:  # every rank is past its last write (the barrier closing _layer)
         run.remove_stage("synth", ())  # half-written files of a process killed mid-write (store.atomic_write)
         m = run.manifest()
@@ -104,8 +107,17 @@ def _check_mined(run: Run, manifest: dict) -> None:
                         "command again; it resumes), then synthesise.")
 
 
-def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
+def _layer(run, model, lu, config, goal, colour, size, progress) -> dict:
+    """Synthesise one layer's units not in the folder yet; returns where the time went, in seconds:
+    {"units": units done here, "loop": the optimisation loop, "references": the best exemplars'
+    objectives (decoding and `checks` warped forwards each), "units_s": each finished unit's checks,
+    nearest images and files, "whole": the call}."""
+    import time
+
     from .._progress import Progress
+
+    t0 = time.perf_counter()
+    spent = {"units": 0, "loop": 0.0, "references": 0.0, "units_s": 0.0}
 
     d = run.layer_dir(lu.layer, "synth")
     d.mkdir(parents=True, exist_ok=True)
@@ -126,14 +138,20 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
     near = NaturalNeighbours.for_layer(run, lu.layer) if todo else None  # None unless mined with an embedding
     refs = {}
     if todo:
+        t = time.perf_counter()
         images, have = exemplar_images(run, model, lu.layer, todo, size)
         if have:
             refs = exemplar_references(model, lu.layer, images, have, scorer, spec, colour.mean, config.seed,
                                        config.checks, extract)
+        spent["references"] = time.perf_counter() - t
     try:
         if todo:
+            t = time.perf_counter()
             for batch in _interruptible(iter_layer(model, lu.layer, todo, config, goal, colour, on_step,
                                                    references=refs), lu, table):
+                spent["loop"] += time.perf_counter() - t
+                t = time.perf_counter()
+                spent["units"] += len(batch)
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, scorer, spec, colour,
                                                                 config, best.get(r.target), extract, near,
@@ -142,6 +160,8 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
                 g.check(f"in synthesis of {lu.layer}")
                 if g.main:
                     _status(run, lu.layer, len(table["units"]), False)
+                spent["units_s"] += time.perf_counter() - t
+                t = time.perf_counter()
         write_json(own, table)
         g.barrier(f"the end of synthesis of {lu.layer}")
         if g.main:
@@ -150,6 +170,8 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> None:
     finally:
         if bar:
             bar.close()
+    spent["whole"] = time.perf_counter() - t0
+    return spent
 
 
 def _fold_parts(d: Path, table: dict) -> list[Path]:
