@@ -369,16 +369,25 @@ def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: st
         estimate = _budget_plan(model, corpus, left, run, synth_config, size, float("inf"), t0, g, say,
                                 progress, atlas_s)["estimate_parts"]
         say(f"synthesis estimate {_minutes(sum(v for k, v in estimate.items() if k != 'mining'))}")
-    t1, done, done_layers = time.monotonic(), 0, []
+    # the units synthesised before planning count as done, and a layer they covered is finished
+    done = sum(_units_done(run, lu) for lu in synth_layers if lu.layer not in finished) if not redo else 0
+    sampled = {lu.layer for lu in synth_layers if lu.layer not in finished and not redo
+               and _synthesised(run, lu, synth_config, size)}
+    t1, done_layers = time.monotonic(), []
     for k, lu in enumerate(synth_layers, 1):
         head = f"[2/3] synthesis, layer {k}/{len(synth_layers)} ({lu.layer}, {len(lu.units)} units)"
         if lu.layer in finished:
             say(f"{head}: done before")
             continue
+        if lu.layer in sampled:
+            say(f"{head}: done while sampling; [3/3] atlas redrawn after {lu.layer}")
+            draw(run)
+            done_layers.append(lu.layer)
+            continue
         rest = [x.layer for x in synth_layers[k - 1:] if x.layer not in finished]
         say(f"{head}; {done}/{todo} units to do in this run done, {_eta(t1, done, todo, estimate, done_layers, rest)}")
         synthesize(model, Goal(lu), out, synth_config, progress=progress, force=redo)
-        done += len(lu.units)
+        done = sum(_units_done(run, x) for x in synth_layers if x.layer not in finished)
         say(f"[3/3] atlas redrawn after {lu.layer}")
         draw(run)
         done_layers.append(lu.layer)
@@ -473,6 +482,14 @@ def _synthesised(run, lu: LayerUnits, config, size: int) -> bool:
     st = (s.get("layers") or {}).get(lu.layer) or {}
     same = (s.get("settings") or {}).get("config") == json.loads(json.dumps(config.describe(size)))
     return bool(st.get("complete")) and st.get("channels") == ranges_text(lu.units) and same
+
+
+def _units_done(run, lu: LayerUnits) -> int:
+    """How many of lu's units the run folder holds synthesised images of (with any settings)."""
+    from .store import read_json
+
+    table = (read_json(run.layer_dir(lu.layer, "synth") / "units.json") or {}).get("units", {})
+    return sum(str(u) in table for u in lu.units)
 
 
 def _minutes(seconds: float) -> str:
