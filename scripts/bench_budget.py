@@ -4,6 +4,8 @@ table, tests nothing.
     python scripts/bench_budget.py                      # demo network, 240 swatches, block3+block4, 2m
     python scripts/bench_budget.py --budget 4m --images 240 --layers block3,block4
     python scripts/bench_budget.py --direct --steps 32   # in one process: calibrate, synthesise, calibrate
+    python scripts/bench_budget.py --arch resnet18 --layers layer2,layer3 --images 500 --budget 15m
+                                                         # torchvision ResNet-18, random weights, 224 px
 
 One fresh `unitlens run` process on the shipped demo network (weights in the package) over a
 generated swatch corpus. Its stderr lines are timestamped as they arrive, so each stage's real
@@ -35,7 +37,9 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--budget", default="2m", help="the --budget given to unitlens run (default 2m)")
     ap.add_argument("--images", type=int, default=240, help="generated swatches in the corpus (default 240)")
-    ap.add_argument("--layers", default="block3,block4", help="demo layers (default block3,block4: 160 units)")
+    ap.add_argument("--layers", default="block3,block4", help="layers (default the demo's block3,block4: 160 units)")
+    ap.add_argument("--arch", default=None, help="a torchvision architecture with random weights instead of the "
+                                                 "demo network (the corpus is generated at 224 px)")
     ap.add_argument("--threads", type=int, default=None, help="torch threads of the run (default: torch's)")
     ap.add_argument("--keep", action="store_true", help="keep the temporary folder (printed)")
     ap.add_argument("--direct", action="store_true", help="check the cost model in one process (see above)")
@@ -47,8 +51,9 @@ def main() -> None:
     from unitlens.demo import net, swatches
 
     d = Path(tempfile.mkdtemp(prefix="bench-budget-"))
-    swatches.write_corpus(d / "corpus", count=a.images, size=net.INPUT_SIZE, seed=0)
-    cmd = [sys.executable, "-m", "unitlens", "run", net.spec(), "--weights", str(net.WEIGHTS), "--corpus",
+    swatches.write_corpus(d / "corpus", count=a.images, size=224 if a.arch else net.INPUT_SIZE, seed=0)
+    model = [f"torchvision:{a.arch}"] if a.arch else [net.spec(), "--weights", str(net.WEIGHTS)]
+    cmd = [sys.executable, "-m", "unitlens", "run", *model, "--corpus",
            str(d / "corpus"), "--layers", a.layers, "--budget", a.budget, "--out", str(d / "run"), "--workers", "0"]
     if a.threads:
         cmd += ["--threads", str(a.threads)]

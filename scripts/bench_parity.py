@@ -68,7 +68,8 @@ def measure(model, run, layer, units, cfg, colour) -> dict:
     images, have = exemplar_images(run, model, layer, units, size)
     refs = exemplar_references(model, layer, images, have, scorer, spec, colour.mean, cfg.seed, 32, extract)
     t = time.perf_counter()
-    results = [r for b in iter_layer(model, layer, have, replace(cfg, checks=0), goal, colour, refs) for r in b]
+    batches = iter_layer(model, layer, have, replace(cfg, checks=0), goal, colour, references=refs)
+    results = [r for b in batches for r in b]
     wall = time.perf_counter() - t
     u8 = torch.from_numpy(np.stack([np.clip(np.round(r.images[0] * 255), 0, 255).astype(np.uint8)
                                     for r in results])).permute(0, 3, 1, 2)

@@ -205,6 +205,10 @@ def test_sample_costs_worked_example():
     for loop, factor in ((100.0, 2.0), (5.0, 0.75)):
         got = sample_costs(calib, {"a": {**timings["a"], "loop": loop}}, {"a": [10, 20, 30, 40]}, 256)
         assert got["loop_factor"]["a"] == factor
+    # a sample thinner than the layer's batch (4 units, batch 8) says nothing of a full batch's loop;
+    # its per-unit cost still counts
+    got = sample_costs({**calib, "batch": {"a": 8, "b": 4}}, timings, {"a": [10, 20, 30, 40]}, 256)
+    assert got["loop_factor"] == {} and got["synth_s_per_unit"]["a"] == pytest.approx(2.0)
 
 
 def test_plan_applies_the_loop_factor_and_a_redraw_per_layer():

@@ -144,7 +144,8 @@ def sample_costs(calib: dict, timings: dict, stops: dict, cap: int, world: int =
     """What the run measured beside the calibration, in the planner's terms: {"synth_s_per_unit":
     {layer: seconds each unit costs beside the loop (its exemplar's reference, checks, nearest
     images and files), split `world` ways}, "loop_factor": {layer: the sample's real loop time /
-    what the step model gives it, held within [0.75, 2]}, "atlas_s": a redraw of the atlas}.
+    what the step model gives it, held within [0.75, 2]; only where the sample filled a whole
+    batch}, "atlas_s": a redraw of the atlas}.
     Layers the sample did not time (`timings` {layer: _layer's record}) keep the calibration's figures.
 
     Timing the real pipeline is the point: the checks' forwards alone (the calibration's figure)
@@ -159,6 +160,8 @@ def sample_costs(calib: dict, timings: dict, stops: dict, cap: int, world: int =
             continue
         per_unit[layer] = (t["references"] + t["units_s"]) / n / world
         batch = calib["batch"][layer] if isinstance(calib["batch"], dict) else calib["batch"]
+        if n < batch:  # the sample ran in a thinner batch than the layer will, and a thin batch's cost per
+            continue  # image differs both ways (fixed costs; a smaller working set in the caches)
         model = loop_seconds(n, batch, cap, stops.get(layer), calib["synth_s_per_step"][layer],
                              calib.get("synth_s_fixed", {}).get(layer, 0.0))
         if model > 0 and t["loop"] > 0:
