@@ -223,8 +223,9 @@ def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: d
                + ", ".join(f"{k} {v:.2f} s per synthesis step of {batch[k]} units at {calib['size']} px"
                            + (f" ({fixed[k]:.2f} s of it whatever the batch holds)" if fixed.get(k) else "")
                            for k, v in calib["synth_s_per_step"].items())
-               + ("".join(f"; {k}: the sample's loop ran {factor[k]:.2f}x that, and each unit cost "
-                          f"{per_unit.get(k, 0.0):.2f} s beside it" for k in calib["synth_s_per_step"] if k in factor))]
+               + "".join(f"; {k}: each unit {per_unit[k]:.2f} s beside the loop"
+                         + (f", the sample's loop {factor[k]:.2f}x the steps' time" if k in factor else "")
+                         for k in calib["synth_s_per_step"] if per_unit.get(k))]
     if mine_s > budget_s:
         raise UnitlensError(
             f"Mining {n_images} images alone needs about {mine_s / 3600:.1f} h on this machine, more than the "
