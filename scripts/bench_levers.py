@@ -3,9 +3,12 @@
     python scripts/bench_levers.py                          # resnet18 layer3, 128 px, batch 8
     python scripts/bench_levers.py --arch resnet50 --layer layer2 --size 96 --batch 4
     python scripts/bench_levers.py --compile                # also torch.compile (inductor; slow to start)
+    python scripts/bench_levers.py --arch resnet50 --layer layer1 --size 224 --batch 32   # where heap_reuse pays
 
 Each lever runs a bare truncated forward+backward (as scripts/bench_synth.py) beside the default,
-in alternating single steps after a warm-up, so both see the same load; the fastest of --reps is
+in alternating rounds (each lever: one step to warm up, one timed), so all see the same load; the
+`heap_reuse` lever holds unitlens._memory.heap_reuse (freed memory kept for the next step) over its
+two steps, as synthesis and mining hold it over a whole pass. The fastest of --reps is
 printed with the median, and the input gradients of each lever are compared with the default's
 (max relative difference: a lever is kept only within rounding). Random weights: costs do not
 depend on them.
@@ -13,6 +16,7 @@ depend on them.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import statistics
 import sys
@@ -23,6 +27,8 @@ import torch
 
 sys.path.insert(0, str(Path(__file__).parent))
 from bench_synth import load
+
+from unitlens._memory import heap_reuse
 
 
 def grad_step(model, extract, layer, x, fmt=torch.contiguous_format):
@@ -52,7 +58,8 @@ def main() -> None:
     cl.module.to(memory_format=torch.channels_last)
     ext_cl = cl.extractor([a.layer])
     levers = {"default": lambda: grad_step(base, ext, a.layer, x),
-              "channels_last": lambda: grad_step(cl, ext_cl, a.layer, x, torch.channels_last)}
+              "channels_last": lambda: grad_step(cl, ext_cl, a.layer, x, torch.channels_last),
+              "heap_reuse": lambda: grad_step(base, ext, a.layer, x)}
     if a.compile:
         t = time.perf_counter()
         ext_c = torch.compile(base.extractor([a.layer]))
@@ -64,10 +71,12 @@ def main() -> None:
     times = {k: [] for k in levers}
     for k in range(a.reps + 1):  # the first round warms up
         for name, f in levers.items():
-            t = time.perf_counter()
-            f()
-            if k:
-                times[name].append(time.perf_counter() - t)
+            with heap_reuse() if name == "heap_reuse" else contextlib.nullcontext():
+                f()  # warm (for heap_reuse: the memory the timed step reuses)
+                t = time.perf_counter()
+                f()
+                if k:
+                    times[name].append(time.perf_counter() - t)
     print(f"{'lever':<15} {'fastest s':>9} {'median s':>9} {'default/lever':>13} {'max rel grad diff':>17}")
     for name, ts in times.items():
         print(f"{name:<15} {min(ts):>9.3f} {statistics.median(ts):>9.3f} {min(times['default']) / min(ts):>13.2f} "

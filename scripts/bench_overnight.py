@@ -14,7 +14,8 @@ of --images images is
                 robustness check of its image and the reference on its best exemplar, 32 warped
                 forwards each, plus the 8-bit rounding, ranks and an in-memory PNG of the image)
 
-Seconds per image-step are the fastest of a few single synthesis steps at a full batch, beside a
+Seconds per image-step are the fastest of a few single synthesis steps at a full batch (32, the
+loop's default; --quick 4), with freed memory kept for reuse as a run keeps it, beside a
 bare truncated forward+backward of the same batch and size (their ratio is printed: the loop's
 overhead). Steps per unit come from scripts/bench_parity.py on the trained swatch network (its
 --save file): the mean over units of the steps each spent under a setting, since a unit's cost is
@@ -36,6 +37,7 @@ import torch
 sys.path.insert(0, str(Path(__file__).parent))
 from bench_synth import bare_step, load
 
+from unitlens._memory import heap_reuse
 from unitlens.synth import SynthConfig
 from unitlens.synth.loop import _Batch, _Engine, _Unit
 
@@ -144,15 +146,16 @@ def main():
           f"{a.size} px, corpus of {a.images:,} images; torch {torch.__version__}, {torch.get_num_threads()} threads, "
           f"load average {os.getloadavg()[0]:.1f} at start\n")
     model = load(a.arch, a.size)
-    batch, reps = (4, 2) if a.quick else (8, 3)
+    batch, reps = (4, 2) if a.quick else (32, 3)
     print(f"1. Per image-step, batch {batch}, fastest of {reps} alternating single steps")
     print(f"   {'stage':<7} {'units':>5} {'synth s':>8} {'bare s':>8} {'ratio':>6} {'forward s':>9} {'unit s':>7} "
           f"{'load':>5}")
     costs = {}
     for layer in STAGES:
-        c = step_costs(model, layer, batch, reps)
+        with heap_reuse():  # as synthesize() runs
+            c = step_costs(model, layer, batch, reps)
+            c["unit"] = unit_cost(model, layer, reps)
         c["units"] = model.layer(layer).channels
-        c["unit"] = unit_cost(model, layer, reps)
         costs[layer] = c
         print(f"   {layer:<7} {c['units']:>5} {c['synth']:>8.3f} {c['bare']:>8.3f} {c['ratio']:>6.2f} "
               f"{c['forward']:>9.3f} {c['unit']:>7.3f} {os.getloadavg()[0]:>5.1f}", flush=True)

@@ -18,6 +18,7 @@ import torch
 from . import dist
 from ._extract import forward_batch
 from ._progress import Progress
+from ._memory import heap_reuse
 from .errors import UnitlensError, interrupted, log, shown
 from .dedupe import THUMB, NearDuplicates, thumbnails
 from .embedding import EMBED_DIM, needs_pooled
@@ -68,6 +69,7 @@ def mined(out: str | Path, model, corpus, layers, config: MineConfig = MineConfi
                                                                      _settings(model, corpus, layers, config))
 
 
+@heap_reuse()
 def mine(model, corpus, layers: tuple[LayerUnits, ...], out: str | Path, config: MineConfig = MineConfig(),
          *, progress: bool = False, force: bool = False, stop: Callable[[int], bool] | None = None) -> Run:
     """Mine exemplars for `layers` over `corpus` into the run folder `out`; resumes if interrupted.

@@ -17,6 +17,7 @@ from dataclasses import dataclass, field, replace
 
 import torch
 
+from ._memory import heap_reuse
 from .errors import UnitlensError
 from .units import LayerUnits
 
@@ -89,6 +90,7 @@ def mine_seconds(model, layers) -> float:
     return _forward_seconds(model, [lu.layer for lu in layers], n, model.preprocess.size) / n
 
 
+@heap_reuse()
 def calibrate(model, layers, synth_config, size: int) -> dict:
     """Seconds per mined image, per synthesis step of a full batch (the real loop: parameterisation,
     transforms, forward, backward, Adam) and per synthesised unit's evidence (the robustness check
@@ -294,6 +296,7 @@ def _spread(units: tuple[int, ...], n: int, keep: tuple[int, ...] = ()) -> tuple
     return tuple(u for u in units if u in kept)
 
 
+@heap_reuse()
 def run_all(model, corpus, layers, out, mine_config, synth_config, *, budget: str | None = None,
             progress: bool = False, log=None, force: bool = False, strip_paths: bool | None = None,
             started: float | None = None):

@@ -27,7 +27,7 @@ from typing import ClassVar
 import numpy as np
 import torch
 
-from .._memory import available_memory
+from .._memory import available_memory, heap_reuse
 from ..errors import UnitlensError
 from .bases import ColourBasis, make_basis
 from .goal import Context, Goal, Scorer
@@ -382,6 +382,7 @@ def iter_layer(model, layer: str, targets, config: SynthConfig = SynthConfig(), 
     yield from _Engine(model, layer, targets, config, goal, colour, references).run(on_step)
 
 
+@heap_reuse()
 def step_seconds(model, layer: str, targets, config: SynthConfig = SynthConfig(), goal: Goal | None = None,
                  colour: ColourBasis | None = None, repeats: int = 2) -> tuple[float, int]:
     """(seconds per step, images per step) of one full batch of `targets`, timed on the real loop:
@@ -405,6 +406,7 @@ def step_seconds(model, layer: str, targets, config: SynthConfig = SynthConfig()
     return sorted(times)[len(times) // 2], n * config.per_unit
 
 
+@heap_reuse()
 def optimise_units(model, goal: Goal, config: SynthConfig = SynthConfig(),
                    colour: ColourBasis | None = None) -> list[UnitResult]:
     """In-memory synthesis (no run folder): one UnitResult per unit of the goal, layer by layer in

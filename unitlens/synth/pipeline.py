@@ -7,6 +7,7 @@ import numpy as np
 import torch
 
 from .. import dist
+from .._memory import heap_reuse
 from ..errors import UnitlensError, interrupted
 from ..units import ranges_text
 from ..store import Run, atomic_write, disk_bytes, read_json, read_npz, space_for, write_json, write_npz
@@ -18,6 +19,7 @@ from .loop import SynthConfig, iter_layer
 from .results import best_exemplars, same_model
 
 
+@heap_reuse()
 def synthesize(model, goal: Goal, out, config: SynthConfig = SynthConfig(), *, progress: bool = False,
                force: bool = False, timings: dict | None = None) -> Run:
     """Synthesise images for the units of `goal` into the run folder `out`. In a run folder, a
