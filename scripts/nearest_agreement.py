@@ -53,7 +53,7 @@ def prepare(work: Path, layer: str, count: int, steps: int) -> Run:
 def features(model, layer: str, files: list[Path]) -> tuple[np.ndarray, np.ndarray]:
     """(channel means, channel maxima) of images, each (n, C), as the corpus was seen (input size, 8 bits)."""
     size = model.preprocess.size
-    x = torch.stack([torch.from_numpy(np.asarray(Image.open(f).convert("RGB"))).permute(2, 0, 1) for f in files]).float() / 255
+    x = torch.stack([torch.from_numpy(np.array(Image.open(f).convert("RGB"))).permute(2, 0, 1) for f in files]).float() / 255
     x = torch.nn.functional.interpolate(x, size=size, mode="bilinear", antialias=True, align_corners=False)
     x = (x * 255).round().clamp(0, 255) / 255.0
     with torch.no_grad():
