@@ -153,8 +153,7 @@ def sample_costs(calib: dict, timings: dict, stops: dict, cap: int, world: int =
     Timing the real pipeline is the point: the checks' forwards alone (the calibration's figure)
     were a third of a unit's cost beside the loop on the demo network, and the loop's own work per
     step (traces, stop and parity checks, refills) a fifth of the loop on its deepest layer."""
-    per_unit = dict(calib.get("synth_s_per_unit", {}))
-    per_unit = {k: v / world for k, v in per_unit.items()}
+    per_unit = {k: v / world for k, v in calib.get("synth_s_per_unit", {}).items()}
     factor = {}
     for layer, t in timings.items():
         n = t.get("units", 0)
@@ -174,13 +173,18 @@ def sample_costs(calib: dict, timings: dict, stops: dict, cap: int, world: int =
 def stop_steps(run, layers) -> dict[str, list[int]]:
     """{layer: steps each image of the given units ran} from the run folder's synthesis records
     (units not synthesised yet are left out)."""
-    from .store import read_json
-
     out = {}
     for lu in layers:
-        table = (read_json(run.layer_dir(lu.layer, "synth") / "units.json") or {}).get("units", {})
+        table = _unit_records(run, lu.layer)
         out[lu.layer] = [int(im["steps"]) for u in lu.units for im in table.get(str(u), {}).get("images", [])]
     return out
+
+
+def _unit_records(run, layer: str) -> dict:
+    """{channel as text: record} of the layer's synthesised units in the run folder (empty if none)."""
+    from .store import read_json
+
+    return (read_json(run.layer_dir(layer, "synth") / "units.json") or {}).get("units", {})
 
 
 def plan(budget_s: float, n_images: int, layers, steps: int, size: int, calib: dict,
@@ -493,9 +497,7 @@ def _synthesised(run, lu: LayerUnits, config, size: int) -> bool:
 
 def _units_done(run, lu: LayerUnits) -> int:
     """How many of lu's units the run folder holds synthesised images of (with any settings)."""
-    from .store import read_json
-
-    table = (read_json(run.layer_dir(lu.layer, "synth") / "units.json") or {}).get("units", {})
+    table = _unit_records(run, lu.layer)
     return sum(str(u) in table for u in lu.units)
 
 

@@ -1,6 +1,7 @@
 """Run-folder synthesis: validate, optimise layer by layer, write each finished batch (layout in results.py)."""
 from __future__ import annotations
 
+import time
 from pathlib import Path
 
 import numpy as np
@@ -114,8 +115,6 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> dict:
     {"units": units done here, "loop": the optimisation loop, "references": the best exemplars'
     objectives (decoding and `checks` warped forwards each), "units_s": each finished unit's checks,
     nearest images and files, "whole": the call}."""
-    import time
-
     from .._progress import Progress
 
     t0 = time.perf_counter()
