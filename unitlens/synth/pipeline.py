@@ -118,7 +118,7 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> dict:
     from .._progress import Progress
 
     t0 = time.perf_counter()
-    spent = {"units": 0, "loop": 0.0, "references": 0.0, "units_s": 0.0}
+    spent = {"loop": 0.0, "references": 0.0, "units_s": 0.0}
 
     d = run.layer_dir(lu.layer, "synth")
     d.mkdir(parents=True, exist_ok=True)
@@ -152,7 +152,6 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> dict:
                                                    references=refs), lu, table):
                 spent["loop"] += time.perf_counter() - t
                 t = time.perf_counter()
-                spent["units"] += len(batch)
                 for r in batch:
                     table["units"][str(r.target)] = _write_unit(d, model, lu.layer, r, scorer, spec, colour,
                                                                 config, best.get(r.target), extract, near,
@@ -171,8 +170,7 @@ def _layer(run, model, lu, config, goal, colour, size, progress) -> dict:
     finally:
         if bar:
             bar.close()
-    spent["whole"] = time.perf_counter() - t0
-    return spent
+    return {**spent, "units": len(todo), "whole": time.perf_counter() - t0}
 
 
 def _fold_parts(d: Path, table: dict) -> list[Path]:
